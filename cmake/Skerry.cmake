@@ -1,0 +1,51 @@
+# Helpers shared by every CMakeLists in the project.
+#
+#   skerry_module(NAME SOURCES ... [DEPS ...])   one library per stage: modules/NAME
+#   skerry_test(NAME SOURCES ... [DEPS ...] [LABELS ...])  a GoogleTest binary registered with CTest
+#   skerry_benchmark(NAME SOURCES ... [DEPS ...])  a program that prints figures (never a test)
+
+set(SKERRY_WARNINGS -Wall -Wextra -Wpedantic -Wshadow=local -Wnon-virtual-dtor
+    -Wno-deprecated-enum-enum-conversion
+    # GCC 12 reports false -Wrestrict/-Warray-bounds positives inside libstdc++ at -O3.
+    $<$<CXX_COMPILER_ID:GNU>:-Wno-restrict -Wno-array-bounds -Wno-stringop-overflow>)
+
+function(skerry_apply_common target)
+  target_compile_options(${target} PRIVATE ${SKERRY_WARNINGS})
+  if(SKERRY_WERROR)
+    target_compile_options(${target} PRIVATE -Werror)
+  endif()
+  if(SKERRY_SANITIZE)
+    string(REPLACE ";" "," _san "${SKERRY_SANITIZE}")
+    target_compile_options(${target} PRIVATE -fsanitize=${_san} -fno-omit-frame-pointer -fno-sanitize-recover=all)
+    target_link_options(${target} PRIVATE -fsanitize=${_san})
+  endif()
+endfunction()
+
+function(skerry_module name)
+  cmake_parse_arguments(M "" "" "SOURCES;DEPS" ${ARGN})
+  add_library(skerry_${name} STATIC ${M_SOURCES})
+  add_library(skerry::${name} ALIAS skerry_${name})
+  target_include_directories(skerry_${name} PUBLIC ${CMAKE_CURRENT_SOURCE_DIR}/include)
+  target_link_libraries(skerry_${name} PUBLIC ${M_DEPS})
+  skerry_apply_common(skerry_${name})
+  set_property(GLOBAL APPEND PROPERTY SKERRY_MODULES skerry_${name})
+endfunction()
+
+function(skerry_test name)
+  cmake_parse_arguments(T "" "" "SOURCES;DEPS;LABELS" ${ARGN})
+  add_executable(test_${name} ${T_SOURCES})
+  target_link_libraries(test_${name} PRIVATE ${T_DEPS} GTest::gtest GTest::gtest_main)
+  target_compile_definitions(test_${name} PRIVATE
+    SKERRY_TEST_DATA_DIR="${PROJECT_SOURCE_DIR}/tests/data"
+    SKERRY_BINARY="$<TARGET_FILE:skerry>"
+    SKERRY_SOURCE_DIR="${PROJECT_SOURCE_DIR}")
+  skerry_apply_common(test_${name})
+  gtest_discover_tests(test_${name} DISCOVERY_TIMEOUT 60 PROPERTIES LABELS "${T_LABELS}")
+endfunction()
+
+function(skerry_benchmark name)
+  cmake_parse_arguments(B "" "" "SOURCES;DEPS" ${ARGN})
+  add_executable(bench_${name} ${B_SOURCES})
+  target_link_libraries(bench_${name} PRIVATE ${B_DEPS})
+  skerry_apply_common(bench_${name})
+endfunction()

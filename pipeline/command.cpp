@@ -1,0 +1,8 @@
+#include "command.h"
+
+namespace skerry {
+std::vector<CommandInfo>& command_registry() {
+  static std::vector<CommandInfo> r;
+  return r;
+}
+}  // namespace skerry

@@ -1,0 +1,81 @@
+#include "io/atomic_file.h"
+
+#include <fcntl.h>
+#include <unistd.h>
+
+#include <atomic>
+#include <cerrno>
+#include <cstring>
+#include <filesystem>
+
+#include "errors.h"
+
+namespace skerry {
+
+namespace fs = std::filesystem;
+
+namespace {
+std::atomic<unsigned> g_counter{0};
+
+void fsync_path(const std::string& p, bool dir) {
+  int fd = ::open(p.c_str(), dir ? (O_RDONLY | O_DIRECTORY) : O_RDONLY);
+  if (fd < 0) return;
+  ::fsync(fd);
+  ::close(fd);
+}
+}  // namespace
+
+bool is_temporary_name(const std::string& n) {
+  return n.size() > 8 && n.front() == '.' && n.ends_with(".partial");
+}
+
+AtomicOutput::AtomicOutput(std::string final_path) : final_(std::move(final_path)) {
+  fs::path p(final_);
+  fs::path dir = p.parent_path();
+  std::error_code ec;
+  if (!dir.empty()) fs::create_directories(dir, ec);
+  if (ec) throw OutputError(final_, "cannot create folder " + dir.string() + ": " + ec.message());
+  temp_ = (dir / ("." + p.filename().string() + "." + std::to_string(::getpid()) + "." +
+                  std::to_string(g_counter++) + ".partial"))
+              .string();
+  fs::remove(temp_, ec);
+}
+
+AtomicOutput::~AtomicOutput() {
+  if (!committed_) {
+    std::error_code ec;
+    fs::remove(temp_, ec);
+  }
+}
+
+void AtomicOutput::commit() {
+  if (!fs::exists(temp_)) throw OutputError(final_, "nothing was written");
+  fsync_path(temp_, false);
+  if (::rename(temp_.c_str(), final_.c_str()) != 0)
+    throw OutputError(final_, std::string("cannot rename into place: ") + std::strerror(errno));
+  committed_ = true;
+  fs::path dir = fs::path(final_).parent_path();
+  fsync_path(dir.empty() ? "." : dir.string(), true);
+}
+
+void write_text_atomic(const std::string& path, const std::string& content) {
+  AtomicOutput out(path);
+  int fd = ::open(out.temp_path().c_str(), O_WRONLY | O_CREAT | O_TRUNC | O_CLOEXEC, 0644);
+  if (fd < 0) throw OutputError(path, std::string("cannot create: ") + std::strerror(errno));
+  std::size_t done = 0;
+  while (done < content.size()) {
+    ssize_t n = ::write(fd, content.data() + done, content.size() - done);
+    if (n < 0) {
+      if (errno == EINTR) continue;
+      int e = errno;
+      ::close(fd);
+      throw OutputError(path, std::string("write failed: ") + std::strerror(e));
+    }
+    done += static_cast<std::size_t>(n);
+  }
+  if (::fsync(fd) != 0 || ::close(fd) != 0)
+    throw OutputError(path, std::string("write failed: ") + std::strerror(errno));
+  out.commit();
+}
+
+}  // namespace skerry

@@ -1,0 +1,39 @@
+#pragma once
+/// Outputs are written under a temporary name in the destination folder and
+/// renamed into place only when complete (fsync of the file, then of the folder),
+/// so a run killed at any moment leaves either the old file or the new one,
+/// never a half-written one. Temporary names start with '.' and end in '.partial'.
+#include <string>
+
+namespace skerry {
+
+class AtomicOutput {
+ public:
+  /// Prepares `final_path`; creates the parent folder if needed.
+  explicit AtomicOutput(std::string final_path);
+  /// Removes the temporary file unless commit() succeeded.
+  ~AtomicOutput();
+  AtomicOutput(const AtomicOutput&) = delete;
+  AtomicOutput& operator=(const AtomicOutput&) = delete;
+
+  /// Where to write (a path in the same folder as the final file).
+  const std::string& temp_path() const { return temp_; }
+  const std::string& final_path() const { return final_; }
+  /// fsync the temporary file, rename it to the final name, fsync the folder.
+  /// Throws OutputError naming the final file on failure.
+  void commit();
+
+ private:
+  std::string final_;
+  std::string temp_;
+  bool committed_ = false;
+};
+
+/// Write `content` to `path` atomically. Throws OutputError on failure
+/// (including a short write on a full disk).
+void write_text_atomic(const std::string& path, const std::string& content);
+
+/// True for names this project uses for temporary files.
+bool is_temporary_name(const std::string& file_name);
+
+}  // namespace skerry

@@ -1,0 +1,63 @@
+#pragma once
+/// FITS images in and out (CFITSIO), with their celestial WCS (WCSLIB, wcs.h).
+/// The only place that converts between FITS 1-based pixels and the 0-based
+/// pixels of the modules is wcs.cpp.
+#include <memory>
+#include <optional>
+#include <string>
+#include <utility>
+#include <vector>
+
+#include "skerry/image.h"
+#include "skerry/sky.h"
+
+namespace skerry {
+
+struct ImageReadOptions {
+  /// HDU: "" = the primary HDU (or the first image extension when the primary has
+  /// no data); a number ("2", 1-based as CFITSIO counts HDUs) or an EXTNAME.
+  std::string hdu;
+  /// 0-based index along each non-celestial axis of more than one plane, in axis
+  /// order (e.g. {frequency plane, Stokes plane}); required where not degenerate.
+  std::vector<long> plane;
+  /// Accept this BUNIT instead of Jy/beam (the values are then taken as Jy/beam).
+  bool accept_any_bunit = false;
+  std::optional<Beam> beam_override;        ///< used when the header lacks BMAJ/BMIN/BPA (or to replace them)
+  std::optional<double> freq_hz_override;   ///< observing frequency [Hz]
+  bool require_beam = true;                 ///< missing beam is an error (InputError)
+};
+
+struct SkyImage {
+  std::string path;
+  ImageF pixels;                          ///< (y, x), NaN = no data
+  std::shared_ptr<const PixelSky> wcs;    ///< celestial axes; ICRS output
+  Beam beam;                              ///< restoring beam (invalid when unknown and not required)
+  double freq_hz = std::numeric_limits<double>::quiet_NaN();  ///< NaN when unknown
+  std::string bunit;                      ///< as found in the header
+  std::string frame;                      ///< "ICRS", "FK5", "GALACTIC", ... of the image axes
+  std::string object;                     ///< OBJECT keyword or the file's stem
+  /// The header cards (80-char records, no END) of a 2-D image with this image's
+  /// celestial WCS, beam and frequency: what derived maps are written with.
+  std::string wcs_header;
+};
+
+/// Read one image plane. Throws InputError naming the file and the problem:
+/// missing file, not FITS, truncated data, no celestial WCS, non-degenerate extra
+/// axes without a plane, wrong BUNIT, missing beam, impossible axis lengths
+/// (checked before any allocation).
+SkyImage read_sky_image(const std::string& path, const ImageReadOptions& options = {});
+
+/// Read a primary-beam image for `like` (same pixel grid, values in 0..1];
+/// throws InputError when its shape differs.
+ImageF read_primary_beam(const std::string& path, const SkyImage& like);
+
+/// Write a 2-D image with `like`'s WCS (atomically: temp file, then rename).
+/// Throws OutputError. `bunit` e.g. "JY/BEAM"; extra cards are (KEY, value) where
+/// value is already FITS-formatted (e.g. "'text'" or "1.5").
+void write_fits_image(const std::string& path, const ImageF& pixels, const SkyImage& like,
+                      const std::string& bunit = "JY/BEAM",
+                      const std::vector<std::pair<std::string, std::string>>& extra_cards = {});
+void write_fits_labels(const std::string& path, const LabelsI32& labels, const SkyImage& like,
+                       const std::vector<std::pair<std::string, std::string>>& extra_cards = {});
+
+}  // namespace skerry

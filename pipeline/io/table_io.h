@@ -1,0 +1,22 @@
+#pragma once
+/// Catalogue tables in and out: CSV, FITS binary table (CFITSIO) and IVOA
+/// VOTable 1.4, chosen by file-name ending (.csv, .fits/.fit, .vot/.xml).
+#include <string>
+
+#include "skerry/table.h"
+
+namespace skerry {
+
+enum class TableFormat { Csv, Fits, VOTable };
+
+/// By file-name ending; throws UsageError for an unknown ending.
+TableFormat table_format_from_name(const std::string& path);
+
+/// Read a table. Throws InputError naming the file, and the row/column where a
+/// cell is bad.
+Table read_table(const std::string& path);
+
+/// Write atomically. Throws OutputError.
+void write_table(const Table& table, const std::string& path);
+
+}  // namespace skerry

@@ -1,0 +1,72 @@
+// The `skerry` command: dispatches to the sub-commands registered in cmd_*.cpp.
+#include <algorithm>
+#include <cstdio>
+#include <exception>
+#include <iostream>
+#include <new>
+#include <string>
+#include <vector>
+
+#include "command.h"
+#include "errors.h"
+#include "version.h"
+
+namespace {
+void usage(std::ostream& os) {
+  auto cmds = skerry::command_registry();
+  std::sort(cmds.begin(), cmds.end(), [](auto& a, auto& b) { return a.name < b.name; });
+  os << "skerry " << SKERRY_VERSION << ": radio continuum images to source catalogues\n\n"
+     << "usage: skerry <sub-command> [options]     (skerry <sub-command> --help for its options)\n\n"
+     << "sub-commands:\n";
+  for (const auto& c : cmds) {
+    os << "  " << c.name << std::string(c.name.size() < 14 ? 14 - c.name.size() : 1, ' ') << c.summary
+       << "\n";
+  }
+  os << "\nexit codes: 0 ok, 1 internal error, 2 bad usage or configuration, 3 bad input file,\n"
+        "            4 output not written, 5 nothing to do, 6 some tiles failed, 7 busy,\n"
+        "            8 input holds no usable data\n";
+}
+}  // namespace
+
+int main(int argc, char** argv) {
+  std::vector<std::string> args(argv + 1, argv + argc);
+  if (args.empty() || args[0] == "--help" || args[0] == "-h" || args[0] == "help") {
+    usage(std::cout);
+    return args.empty() ? skerry::kExitUsage : skerry::kExitOk;
+  }
+  if (args[0] == "--version") {
+    std::cout << "skerry " << SKERRY_VERSION << " (" << SKERRY_GIT_REVISION << ")\n";
+    return 0;
+  }
+  const auto& reg = skerry::command_registry();
+  auto it = std::find_if(reg.begin(), reg.end(), [&](auto& c) { return c.name == args[0]; });
+  if (it == reg.end()) {
+    std::cerr << "skerry: error: unknown sub-command '" << args[0] << "' (see skerry --help)\n";
+    return skerry::kExitUsage;
+  }
+  std::vector<std::string> rest(args.begin() + 1, args.end());
+  try {
+    return it->run(rest);
+  } catch (const skerry::UsageError& e) {
+    std::cerr << "skerry " << it->name << ": error: " << e.what() << "\n";
+    return skerry::kExitUsage;
+  } catch (const skerry::InputError& e) {
+    std::cerr << "skerry " << it->name << ": error: " << e.what() << "\n";
+    return skerry::kExitBadInput;
+  } catch (const skerry::NoDataError& e) {
+    std::cerr << "skerry " << it->name << ": error: " << e.what() << "\n";
+    return skerry::kExitNoData;
+  } catch (const skerry::OutputError& e) {
+    std::cerr << "skerry " << it->name << ": error: " << e.what() << "\n";
+    return skerry::kExitOutput;
+  } catch (const skerry::ExitError& e) {
+    std::cerr << "skerry " << it->name << ": " << e.what() << "\n";
+    return e.code;
+  } catch (const std::bad_alloc&) {
+    std::cerr << "skerry " << it->name << ": error: out of memory\n";
+    return skerry::kExitInternal;
+  } catch (const std::exception& e) {
+    std::cerr << "skerry " << it->name << ": internal error: " << e.what() << "\n";
+    return skerry::kExitInternal;
+  }
+}

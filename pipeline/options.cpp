@@ -1,0 +1,102 @@
+#include "options.h"
+
+#include <oneapi/tbb/global_control.h>
+#include <oneapi/tbb/info.h>
+
+#include <fstream>
+#include <iostream>
+#include <sstream>
+
+#include "errors.h"
+
+namespace skerry {
+
+namespace {
+
+std::string value_text(const po::variable_value& v) {
+  const boost::any& a = v.value();
+  if (a.empty()) return "";
+  std::ostringstream os;
+  os.precision(17);
+  if (auto p = boost::any_cast<std::string>(&a)) return *p;
+  if (auto p = boost::any_cast<double>(&a)) { os << *p; return os.str(); }
+  if (auto p = boost::any_cast<float>(&a)) { os << *p; return os.str(); }
+  if (auto p = boost::any_cast<int>(&a)) return std::to_string(*p);
+  if (auto p = boost::any_cast<long>(&a)) return std::to_string(*p);
+  if (auto p = boost::any_cast<long long>(&a)) return std::to_string(*p);
+  if (auto p = boost::any_cast<unsigned>(&a)) return std::to_string(*p);
+  if (auto p = boost::any_cast<std::size_t>(&a)) return std::to_string(*p);
+  if (auto p = boost::any_cast<bool>(&a)) return *p ? "true" : "false";
+  if (auto p = boost::any_cast<std::vector<std::string>>(&a)) {
+    for (std::size_t i = 0; i < p->size(); ++i) os << (i ? "," : "") << (*p)[i];
+    return os.str();
+  }
+  if (auto p = boost::any_cast<std::vector<double>>(&a)) {
+    for (std::size_t i = 0; i < p->size(); ++i) os << (i ? "," : "") << (*p)[i];
+    return os.str();
+  }
+  return "?";
+}
+
+}  // namespace
+
+ParsedOptions parse_options(const std::string& command, const std::string& usage_line,
+                            const po::options_description& desc,
+                            const std::vector<std::pair<std::string, int>>& positional,
+                            const std::vector<std::string>& args) {
+  po::options_description common("General");
+  common.add_options()
+      ("help,h", "show this help and exit")
+      ("config", po::value<std::string>(), "configuration file ([section] key = value); the command line overrides it")
+      ("threads", po::value<int>()->default_value(0), "worker threads (0 = all cores); results do not depend on it");
+  po::options_description all;
+  all.add(desc).add(common);
+
+  po::positional_options_description pos;
+  for (const auto& [name, count] : positional) pos.add(name.c_str(), count);
+
+  ParsedOptions out;
+  try {
+    po::store(po::command_line_parser(args).options(all).positional(pos).run(), out.vm);
+    if (out.vm.count("help")) {
+      std::cout << "usage: skerry " << command << " " << usage_line << "\n\n" << all << "\n";
+      out.help = true;
+      return out;
+    }
+    if (out.vm.count("config")) {
+      out.config_file = out.vm["config"].as<std::string>();
+      std::ifstream in(out.config_file);
+      if (!in) throw InputError(out.config_file, "cannot open configuration file");
+      try {
+        po::store(po::parse_config_file(in, all, /*allow_unregistered=*/false), out.vm);
+      } catch (const po::error& e) {
+        throw UsageError(out.config_file + ": " + e.what());
+      }
+    }
+    po::notify(out.vm);
+  } catch (const po::error& e) {
+    throw UsageError(e.what());
+  }
+  for (const auto& opt : all.options()) {
+    const std::string& n = opt->long_name();
+    if (n == "help" || n == "config") continue;
+    auto it = out.vm.find(n);
+    if (it != out.vm.end()) out.resolved[n] = value_text(it->second);
+  }
+  return out;
+}
+
+ThreadLimit::ThreadLimit(int threads) {
+  if (threads < 0) throw UsageError("threads = " + std::to_string(threads) + " breaks threads >= 0");
+  threads_ = threads == 0 ? oneapi::tbb::info::default_concurrency() : threads;
+  control_ = new oneapi::tbb::global_control(oneapi::tbb::global_control::max_allowed_parallelism,
+                                             static_cast<std::size_t>(threads_));
+}
+
+ThreadLimit::~ThreadLimit() { delete static_cast<oneapi::tbb::global_control*>(control_); }
+
+void require(bool ok, const std::string& option, const std::string& value, const std::string& rule) {
+  if (!ok) throw UsageError(option + " = " + value + " breaks " + rule);
+}
+
+}  // namespace skerry
