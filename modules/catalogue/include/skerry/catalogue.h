@@ -1,0 +1,184 @@
+#pragma once
+/// The source catalogue: grouping fitted components into sources, the flag
+/// bitmask every catalogue row carries, and the morphology class of a source.
+/// Pure computation on in-memory values (no files, no command line).
+///
+/// Grouping rule (documented, settable through GroupingOptions):
+///  1. Components of one island always belong to one source.
+///  2. Two components of different islands are linked ("friends") when the gap
+///     between their extents is at most `link_gap_beams` restoring-beam major
+///     FWHMs:  gap = sep - h_i - h_j,  where sep is the great-circle separation
+///     of the centres (Vincenty) and h the half-width of the component's fitted
+///     (beam-convolved) FWHM ellipse projected on the line joining the centres
+///     (support function h = 1/2 sqrt(M^2 cos^2 d + m^2 sin^2 d), d = PA of the
+///     line minus the ellipse PA). For two point sources with link_gap_beams = 1
+///     that links centres up to 2 beams apart.
+///  3. ... restricted to pairs whose integrated flux densities differ by at most
+///     a factor `link_max_flux_ratio` (0 = no restriction): the lobes of one
+///     radio galaxy are usually within a factor of a few, while a faint
+///     neighbour of a bright source is more often an unrelated object or an
+///     artefact (and is flagged kFlagNearBright).
+///  4. Sources are the connected sets (friends-of-friends, transitive closure)
+///     of rules 1-3. Source ids are 1-based, in order of each source's smallest
+///     component index, so they are a total order independent of threads.
+///
+/// Source measurements:
+///  - position: flux-weighted mean of the component unit vectors (weights
+///    S_int, clamped at 0; equal weights when every S_int <= 0), normalised;
+///    its error sigma^2 = sum w_i^2 sigma_i^2 / (sum w_i)^2 per axis (weights
+///    treated as exact; common practice).
+///  - total flux density: sum of the components' S_int; error: their errors in
+///    quadrature (treated as independent: an approximation inside one island,
+///    where fitted fluxes are anti-correlated, common practice).
+///  - largest angular size (LAS): the largest of (a) each component's
+///    deconvolved major FWHM and (b) over pairs, sep_ij + h_i + h_j with h the
+///    half-width of the *deconvolved* FWHM ellipse projected on the line
+///    joining the centres. A single unresolved component has LAS 0 (an upper
+///    limit: the source carries kFlagUnresolved).
+///  - morphology (names of our own):
+///      "single"  one component, island residual acceptable;
+///      "multi"   two or more components, island residuals acceptable;
+///      "diffuse" some island of the source is poorly described by Gaussians:
+///                its residual rms over its pixels exceeds
+///                `diffuse_residual_ratio` times the mean local rms there
+///                (and it has at least `diffuse_min_beams` beams of pixels).
+#include <cstdint>
+#include <string>
+#include <vector>
+
+#include <Eigen/Core>
+
+#include "skerry/gaussian.h"
+#include "skerry/image.h"
+
+namespace skerry {
+
+// ---- Flag bitmask -----------------------------------------------------------
+// One bitmask (uint32 written as int64 columns named `flags`) shared by
+// component, island and source rows. A source row carries the OR of its
+// components' bits plus the source-level bits. Each bit says whether a value
+// was still produced.
+inline constexpr std::uint32_t kFlagNearEdge = 1u << 0;        ///< centre within edge_margin_beams of the image edge (island: touches the edge)
+inline constexpr std::uint32_t kFlagNearBlank = 1u << 1;       ///< a blank (NaN) pixel within blank_margin_beams of the centre (island: touches a blank pixel)
+inline constexpr std::uint32_t kFlagNearBright = 1u << 2;      ///< a component bright_ratio times brighter (peak) lies within bright_radius_beams: possible artefact
+inline constexpr std::uint32_t kFlagFitFailed = 1u << 3;       ///< Gaussian fit failed or was rejected; values are moment-based measurements
+inline constexpr std::uint32_t kFlagUnresolved = 1u << 4;      ///< not resolved: deconvolved size is an upper limit
+inline constexpr std::uint32_t kFlagBelowPbCut = 1u << 5;      ///< primary-beam response at the centre below the settable cut
+inline constexpr std::uint32_t kFlagFewerComponents = 1u << 6; ///< the island's peaks were fitted with fewer components (the larger model was not justified)
+inline constexpr std::uint32_t kFlagComponentCap = 1u << 7;    ///< the island had more candidate peaks than the component cap
+inline constexpr std::uint32_t kFlagAtBound = 1u << 8;         ///< a fitted parameter ended at its bound (size floor, centre at the island edge)
+inline constexpr std::uint32_t kFlagFixedShape = 1u << 9;      ///< shape held at the beam (fixed-beam mode); sizes are the beam's
+inline constexpr std::uint32_t kFlagBadRms = 1u << 10;         ///< local rms not positive or not finite at the centre; SNR and errors undefined (NaN)
+inline constexpr std::uint32_t kFlagMultiIsland = 1u << 11;    ///< source only: the source joins components of several islands
+inline constexpr std::uint32_t kFlagDiffuse = 1u << 12;        ///< island/source: residual rms exceeds diffuse_residual_ratio x local rms
+inline constexpr std::uint32_t kFlagNoPrimaryBeam = 1u << 13;  ///< primary-beam image given but blank or non-positive at the centre; corrected values NaN
+
+struct FlagInfo {
+  std::uint32_t bit;
+  const char* name;         ///< short name (README / catalogue meta)
+  const char* description;  ///< one line
+};
+/// Every bit above, in bit order (for the README table and the catalogue meta).
+const std::vector<FlagInfo>& flag_table();
+/// "near_edge|fit_failed" style text of a bitmask ("" for 0).
+std::string flag_names(std::uint32_t flags);
+
+// ---- Inputs -----------------------------------------------------------------
+
+/// What grouping and flagging need of one component.
+struct CatalogueComponent {
+  std::int64_t island_id = 0;       ///< 1-based island id
+  double x_pix = 0.0, y_pix = 0.0;  ///< centre, 0-based pixels
+  double ra_deg = 0.0, dec_deg = 0.0;
+  double ra_err_arcsec = 0.0, dec_err_arcsec = 0.0;
+  double s_peak_jy_per_beam = 0.0;
+  double s_int_jy = 0.0, s_int_err_jy = 0.0;
+  Ellipse fitted_arcsec;   ///< beam-convolved FWHM ellipse, PA east of north [arcsec, deg]
+  Ellipse deconv_arcsec;   ///< deconvolved FWHM ellipse; axes 0 where unresolved
+  std::uint32_t flags = 0; ///< bits set upstream (fit, pb, rms); flag_components() adds position bits
+};
+
+/// What the morphology class needs of one island.
+struct CatalogueIsland {
+  std::int64_t id = 0;                      ///< 1-based
+  long n_pixels = 0;
+  double residual_rms_jy_per_beam = 0.0;    ///< rms of (image - background - model) over the island
+  double mean_rms_jy_per_beam = 0.0;        ///< mean local rms over the island
+  std::uint32_t flags = 0;
+};
+
+// ---- Position flags ---------------------------------------------------------
+
+struct FlagOptions {
+  double edge_margin_beams = 1.0;    ///< kFlagNearEdge distance, in beam major FWHMs
+  double blank_margin_beams = 1.0;   ///< kFlagNearBlank distance, in beam major FWHMs
+  double bright_radius_beams = 10.0; ///< kFlagNearBright search radius, in beam major FWHMs
+  double bright_ratio = 50.0;        ///< kFlagNearBright when a neighbour's peak is >= this x own peak
+};
+
+/// Adds kFlagNearEdge, kFlagNearBlank and kFlagNearBright to `components`.
+/// `image` supplies the grid size and the blank (NaN) pixels; distances are on
+/// the sky through the local Jacobian `jac_arcsec_per_pix` (d(east,north)/d(x,y),
+/// taken at the image centre; sky.h LocalGeometry). Deterministic.
+void flag_components(std::vector<CatalogueComponent>& components, const ImageF& image,
+                     const Eigen::Matrix2d& jac_arcsec_per_pix, const Beam& beam,
+                     const FlagOptions& options);
+
+// ---- Grouping ---------------------------------------------------------------
+
+struct GroupingOptions {
+  double link_gap_beams = 1.0;        ///< rule 2: largest gap between extents, in beam major FWHMs (< 0: islands only)
+  double link_max_flux_ratio = 10.0;  ///< rule 3: largest S_int ratio of linked components (0 = any)
+  double diffuse_residual_ratio = 1.5;  ///< residual rms / local rms above which an island is "diffuse"
+  double diffuse_min_beams = 2.0;       ///< islands smaller than this many beam areas are never "diffuse"
+};
+
+enum class Morphology { Single, Multi, Diffuse };
+const char* morphology_name(Morphology m);  ///< "single", "multi", "diffuse"
+
+struct CatalogueSource {
+  std::int64_t id = 0;                   ///< 1-based
+  std::vector<std::size_t> components;   ///< indices into the input, ascending
+  std::vector<std::int64_t> islands;     ///< island ids, ascending, unique
+  double ra_deg = 0.0, dec_deg = 0.0;
+  double ra_err_arcsec = 0.0, dec_err_arcsec = 0.0;
+  double s_int_jy = 0.0, s_int_err_jy = 0.0;
+  double s_peak_max_jy_per_beam = 0.0;   ///< brightest component peak
+  double las_arcsec = 0.0;               ///< largest angular size (see above)
+  Morphology morphology = Morphology::Single;
+  std::uint32_t flags = 0;
+};
+
+/// Groups components into sources by the rule above. `islands` may be in any
+/// order (looked up by id); components of islands not listed count as
+/// non-diffuse. Deterministic for any thread count.
+std::vector<CatalogueSource> group_sources(const std::vector<CatalogueComponent>& components,
+                                           const std::vector<CatalogueIsland>& islands,
+                                           const Beam& beam, const GroupingOptions& options);
+
+// ---- Island pixel statistics ------------------------------------------------
+
+/// Per-island sums over the pixels carrying its label. Arrays are indexed by
+/// island id - 1. Computed from each island's bounding box (0-based,
+/// inclusive), in parallel over islands (each island's sums in a fixed order).
+struct IslandBox {
+  long x0 = 0, y0 = 0, x1 = -1, y1 = -1;  ///< 0-based inclusive bounding box
+};
+struct IslandPixelStats {
+  std::vector<double> residual_rms_jy_per_beam;  ///< sqrt(mean(residual^2)) over finite residual pixels
+  std::vector<double> mean_rms_jy_per_beam;      ///< mean of the rms map over the island
+  /// Error of the island's pixel-sum flux density [Jy], CONVENTIONS "Noise":
+  /// sigma_S = sqrt(sum_i sum_j s_i s_j rho_ij) / Omega_beam_pix, with rho the
+  /// beam-shaped noise correlation between pixels i and j of the island,
+  /// evaluated exactly (kernel truncated where rho < 1e-6).
+  std::vector<double> flux_err_jy;
+};
+/// `labels` hold island ids (0 = none). `residual` may be empty (residual rms
+/// then NaN). `beam_cov_pix` is the beam's covariance in pixel units
+/// (LocalGeometry::sky_cov_to_pixel(ellipse_to_cov(beam))); `beam_area_pix` is
+/// Omega_beam_pix.
+IslandPixelStats island_pixel_stats(const LabelsI32& labels, const std::vector<IslandBox>& boxes,
+                                    const ImageF& residual, const ImageF& rms,
+                                    const Eigen::Matrix2d& beam_cov_pix, double beam_area_pix);
+
+}  // namespace skerry

@@ -1,0 +1,87 @@
+#pragma once
+/// The catalogue tables that `skerry extract` writes: components, islands and
+/// sources, as `Table`s with our own column names (units in the names where
+/// they help), FITS/IAU units, IVOA UCD1+ words (IVOA UCD1+ controlled
+/// vocabulary 1.6, REF-VO-02) and a one-line description per column.
+///
+/// Conventions, stated in every table's meta as well: positions ICRS degrees;
+/// position angles east of north; sizes FWHM; S proportional to nu^alpha; pixel
+/// columns `*_pix1` are 1-based FITS pixels (bounding boxes inclusive); flags
+/// are the bitmask of skerry/catalogue.h. Rows are sorted by (island_id,
+/// component index), sources by source_id: a total order.
+#include <cstdint>
+#include <string>
+#include <utility>
+#include <vector>
+
+#include "skerry/catalogue.h"
+#include "skerry/table.h"
+
+namespace skerry {
+
+/// Everything one component row holds (pipeline fills it from the fit).
+/// NaN where a value does not exist (e.g. primary-beam columns without a
+/// primary-beam image).
+struct ComponentRecord {
+  std::int64_t island_id = 0;       ///< 1-based island id
+  std::int64_t component = 0;       ///< 1-based index within the island
+  std::int64_t source_id = 0;       ///< 1-based source id (grouping)
+  double x_pix = 0.0, y_pix = 0.0;  ///< 0-based centre (written 1-based)
+  double ra_deg = 0.0, dec_deg = 0.0;
+  double ra_err_arcsec = 0.0, dec_err_arcsec = 0.0;  ///< RA error is of RA*cos(Dec)
+  double s_peak_jy_per_beam = 0.0, s_peak_err_jy_per_beam = 0.0;
+  double s_int_jy = 0.0, s_int_err_jy = 0.0;
+  double maj_arcsec = 0.0, maj_err_arcsec = 0.0;  ///< fitted (beam-convolved) FWHM
+  double min_arcsec = 0.0, min_err_arcsec = 0.0;
+  double pa_deg = 0.0, pa_err_deg = 0.0;          ///< east of north, [0, 180)
+  double dc_maj_arcsec = 0.0, dc_maj_err_arcsec = 0.0;  ///< deconvolved; upper limit when unresolved
+  double dc_min_arcsec = 0.0, dc_min_err_arcsec = 0.0;
+  double dc_pa_deg = 0.0, dc_pa_err_deg = 0.0;
+  double background_jy_per_beam = 0.0;   ///< local background at the centre
+  double rms_jy_per_beam = 0.0;          ///< local rms at the centre
+  double snr = 0.0;                      ///< component SNR: fitted peak / local rms
+  double chi2_red = 0.0;                 ///< island fit reduced chi-square
+  bool resolved = false;                 ///< S_int/S_peak above the SNR-dependent envelope
+  double pb = 0.0;                       ///< primary-beam response at the centre (NaN: none given)
+  double s_peak_pbcor_jy_per_beam = 0.0; ///< primary-beam corrected peak (NaN: none)
+  double s_int_pbcor_jy = 0.0;           ///< primary-beam corrected integrated (NaN: none)
+  double s_int_pbcor_err_jy = 0.0;
+  std::uint32_t flags = 0;
+};
+
+struct IslandRecord {
+  std::int64_t island_id = 0;
+  std::int64_t n_components = 0;
+  std::int64_t n_pixels = 0;
+  double s_pix_jy = 0.0;        ///< pixel sum of (image - background) / beam area in pixels
+  double s_pix_err_jy = 0.0;    ///< its error (CONVENTIONS "Noise", correlated pixels)
+  double peak_jy_per_beam = 0.0;  ///< largest (image - background)
+  double peak_snr = 0.0;          ///< island SNR: largest (I - B)/sigma
+  double peak_x_pix = 0.0, peak_y_pix = 0.0;  ///< 0-based (written 1-based)
+  double peak_ra_deg = 0.0, peak_dec_deg = 0.0;
+  long x0 = 0, y0 = 0, x1 = 0, y1 = 0;        ///< 0-based inclusive bbox (written 1-based)
+  double residual_rms_jy_per_beam = 0.0;
+  double mean_rms_jy_per_beam = 0.0;
+  std::uint32_t flags = 0;
+};
+
+/// Key/value provenance put into every table's meta (and FITS headers):
+/// tool, version, revision, input file, image frame, beam, conventions, ...
+using Provenance = std::vector<std::pair<std::string, std::string>>;
+
+/// The convention statements every table carries (keys "conv_*").
+Provenance convention_meta();
+
+Table make_component_table(const std::vector<ComponentRecord>& rows, const Provenance& meta);
+Table make_island_table(const std::vector<IslandRecord>& rows, const Provenance& meta);
+Table make_source_table(const std::vector<CatalogueSource>& sources,
+                        const std::vector<ComponentRecord>& components, const Provenance& meta);
+
+/// Sorts component records by (island_id, component): the total order of rows.
+void sort_components(std::vector<ComponentRecord>& rows);
+
+/// Designation in IAU style from the position, truncated not rounded:
+/// PREFIX JHHMMSS.s+DDMMSS (CONVENTIONS "Catalogues and names").
+std::string designation(const std::string& prefix, double ra_deg, double dec_deg);
+
+}  // namespace skerry
