@@ -102,6 +102,7 @@ struct CatalogueComponent {
 struct CatalogueIsland {
   std::int64_t id = 0;                      ///< 1-based
   long n_pixels = 0;
+  double n_beams = 0.0;                     ///< n_pixels / Omega_beam_pix
   double residual_rms_jy_per_beam = 0.0;    ///< rms of (image - background - model) over the island
   double mean_rms_jy_per_beam = 0.0;        ///< mean local rms over the island
   std::uint32_t flags = 0;
@@ -170,7 +171,8 @@ struct IslandPixelStats {
   /// Error of the island's pixel-sum flux density [Jy], CONVENTIONS "Noise":
   /// sigma_S = sqrt(sum_i sum_j s_i s_j rho_ij) / Omega_beam_pix, with rho the
   /// beam-shaped noise correlation between pixels i and j of the island,
-  /// evaluated exactly (kernel truncated where rho < 1e-6).
+  /// evaluated exactly over the island (kernel truncated where rho < 1e-4, which
+  /// drops a fraction 1e-4 of the correlation mass).
   std::vector<double> flux_err_jy;
 };
 /// `labels` hold island ids (0 = none). `residual` may be empty (residual rms
