@@ -26,6 +26,7 @@
 /// amplitude error is sqrt(4/3) rms (a fit that also frees the shape, Condon's
 /// eq. 41 with exponents (3/2, 3/2), gives rms). The flux-scale term f S is added
 /// in quadrature in flux_err_total_jy.
+#include <cmath>
 #include <cstdint>
 #include <vector>
 

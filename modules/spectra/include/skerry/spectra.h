@@ -20,6 +20,7 @@
 ///    the flux density scale, BandFlux::rms_jy); otherwise it is an upper limit
 ///    U = limit_snr * rms (common practice). Forced flux densities
 ///    may be zero or negative: they are never logged; only detections enter fits.
+#include <cmath>
 #include <cstdint>
 #include <string>
 #include <vector>
