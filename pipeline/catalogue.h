@@ -72,10 +72,17 @@ using Provenance = std::vector<std::pair<std::string, std::string>>;
 /// The convention statements every table carries (keys "conv_*").
 Provenance convention_meta();
 
-Table make_component_table(const std::vector<ComponentRecord>& rows, const Provenance& meta);
-Table make_island_table(const std::vector<IslandRecord>& rows, const Provenance& meta);
-Table make_source_table(const std::vector<CatalogueSource>& sources,
-                        const std::vector<ComponentRecord>& components, const Provenance& meta);
+/// The UCD1+ band word for a frequency ("em.radio.750-1500MHz"); "" when unknown.
+std::string radio_band_ucd(double freq_hz);
+
+/// `freq_hz` (NaN when unknown) picks the band word of the flux-density UCDs.
+Table make_component_table(const std::vector<ComponentRecord>& rows, const Provenance& meta,
+                           double freq_hz);
+Table make_island_table(const std::vector<IslandRecord>& rows, const Provenance& meta,
+                        double freq_hz);
+/// Source names are designation(name_prefix, ra, dec).
+Table make_source_table(const std::vector<CatalogueSource>& sources, const Provenance& meta,
+                        double freq_hz, const std::string& name_prefix);
 
 /// Sorts component records by (island_id, component): the total order of rows.
 void sort_components(std::vector<ComponentRecord>& rows);

@@ -1,0 +1,210 @@
+// The JSON run record and a small SHA-256 (FIPS PUB 180-4, Secure Hash Standard).
+#include "run_record.h"
+
+#include <unistd.h>
+
+#include <array>
+#include <cstdio>
+#include <cstring>
+#include <ctime>
+#include <filesystem>
+#include <fstream>
+#include <nlohmann/json.hpp>
+
+#include "errors.h"
+#include "io/atomic_file.h"
+#include "version.h"
+
+namespace skerry {
+
+namespace {
+
+// SHA-256 round constants: first 32 bits of the fractional parts of the cube
+// roots of the first 64 primes (FIPS PUB 180-4, section 4.2.2).
+constexpr std::array<std::uint32_t, 64> kK = {
+    0x428a2f98, 0x71374491, 0xb5c0fbcf, 0xe9b5dba5, 0x3956c25b, 0x59f111f1, 0x923f82a4, 0xab1c5ed5,
+    0xd807aa98, 0x12835b01, 0x243185be, 0x550c7dc3, 0x72be5d74, 0x80deb1fe, 0x9bdc06a7, 0xc19bf174,
+    0xe49b69c1, 0xefbe4786, 0x0fc19dc6, 0x240ca1cc, 0x2de92c6f, 0x4a7484aa, 0x5cb0a9dc, 0x76f988da,
+    0x983e5152, 0xa831c66d, 0xb00327c8, 0xbf597fc7, 0xc6e00bf3, 0xd5a79147, 0x06ca6351, 0x14292967,
+    0x27b70a85, 0x2e1b2138, 0x4d2c6dfc, 0x53380d13, 0x650a7354, 0x766a0abb, 0x81c2c92e, 0x92722c85,
+    0xa2bfe8a1, 0xa81a664b, 0xc24b8b70, 0xc76c51a3, 0xd192e819, 0xd6990624, 0xf40e3585, 0x106aa070,
+    0x19a4c116, 0x1e376c08, 0x2748774c, 0x34b0bcb5, 0x391c0cb3, 0x4ed8aa4a, 0x5b9cca4f, 0x682e6ff3,
+    0x748f82ee, 0x78a5636f, 0x84c87814, 0x8cc70208, 0x90befffa, 0xa4506ceb, 0xbef9a3f7, 0xc67178f2};
+
+class Sha256 {
+ public:
+  void update(const unsigned char* p, std::size_t n) {
+    total_ += n;
+    while (n > 0) {
+      const std::size_t take = std::min(n, 64 - fill_);
+      std::memcpy(buf_ + fill_, p, take);
+      fill_ += take;
+      p += take;
+      n -= take;
+      if (fill_ == 64) { block(buf_); fill_ = 0; }
+    }
+  }
+  std::string hex() {
+    // Padding (section 5.1.1): 0x80, zeros, then the message length in bits, big-endian.
+    const std::uint64_t bits = total_ * 8;
+    const unsigned char one = 0x80, zero = 0;
+    update(&one, 1);
+    while (fill_ != 56) update(&zero, 1);
+    unsigned char len[8];
+    for (int i = 0; i < 8; ++i) len[i] = static_cast<unsigned char>(bits >> (56 - 8 * i));
+    update(len, 8);
+    static const char* digits = "0123456789abcdef";
+    std::string out;
+    for (std::uint32_t v : h_)
+      for (int s = 28; s >= 0; s -= 4) out += digits[(v >> s) & 0xf];
+    return out;
+  }
+
+ private:
+  static std::uint32_t rotr(std::uint32_t x, int n) { return (x >> n) | (x << (32 - n)); }
+  void block(const unsigned char* b) {
+    std::uint32_t w[64];
+    for (int i = 0; i < 16; ++i)
+      w[i] = (std::uint32_t(b[4 * i]) << 24) | (std::uint32_t(b[4 * i + 1]) << 16) |
+             (std::uint32_t(b[4 * i + 2]) << 8) | std::uint32_t(b[4 * i + 3]);
+    for (int i = 16; i < 64; ++i) {
+      const std::uint32_t s0 = rotr(w[i - 15], 7) ^ rotr(w[i - 15], 18) ^ (w[i - 15] >> 3);
+      const std::uint32_t s1 = rotr(w[i - 2], 17) ^ rotr(w[i - 2], 19) ^ (w[i - 2] >> 10);
+      w[i] = w[i - 16] + s0 + w[i - 7] + s1;
+    }
+    std::uint32_t a = h_[0], b2 = h_[1], c = h_[2], d = h_[3], e = h_[4], f = h_[5], g = h_[6], h = h_[7];
+    for (int i = 0; i < 64; ++i) {
+      const std::uint32_t S1 = rotr(e, 6) ^ rotr(e, 11) ^ rotr(e, 25);
+      const std::uint32_t ch = (e & f) ^ (~e & g);
+      const std::uint32_t t1 = h + S1 + ch + kK[i] + w[i];
+      const std::uint32_t S0 = rotr(a, 2) ^ rotr(a, 13) ^ rotr(a, 22);
+      const std::uint32_t maj = (a & b2) ^ (a & c) ^ (b2 & c);
+      const std::uint32_t t2 = S0 + maj;
+      h = g; g = f; f = e; e = d + t1; d = c; c = b2; b2 = a; a = t1 + t2;
+    }
+    h_[0] += a; h_[1] += b2; h_[2] += c; h_[3] += d; h_[4] += e; h_[5] += f; h_[6] += g; h_[7] += h;
+  }
+  // Initial hash value (section 5.3.3).
+  std::uint32_t h_[8] = {0x6a09e667, 0xbb67ae85, 0x3c6ef372, 0xa54ff53a,
+                         0x510e527f, 0x9b05688c, 0x1f83d9ab, 0x5be0cd19};
+  unsigned char buf_[64] = {};
+  std::size_t fill_ = 0;
+  std::uint64_t total_ = 0;
+};
+
+std::string iso_time_utc(std::chrono::system_clock::time_point t) {
+  const std::time_t tt = std::chrono::system_clock::to_time_t(t);
+  std::tm tm{};
+  gmtime_r(&tt, &tm);
+  char buf[32];
+  std::strftime(buf, sizeof buf, "%Y-%m-%dT%H:%M:%SZ", &tm);
+  return buf;
+}
+
+std::string host_name() {
+  char buf[256] = {};
+  if (gethostname(buf, sizeof buf - 1) != 0) return "unknown";
+  return buf;
+}
+
+}  // namespace
+
+std::string sha256_hex(const void* data, std::size_t size) {
+  Sha256 s;
+  s.update(static_cast<const unsigned char*>(data), size);
+  return s.hex();
+}
+
+std::string sha256_file(const std::string& path) {
+  std::ifstream in(path, std::ios::binary);
+  if (!in) throw InputError(path, "cannot open file to compute its checksum");
+  Sha256 s;
+  std::vector<char> buf(1 << 20);
+  while (in) {
+    in.read(buf.data(), static_cast<std::streamsize>(buf.size()));
+    const std::streamsize got = in.gcount();
+    if (got > 0) s.update(reinterpret_cast<const unsigned char*>(buf.data()), static_cast<std::size_t>(got));
+  }
+  if (in.bad()) throw InputError(path, "read error while computing its checksum");
+  return s.hex();
+}
+
+RunRecord::RunRecord(std::string command)
+    : command_(std::move(command)),
+      started_(std::chrono::system_clock::now()),
+      t0_(std::chrono::steady_clock::now()) {}
+
+void RunRecord::set_configuration(const std::map<std::string, std::string>& resolved,
+                                  const std::string& config_file) {
+  config_ = resolved;
+  config_file_ = config_file;
+}
+
+void RunRecord::add_input(const std::string& role, const std::string& path) {
+  Input in;
+  in.role = role;
+  in.path = path;
+  std::error_code ec;
+  in.bytes = std::filesystem::file_size(path, ec);
+  if (ec) throw InputError(path, "cannot read file size: " + ec.message());
+  in.sha256 = sha256_file(path);
+  inputs_.push_back(std::move(in));
+}
+
+void RunRecord::add_output(const std::string& path) { outputs_.push_back(path); }
+void RunRecord::set_count(const std::string& key, std::int64_t value) { counts_[key] = value; }
+void RunRecord::set_value(const std::string& key, const std::string& value) { values_[key] = value; }
+void RunRecord::add_stage(const std::string& name, double seconds) { stages_.emplace_back(name, seconds); }
+
+double RunRecord::total_seconds() const {
+  return std::chrono::duration<double>(std::chrono::steady_clock::now() - t0_).count();
+}
+
+std::string RunRecord::to_json() const {
+  nlohmann::ordered_json j;
+  j["tool"] = "skerry";
+  j["command"] = command_;
+  j["version"] = SKERRY_VERSION;
+  j["git_revision"] = SKERRY_GIT_REVISION;
+  j["started_utc"] = iso_time_utc(started_);
+  j["host"] = host_name();
+  j["threads"] = threads_;
+  j["config_file"] = config_file_;
+  nlohmann::ordered_json cfg = nlohmann::ordered_json::object();
+  for (const auto& [k, v] : config_) cfg[k] = v;  // std::map: sorted by name
+  j["configuration"] = cfg;
+  nlohmann::ordered_json ins = nlohmann::ordered_json::array();
+  for (const auto& in : inputs_)
+    ins.push_back({{"role", in.role}, {"path", in.path}, {"bytes", in.bytes}, {"sha256", in.sha256}});
+  j["inputs"] = ins;
+  j["outputs"] = outputs_;
+  nlohmann::ordered_json counts = nlohmann::ordered_json::object();
+  for (const auto& [k, v] : counts_) counts[k] = v;
+  j["counts"] = counts;
+  nlohmann::ordered_json vals = nlohmann::ordered_json::object();
+  for (const auto& [k, v] : values_) vals[k] = v;
+  j["values"] = vals;
+  nlohmann::ordered_json st = nlohmann::ordered_json::array();
+  for (const auto& [name, s] : stages_) st.push_back({{"stage", name}, {"seconds", s}});
+  j["stages"] = st;
+  j["total_seconds"] = total_seconds();
+  return j.dump(2) + "\n";
+}
+
+void RunRecord::write(const std::string& path) const { write_text_atomic(path, to_json()); }
+
+StageTimer::StageTimer(RunRecord& record, std::string name)
+    : record_(record), name_(std::move(name)), t0_(std::chrono::steady_clock::now()) {}
+
+StageTimer::~StageTimer() {
+  if (!stopped_) stop();
+}
+
+double StageTimer::stop() {
+  const double s = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0_).count();
+  if (!stopped_) record_.add_stage(name_, s);
+  stopped_ = true;
+  return s;
+}
+
+}  // namespace skerry
