@@ -2,6 +2,24 @@
 /// FITS images in and out (CFITSIO), with their celestial WCS (WCSLIB, wcs.h).
 /// The only place that converts between FITS 1-based pixels and the 0-based
 /// pixels of the modules is wcs.cpp.
+///
+/// Reader decisions (documented for users):
+///  - BUNIT: "Jy/beam" in any letter case (also "Jy/bm", "Jy beam-1", "Jy.beam-1")
+///    is taken as is; "mJy/beam" and "uJy/beam" are scaled to Jy/beam (the factor
+///    is recorded in SkyImage::bunit_scale); anything else, or no BUNIT, is an
+///    InputError unless accept_any_bunit is set.
+///  - Frequency, first found: the override; a spectral axis CTYPEn = 'FREQ...'
+///    (n = 3 or 4, at the chosen plane, CUNITn Hz/kHz/MHz/GHz; also when NAXIS = 2
+///    and only the keywords are present); the keyword FREQ [Hz] (what
+///    header_for_grid writes); RESTFRQ / RESTFREQ [Hz].
+///  - Beam: the override when given; else BMAJ/BMIN [deg, FWHM] and BPA [deg east
+///    of north] (BPA may be missing only for a circular beam). BMIN > BMAJ is
+///    read as the same ellipse with the axes swapped (PA + 90). Missing, zero or
+///    negative beam keywords: InputError when require_beam.
+///  - BLANK (integer data) and NaN both become NaN; BSCALE/BZERO are applied by
+///    CFITSIO. A plane where every pixel is blank throws NoDataError unless
+///    allow_all_blank.
+#include <limits>
 #include <memory>
 #include <optional>
 #include <string>
@@ -25,6 +43,7 @@ struct ImageReadOptions {
   std::optional<Beam> beam_override;        ///< used when the header lacks BMAJ/BMIN/BPA (or to replace them)
   std::optional<double> freq_hz_override;   ///< observing frequency [Hz]
   bool require_beam = true;                 ///< missing beam is an error (InputError)
+  bool allow_all_blank = false;             ///< else an all-blank plane throws NoDataError
 };
 
 struct SkyImage {
@@ -34,6 +53,7 @@ struct SkyImage {
   Beam beam;                              ///< restoring beam (invalid when unknown and not required)
   double freq_hz = std::numeric_limits<double>::quiet_NaN();  ///< NaN when unknown
   std::string bunit;                      ///< as found in the header
+  double bunit_scale = 1.0;               ///< factor applied to the stored values to give Jy/beam
   std::string frame;                      ///< "ICRS", "FK5", "GALACTIC", ... of the image axes
   std::string object;                     ///< OBJECT keyword or the file's stem
   /// The header cards (80-char records, no END) of a 2-D image with this image's
@@ -47,11 +67,21 @@ struct SkyImage {
 /// (checked before any allocation).
 SkyImage read_sky_image(const std::string& path, const ImageReadOptions& options = {});
 
+struct GridSpec;
+/// An in-memory image on a described grid (path "", object "", frame from the
+/// grid): what the simulator writes through write_fits_image.
+SkyImage make_sky_image(const GridSpec& grid, ImageF pixels, const std::string& object = "");
+
 /// Read a primary-beam image for `like` (same pixel grid, values in 0..1];
-/// throws InputError when its shape differs.
+/// throws InputError when its shape or its sky grid differs (checked at 5 pixels
+/// to 0.01 pixel), or a value exceeds 1.001. Values <= 0 become NaN.
 ImageF read_primary_beam(const std::string& path, const SkyImage& like);
 
 /// Write a 2-D image with `like`'s WCS (atomically: temp file, then rename).
+/// float32 (labels: int32, BUNIT omitted); cards of like.wcs_header except the
+/// structural ones (SIMPLE, BITPIX, NAXIS*, EXTEND, BSCALE, BZERO, BLANK, BUNIT);
+/// an extra card replaces a card of the same key. No date or host cards (outputs
+/// are byte-identical for identical inputs).
 /// Throws OutputError. `bunit` e.g. "JY/BEAM"; extra cards are (KEY, value) where
 /// value is already FITS-formatted (e.g. "'text'" or "1.5").
 void write_fits_image(const std::string& path, const ImageF& pixels, const SkyImage& like,

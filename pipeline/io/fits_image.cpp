@@ -1,0 +1,618 @@
+// FITS images in and out through CFITSIO (see fits_image.h for the decisions).
+//
+// Sources: FITS Standard 4.0 (IAU FITS Working Group 2016; Pence et al. 2010,
+// A&A 524, A42 for 3.0): BITPIX, NAXISn, BSCALE/BZERO (physical = BZERO + BSCALE x
+// stored), BLANK for integer data and NaN for floating data (REF-FITS-02), data
+// padded to 2880-byte blocks. Beam keywords BMAJ/BMIN/BPA in degrees (common
+// practice, REF-FITS-03). Tiled image compression: Pence et al. 2009 (FITS tiled
+// image convention), handled by CFITSIO.
+#include "io/fits_image.h"
+
+#include <fitsio.h>
+#include <unistd.h>
+
+#include <algorithm>
+#include <cctype>
+#include <cmath>
+#include <cstdint>
+#include <cstring>
+#include <filesystem>
+#include <fstream>
+#include <limits>
+#include <mutex>
+#include <optional>
+#include <stdexcept>
+
+#include "errors.h"
+#include "io/atomic_file.h"
+#include "io/wcs.h"
+#include "skerry/constants.h"
+
+namespace skerry {
+
+namespace fs = std::filesystem;
+
+namespace {
+
+// CFITSIO built without reentrancy support must not be entered by two threads.
+std::recursive_mutex g_cfitsio_mutex;
+struct CfitsioGuard {
+  CfitsioGuard() : locked(!fits_is_reentrant()) {
+    if (locked) g_cfitsio_mutex.lock();
+  }
+  ~CfitsioGuard() {
+    if (locked) g_cfitsio_mutex.unlock();
+  }
+  CfitsioGuard(const CfitsioGuard&) = delete;
+  CfitsioGuard& operator=(const CfitsioGuard&) = delete;
+  bool locked;
+};
+
+std::string trim(const std::string& s) {
+  std::size_t b = s.find_first_not_of(' ');
+  if (b == std::string::npos) return "";
+  std::size_t e = s.find_last_not_of(' ');
+  return s.substr(b, e - b + 1);
+}
+std::string upper(std::string s) {
+  for (char& c : s) c = static_cast<char>(std::toupper(static_cast<unsigned char>(c)));
+  return s;
+}
+std::string lower(std::string s) {
+  for (char& c : s) c = static_cast<char>(std::tolower(static_cast<unsigned char>(c)));
+  return s;
+}
+std::string one_line(std::string s) {
+  for (char& c : s)
+    if (c == '\n' || c == '\r' || c == '\t') c = ' ';
+  return trim(s);
+}
+
+/// CFITSIO status and its first stacked message as one line (the stack is cleared).
+std::string cfitsio_text(int status) {
+  char txt[FLEN_STATUS] = {0};
+  fits_get_errstatus(status, txt);
+  std::string first;
+  char msg[FLEN_ERRMSG];
+  while (fits_read_errmsg(msg)) {
+    if (first.empty()) first = one_line(msg);
+  }
+  std::string s = one_line(txt);
+  if (!first.empty() && lower(first) != lower(s)) s += " (" + first + ")";
+  return "CFITSIO error " + std::to_string(status) + ": " + s;
+}
+
+struct FitsHandle {
+  fitsfile* f = nullptr;
+  ~FitsHandle() {
+    if (f) {
+      int s = 0;
+      fits_close_file(f, &s);
+      fits_clear_errmsg();
+    }
+  }
+};
+
+std::optional<std::string> key_string(fitsfile* f, const std::string& path, const char* key) {
+  char value[FLEN_VALUE] = {0};
+  int status = 0;
+  if (fits_read_key(f, TSTRING, key, value, nullptr, &status)) {
+    if (status == KEY_NO_EXIST || status == VALUE_UNDEFINED) {
+      fits_clear_errmsg();
+      return std::nullopt;
+    }
+    throw InputError(path, std::string("cannot read keyword ") + key + ": " + cfitsio_text(status));
+  }
+  return trim(value);
+}
+
+std::optional<double> key_double(fitsfile* f, const std::string& path, const char* key) {
+  double v = 0.0;
+  int status = 0;
+  if (fits_read_key(f, TDOUBLE, key, &v, nullptr, &status)) {
+    if (status == KEY_NO_EXIST || status == VALUE_UNDEFINED) {
+      fits_clear_errmsg();
+      return std::nullopt;
+    }
+    fits_clear_errmsg();
+    throw InputError(path, std::string("keyword ") + key + " is not a number");
+  }
+  if (!std::isfinite(v)) throw InputError(path, std::string("keyword ") + key + " is not finite");
+  return v;
+}
+
+std::string file_stem(const std::string& path) {
+  std::string n = fs::path(path).filename().string();
+  for (const char* ext : {".gz", ".fz", ".fits", ".fit", ".fts"}) {
+    const std::string e(ext);
+    if (n.size() > e.size() && lower(n.substr(n.size() - e.size())) == e) n.resize(n.size() - e.size());
+  }
+  return n;
+}
+
+/// Interpretation of BUNIT: factor to Jy/beam, or nullopt when not a Jy/beam unit.
+/// The "Jy" and "beam" parts are compared without regard to letter case; the SI
+/// prefix is case-sensitive (m = milli, u or micro sign = micro; "MJY" is refused
+/// as ambiguous with mega).
+std::optional<double> jy_per_beam_scale(const std::string& bunit) {
+  std::string s;
+  for (char c : bunit)
+    if (c != ' ') s += c;
+  double scale = 1.0;
+  std::string rest;
+  const std::string low = lower(s);
+  if (low.rfind("jy", 0) == 0) {
+    rest = low.substr(2);
+  } else if (s.size() > 2 && s[0] == 'm' && low.compare(1, 2, "jy") == 0) {
+    scale = 1e-3;
+    rest = low.substr(3);
+  } else if (s.size() > 2 && s[0] == 'u' && low.compare(1, 2, "jy") == 0) {
+    scale = 1e-6;
+    rest = low.substr(3);
+  } else if (s.rfind("\xc2\xb5", 0) == 0 && low.compare(2, 2, "jy") == 0) {  // micro sign
+    scale = 1e-6;
+    rest = low.substr(4);
+  } else {
+    return std::nullopt;
+  }
+  for (const char* ok : {"/beam", "/bm", "beam-1", ".beam-1", "beam^-1", ".beam^-1", "/beam1"})
+    if (rest == ok) return scale;
+  return std::nullopt;
+}
+
+constexpr const char* kStructural[] = {"SIMPLE", "BITPIX", "NAXIS", "EXTEND", "BSCALE", "BZERO",
+                                       "BLANK", "BUNIT", "PCOUNT", "GCOUNT", "XTENSION", "END",
+                                       "CHECKSUM", "DATASUM"};
+
+bool is_structural(const std::string& key) {
+  for (const char* k : kStructural)
+    if (key == k) return true;
+  // NAXISn
+  if (key.rfind("NAXIS", 0) == 0 &&
+      std::all_of(key.begin() + 5, key.end(), [](char c) { return std::isdigit(static_cast<unsigned char>(c)); }))
+    return true;
+  return false;
+}
+
+std::uint64_t physical_memory_bytes() {
+  const long pages = ::sysconf(_SC_PHYS_PAGES);
+  const long page = ::sysconf(_SC_PAGESIZE);
+  if (pages <= 0 || page <= 0) return std::numeric_limits<std::uint64_t>::max();
+  return static_cast<std::uint64_t>(pages) * static_cast<std::uint64_t>(page);
+}
+
+std::string gib(std::uint64_t bytes) {
+  char buf[32];
+  std::snprintf(buf, sizeof buf, "%.3g GiB", static_cast<double>(bytes) / (1024.0 * 1024.0 * 1024.0));
+  return buf;
+}
+
+/// Move to the HDU the options ask for. Returns its 1-based number.
+int select_hdu(fitsfile* f, const std::string& path, const std::string& hdu) {
+  int status = 0, type = 0;
+  if (hdu.empty()) {
+    int naxis = 0;
+    if (fits_get_img_dim(f, &naxis, &status))
+      throw InputError(path, "cannot read the primary header: " + cfitsio_text(status));
+    if (naxis > 0) return 1;
+    // Empty primary: the first image extension with data (tile-compressed images
+    // are presented as image HDUs by CFITSIO).
+    for (int n = 2;; ++n) {
+      status = 0;
+      if (fits_movabs_hdu(f, n, &type, &status)) {
+        fits_clear_errmsg();
+        if (status == END_OF_FILE || status == BAD_HDU_NUM)
+          throw InputError(path, "holds no image (empty primary HDU and no image extension)");
+        throw InputError(path, "cannot read HDU " + std::to_string(n) + ": " + cfitsio_text(status));
+      }
+      if (type != IMAGE_HDU) continue;
+      if (fits_get_img_dim(f, &naxis, &status))
+        throw InputError(path, "cannot read HDU " + std::to_string(n) + ": " + cfitsio_text(status));
+      if (naxis > 0) return n;
+    }
+  }
+  if (std::all_of(hdu.begin(), hdu.end(), [](char c) { return std::isdigit(static_cast<unsigned char>(c)); })) {
+    long n = 0;
+    try {
+      n = std::stol(hdu);
+    } catch (const std::exception&) {
+      n = -1;
+    }
+    if (n < 1 || n > 100000) throw InputError(path, "HDU number " + hdu + " is not valid (1 = primary)");
+    if (fits_movabs_hdu(f, static_cast<int>(n), &type, &status)) {
+      fits_clear_errmsg();
+      throw InputError(path, "has no HDU " + hdu + " (HDUs are counted from 1 = primary)");
+    }
+    if (type != IMAGE_HDU) throw InputError(path, "HDU " + hdu + " is a table, not an image");
+    return static_cast<int>(n);
+  }
+  std::vector<char> name(hdu.begin(), hdu.end());
+  name.push_back('\0');
+  if (fits_movnam_hdu(f, ANY_HDU, name.data(), 0, &status)) {
+    fits_clear_errmsg();
+    throw InputError(path, "has no extension named '" + hdu + "'");
+  }
+  fits_get_hdu_type(f, &type, &status);
+  if (type != IMAGE_HDU) throw InputError(path, "extension '" + hdu + "' is a table, not an image");
+  int num = 0;
+  fits_get_hdu_num(f, &num);
+  return num;
+}
+
+}  // namespace
+
+SkyImage read_sky_image(const std::string& path, const ImageReadOptions& opt) {
+  std::error_code ec;
+  const auto st = fs::status(path, ec);
+  if (ec || !fs::exists(st)) throw InputError(path, "file not found");
+  if (fs::is_directory(st)) throw InputError(path, "is a folder, not a FITS file");
+  {
+    std::ifstream in(path, std::ios::binary);
+    if (!in) throw InputError(path, std::string("cannot be read: ") + std::strerror(errno));
+    char head[10] = {0};
+    in.read(head, 9);
+    const auto got = in.gcount();
+    const bool gz = got >= 2 && static_cast<unsigned char>(head[0]) == 0x1f &&
+                    static_cast<unsigned char>(head[1]) == 0x8b;
+    if (got == 0) throw InputError(path, "is empty, not a FITS file");
+    if (!gz && (got < 9 || std::memcmp(head, "SIMPLE  =", 9) != 0))
+      throw InputError(path, "not a FITS file (does not start with SIMPLE  =)");
+  }
+
+  CfitsioGuard guard;
+  FitsHandle fits;
+  int status = 0;
+  if (fits_open_diskfile(&fits.f, path.c_str(), READONLY, &status)) {
+    fits.f = nullptr;
+    throw InputError(path, "cannot open as FITS: " + cfitsio_text(status));
+  }
+  fitsfile* f = fits.f;
+  const int hdu_num = select_hdu(f, path, opt.hdu);
+  const std::string where = hdu_num == 1 ? std::string() : " (HDU " + std::to_string(hdu_num) + ")";
+
+  int bitpix = 0, naxis = 0;
+  LONGLONG naxes[9] = {0};
+  if (fits_get_img_paramll(f, 9, &bitpix, &naxis, naxes, &status))
+    throw InputError(path, "cannot read the image dimensions" + where + ": " + cfitsio_text(status));
+  if (naxis < 2 || naxis > 4)
+    throw InputError(path, "image" + where + " has " + std::to_string(naxis) +
+                               " axes; 2 to 4 are supported (x, y, optional frequency and Stokes)");
+  std::uint64_t nelem = 1;
+  std::string dims;
+  for (int k = 0; k < naxis; ++k) {
+    if (naxes[k] < 1)
+      throw InputError(path, "NAXIS" + std::to_string(k + 1) + " = " + std::to_string(naxes[k]) +
+                                 ": the image" + where + " has no pixels");
+    dims += (k ? " x " : "") + std::to_string(naxes[k]);
+    if (__builtin_mul_overflow(nelem, static_cast<std::uint64_t>(naxes[k]), &nelem))
+      throw InputError(path, "axis lengths " + dims + "... overflow a 64-bit pixel count");
+  }
+  std::uint64_t data_bytes = 0;
+  if (__builtin_mul_overflow(nelem, static_cast<std::uint64_t>(std::abs(bitpix) / 8), &data_bytes))
+    throw InputError(path, "axis lengths " + dims + " overflow a 64-bit byte count");
+
+  int compressed = fits_is_compressed_image(f, &status);
+  status = 0;
+  if (!compressed) {
+    // Truncated data or a header lying about its axis lengths: the header promises
+    // more data bytes than the (uncompressed) file holds. Checked before anything
+    // is allocated or read.
+    LONGLONG headstart = 0, datastart = 0, dataend = 0;
+    if (fits_get_hduaddrll(f, &headstart, &datastart, &dataend, &status))
+      throw InputError(path, "cannot locate the image data" + where + ": " + cfitsio_text(status));
+    const LONGLONG file_size = f->Fptr->logfilesize;
+    const std::uint64_t have =
+        file_size > datastart ? static_cast<std::uint64_t>(file_size - datastart) : 0;
+    if (have < data_bytes)
+      throw InputError(path, "truncated: the header" + where + " declares " + dims + " pixels of " +
+                                 std::to_string(std::abs(bitpix) / 8) + " bytes (" +
+                                 std::to_string(data_bytes) + " bytes of data) but the file holds " +
+                                 std::to_string(have) + " after the header");
+  }
+  const long nx = static_cast<long>(naxes[0]), ny = static_cast<long>(naxes[1]);
+  std::uint64_t plane_bytes = 0;
+  if (__builtin_mul_overflow(static_cast<std::uint64_t>(nx) * static_cast<std::uint64_t>(ny),
+                             sizeof(float), &plane_bytes) ||
+      plane_bytes > physical_memory_bytes())
+    throw InputError(path, "image plane of " + std::to_string(nx) + " x " + std::to_string(ny) +
+                               " pixels needs " + gib(plane_bytes) + ", more than this machine's " +
+                               gib(physical_memory_bytes()) + " of memory");
+
+  // Plane along the extra axes.
+  long plane_at[5] = {0, 0, 0, 0, 0};  // 0-based index per axis (axes 3 and 4)
+  std::size_t used = 0;
+  for (int k = 2; k < naxis; ++k) {
+    if (naxes[k] == 1) continue;
+    const std::string key = "CTYPE" + std::to_string(k + 1);
+    const auto ctype = key_string(f, path, key.c_str());
+    const std::string axis_desc = "axis " + std::to_string(k + 1) +
+                                  (ctype ? " (" + *ctype + ")" : std::string()) + " has " +
+                                  std::to_string(naxes[k]) + " planes";
+    if (used >= opt.plane.size())
+      throw InputError(path, axis_desc + ": choose one with the plane option (0-based)");
+    const long p = opt.plane[used++];
+    if (p < 0 || p >= naxes[k])
+      throw InputError(path, axis_desc + ": plane index " + std::to_string(p) + " is outside 0.." +
+                                 std::to_string(naxes[k] - 1));
+    plane_at[k] = p;
+  }
+  if (used < opt.plane.size())
+    throw InputError(path, "the plane option gives " + std::to_string(opt.plane.size()) +
+                               " indices but the image" + where + " has " + std::to_string(used) +
+                               " axes of more than one plane");
+
+  // World coordinates.
+  char* hdr = nullptr;
+  int nkeys = 0;
+  if (compressed)
+    fits_convert_hdr2str(f, 1, nullptr, 0, &hdr, &nkeys, &status);
+  else
+    fits_hdr2str(f, 1, nullptr, 0, &hdr, &nkeys, &status);
+  if (status) {
+    if (hdr) fits_free_memory(hdr, &status);
+    throw InputError(path, "cannot read the header" + where + ": " + cfitsio_text(status));
+  }
+  std::string header(hdr, std::strlen(hdr));
+  {
+    int s2 = 0;
+    fits_free_memory(hdr, &s2);
+  }
+  SkyImage out;
+  out.path = path;
+  std::string cards2d;
+  try {
+    out.wcs = wcs_from_header(header, &out.frame, &cards2d);
+  } catch (const std::invalid_argument& e) {
+    throw InputError(path, e.what());
+  }
+
+  // BUNIT.
+  const auto bunit = key_string(f, path, "BUNIT");
+  out.bunit = bunit.value_or("");
+  const auto scale = bunit ? jy_per_beam_scale(*bunit) : std::nullopt;
+  if (scale) {
+    out.bunit_scale = *scale;
+  } else if (!opt.accept_any_bunit) {
+    if (!bunit)
+      throw InputError(path, "has no BUNIT keyword (expected Jy/beam; an override accepts any unit)");
+    throw InputError(path, "BUNIT '" + *bunit +
+                               "' is not Jy/beam (accepted: Jy/beam, mJy/beam, uJy/beam; an "
+                               "override accepts any unit)");
+  }
+
+  // Restoring beam.
+  if (opt.beam_override) {
+    if (!opt.beam_override->valid())
+      throw UsageError("the beam override is not a valid beam (need maj >= min > 0)");
+    out.beam = *opt.beam_override;
+  } else {
+    const auto bmaj = key_double(f, path, "BMAJ");
+    const auto bmin = key_double(f, path, "BMIN");
+    const auto bpa = key_double(f, path, "BPA");
+    if (bmaj && bmin) {
+      if (!(*bmaj > 0.0 && *bmin > 0.0)) {
+        if (opt.require_beam)
+          throw InputError(path, "beam BMAJ = " + fits_real(*bmaj) + ", BMIN = " + fits_real(*bmin) +
+                                     " deg is not positive (give the beam explicitly)");
+      } else {
+        double maj = *bmaj, min = *bmin, pa = 0.0;
+        if (bpa) {
+          pa = *bpa;
+        } else if (std::abs(maj - min) > 1e-9 * maj) {
+          if (opt.require_beam)
+            throw InputError(path, "has BMAJ and BMIN but no BPA for an elliptical beam");
+          maj = min = 0.0;
+        }
+        if (min > maj) {  // same ellipse, axes named the other way round
+          std::swap(maj, min);
+          pa += 90.0;
+        }
+        pa = std::fmod(pa, 180.0);
+        if (pa < 0.0) pa += 180.0;
+        out.beam = Beam{maj * kDegToArcsec, min * kDegToArcsec, pa};
+      }
+    } else if (opt.require_beam) {
+      throw InputError(path, std::string("has no restoring beam (") + (bmaj ? "BMIN" : "BMAJ") +
+                                 " missing; give the beam explicitly)");
+    }
+  }
+
+  // Observing frequency.
+  if (opt.freq_hz_override) {
+    if (!(*opt.freq_hz_override > 0.0) || !std::isfinite(*opt.freq_hz_override))
+      throw UsageError("the frequency override must be a positive number of Hz");
+    out.freq_hz = *opt.freq_hz_override;
+  } else {
+    for (int k = 2; k < 4 && !std::isfinite(out.freq_hz); ++k) {
+      const std::string n = std::to_string(k + 1);
+      const auto ctype = key_string(f, path, ("CTYPE" + n).c_str());
+      if (!ctype || upper(*ctype).rfind("FREQ", 0) != 0) continue;
+      const auto crval = key_double(f, path, ("CRVAL" + n).c_str());
+      if (!crval) throw InputError(path, "spectral axis " + n + " (FREQ) has no CRVAL" + n);
+      // Paper I: world = CRVAL + CDELT (p - CRPIX); FITS defaults CDELT = 1, CRPIX = 0.
+      auto cdelt = key_double(f, path, ("CDELT" + n).c_str());
+      if (!cdelt) cdelt = key_double(f, path, ("CD" + n + "_" + n).c_str());
+      const double crpix = key_double(f, path, ("CRPIX" + n).c_str()).value_or(0.0);
+      const double pix1 = static_cast<double>(plane_at[k]) + 1.0;
+      const std::string cunit = key_string(f, path, ("CUNIT" + n).c_str()).value_or("Hz");
+      double to_hz = 0.0;
+      const std::string u = lower(cunit);
+      if (u == "hz" || u.empty()) to_hz = 1.0;
+      else if (u == "khz") to_hz = 1e3;
+      else if (cunit == "MHz" || cunit == "MHZ") to_hz = 1e6;
+      else if (u == "ghz") to_hz = 1e9;
+      else throw InputError(path, "CUNIT" + n + " '" + cunit + "' of the FREQ axis is not Hz, kHz, MHz or GHz");
+      const double fhz = (*crval + cdelt.value_or(1.0) * (pix1 - crpix)) * to_hz;
+      if (!(fhz > 0.0)) throw InputError(path, "frequency of the chosen plane is not positive");
+      out.freq_hz = fhz;
+    }
+    for (const char* key : {"FREQ", "RESTFRQ", "RESTFREQ"}) {
+      if (std::isfinite(out.freq_hz)) break;
+      if (const auto v = key_double(f, path, key)) {
+        if (!(*v > 0.0)) throw InputError(path, std::string("keyword ") + key + " is not a positive frequency");
+        out.freq_hz = *v;
+      }
+    }
+  }
+  out.object = key_string(f, path, "OBJECT").value_or("");
+  if (out.object.empty()) out.object = file_stem(path);
+
+  // Pixels of the chosen plane: CFITSIO applies BSCALE/BZERO and turns BLANK (and
+  // NaN) into the null value NaN.
+  out.pixels.resize(ny, nx);
+  long fpixel[4] = {1, 1, 1, 1}, lpixel[4] = {nx, ny, 1, 1}, inc[4] = {1, 1, 1, 1};
+  for (int k = 2; k < naxis; ++k) fpixel[k] = lpixel[k] = plane_at[k] + 1;
+  float nulval = std::numeric_limits<float>::quiet_NaN();
+  int anynul = 0;
+  if (fits_read_subset(f, TFLOAT, fpixel, lpixel, inc, &nulval, out.pixels.data(), &anynul, &status))
+    throw InputError(path, "cannot read the pixels" + where + ": " + cfitsio_text(status));
+
+  std::size_t finite = 0;
+  float* px = out.pixels.data();
+  const std::size_t npix = static_cast<std::size_t>(nx) * static_cast<std::size_t>(ny);
+  const float fscale = static_cast<float>(out.bunit_scale);
+  for (std::size_t i = 0; i < npix; ++i) {
+    if (std::isfinite(px[i])) {
+      ++finite;
+      if (fscale != 1.0f) px[i] *= fscale;
+    } else {
+      px[i] = std::numeric_limits<float>::quiet_NaN();  // +-inf is no data too
+    }
+  }
+  if (finite == 0 && !opt.allow_all_blank)
+    throw NoDataError(path, "every pixel of the image" + where + " is blank (NaN or BLANK)");
+
+  out.wcs_header = fits_card("NAXIS", "2") + fits_card("NAXIS1", std::to_string(nx)) +
+                   fits_card("NAXIS2", std::to_string(ny)) + cards2d;
+  if (out.beam.valid()) {
+    out.wcs_header += fits_card("BMAJ", fits_real(out.beam.maj_arcsec * kArcsecToDeg), "beam major FWHM [deg]");
+    out.wcs_header += fits_card("BMIN", fits_real(out.beam.min_arcsec * kArcsecToDeg), "beam minor FWHM [deg]");
+    out.wcs_header += fits_card("BPA", fits_real(out.beam.pa_deg), "beam PA east of north [deg]");
+  }
+  if (std::isfinite(out.freq_hz))
+    out.wcs_header += fits_card("FREQ", fits_real(out.freq_hz), "observing frequency [Hz]");
+  return out;
+}
+
+SkyImage make_sky_image(const GridSpec& grid, ImageF pixels, const std::string& object) {
+  if (pixels.rows() != grid.ny || pixels.cols() != grid.nx)
+    throw std::invalid_argument("make_sky_image: pixel array shape differs from the grid");
+  SkyImage im;
+  im.wcs_header = header_for_grid(grid);
+  im.wcs = wcs_from_header(im.wcs_header, &im.frame);
+  im.pixels = std::move(pixels);
+  im.beam = grid.beam;
+  if (grid.freq_hz > 0.0) im.freq_hz = grid.freq_hz;
+  im.bunit = "JY/BEAM";
+  im.object = object;
+  return im;
+}
+
+ImageF read_primary_beam(const std::string& path, const SkyImage& like) {
+  ImageReadOptions o;
+  o.accept_any_bunit = true;
+  o.require_beam = false;
+  SkyImage pb = read_sky_image(path, o);
+  if (pb.pixels.rows() != like.pixels.rows() || pb.pixels.cols() != like.pixels.cols())
+    throw InputError(path, "primary beam is " + std::to_string(pb.pixels.cols()) + " x " +
+                               std::to_string(pb.pixels.rows()) + " pixels but the image is " +
+                               std::to_string(like.pixels.cols()) + " x " +
+                               std::to_string(like.pixels.rows()));
+  if (like.wcs) {
+    const double w = static_cast<double>(like.pixels.cols() - 1), h = static_cast<double>(like.pixels.rows() - 1);
+    const double pts[5][2] = {{0, 0}, {w, 0}, {0, h}, {w, h}, {0.5 * w, 0.5 * h}};
+    for (const auto& p : pts) {
+      double ra, dec, x, y;
+      if (!like.wcs->pix_to_sky(p[0], p[1], ra, dec)) continue;
+      if (!pb.wcs->sky_to_pix(ra, dec, x, y) || std::hypot(x - p[0], y - p[1]) > 0.01)
+        throw InputError(path, "primary beam is not on the image's pixel grid (pixel (" +
+                                   std::to_string(static_cast<long>(p[0])) + ", " +
+                                   std::to_string(static_cast<long>(p[1])) + ") differs)");
+    }
+  }
+  float* v = pb.pixels.data();
+  for (Eigen::Index i = 0; i < pb.pixels.size(); ++i) {
+    if (!std::isfinite(v[i])) continue;
+    if (v[i] > 1.001f)
+      throw InputError(path, "primary-beam value " + fits_real(v[i]) + " exceeds 1 (expected a gain in (0, 1])");
+    if (v[i] <= 0.0f) v[i] = std::numeric_limits<float>::quiet_NaN();
+  }
+  return std::move(pb.pixels);
+}
+
+namespace {
+
+void write_image(const std::string& path, int bitpix, int datatype, const void* data, long nx,
+                 long ny, const SkyImage& like, const std::string* bunit,
+                 const std::vector<std::pair<std::string, std::string>>& extra) {
+  if (nx < 1 || ny < 1) throw OutputError(path, "image has no pixels");
+  std::vector<std::string> extra_cards;
+  for (const auto& [k, v] : extra) {
+    try {
+      extra_cards.push_back(fits_card(k, v));
+    } catch (const std::invalid_argument& e) {
+      throw OutputError(path, e.what());
+    }
+  }
+  AtomicOutput out(path);
+  CfitsioGuard guard;
+  fitsfile* f = nullptr;
+  int status = 0;
+  auto fail = [&](const std::string& what) {
+    const std::string text = cfitsio_text(status);
+    if (f) {
+      int s = 0;
+      fits_close_file(f, &s);
+      fits_clear_errmsg();
+      f = nullptr;
+    }
+    throw OutputError(path, what + ": " + text);
+  };
+  if (fits_create_diskfile(&f, out.temp_path().c_str(), &status)) {
+    f = nullptr;
+    fail("cannot create");
+  }
+  long naxes[2] = {nx, ny};
+  if (fits_create_img(f, bitpix, 2, naxes, &status)) fail("cannot write the header");
+  const std::string& h = like.wcs_header;
+  for (std::size_t i = 0; i + 80 <= h.size(); i += 80) {
+    std::string card = h.substr(i, 80);
+    const std::string key = trim(card.substr(0, 8));
+    if (key.empty() || is_structural(key)) continue;
+    if (fits_write_record(f, card.c_str(), &status)) fail("cannot write card " + key);
+  }
+  if (bunit) {
+    const std::string card = fits_card("BUNIT", fits_string(*bunit));
+    if (fits_update_card(f, "BUNIT", card.c_str(), &status)) fail("cannot write BUNIT");
+  }
+  for (std::size_t i = 0; i < extra_cards.size(); ++i) {
+    const std::string& key = extra[i].first;
+    if (fits_update_card(f, key.c_str(), extra_cards[i].c_str(), &status)) fail("cannot write card " + key);
+  }
+  const LONGLONG n = static_cast<LONGLONG>(nx) * ny;
+  if (fits_write_img(f, datatype, 1, n, const_cast<void*>(data), &status)) fail("write failed");
+  if (fits_close_file(f, &status)) {
+    f = nullptr;
+    fail("write failed");
+  }
+  f = nullptr;
+  out.commit();
+}
+
+}  // namespace
+
+void write_fits_image(const std::string& path, const ImageF& pixels, const SkyImage& like,
+                      const std::string& bunit,
+                      const std::vector<std::pair<std::string, std::string>>& extra_cards) {
+  write_image(path, FLOAT_IMG, TFLOAT, pixels.data(), static_cast<long>(pixels.cols()),
+              static_cast<long>(pixels.rows()), like, &bunit, extra_cards);
+}
+
+void write_fits_labels(const std::string& path, const LabelsI32& labels, const SkyImage& like,
+                       const std::vector<std::pair<std::string, std::string>>& extra_cards) {
+  static_assert(sizeof(int) == sizeof(std::int32_t), "TINT must be 32-bit");
+  write_image(path, LONG_IMG, TINT, labels.data(), static_cast<long>(labels.cols()),
+              static_cast<long>(labels.rows()), like, nullptr, extra_cards);
+}
+
+}  // namespace skerry

@@ -1,0 +1,564 @@
+// The WCSLIB adapter (see wcs.h for the conventions it implements).
+//
+// Sources:
+//  - E. W. Greisen & M. R. Calabretta 2002, A&A 395, 1061 (FITS WCS Paper I):
+//    pixel -> intermediate coordinates through CRPIX, PC/CD, CDELT.
+//  - M. R. Calabretta & E. W. Greisen 2002, A&A 395, 1077 (Paper II): projections,
+//    RADESYS/EQUINOX defaults (sect. 3.1), CROTA2 <-> PC (eq. 189).
+//  - ERFA 2.0 (the open edition of IAU SOFA): eraFk5hip (FK5 -> Hipparcos/ICRS frame
+//    rotation, F. Mignard & M. Froeschle 2000, A&A 354, 732), eraPmat76 (IAU 1976
+//    precession, Lieske et al. 1977), eraG2icrs/eraIcrs2g (Galactic <-> ICRS, IAU
+//    1958 Galactic system as realised in ICRS by the Hipparcos Catalogue, ESA 1997).
+#include "io/wcs.h"
+
+#include <erfa.h>
+#include <wcslib/wcs.h>
+#include <wcslib/wcserr.h>
+#include <wcslib/wcsfix.h>
+#include <wcslib/wcshdr.h>
+#include <wcslib/wcsmath.h>
+#include <wcslib/wcsutil.h>
+
+#include <algorithm>
+#include <cctype>
+#include <cmath>
+#include <cstdio>
+#include <cstdlib>
+#include <cstring>
+#include <mutex>
+#include <stdexcept>
+#include <vector>
+
+#include "skerry/constants.h"
+
+namespace skerry {
+
+namespace {
+
+// wcspih/wcserr_enable touch global state in WCSLIB; parsing is serialised.
+std::mutex g_parse_mutex;
+
+std::string trim(const std::string& s) {
+  std::size_t b = s.find_first_not_of(' ');
+  if (b == std::string::npos) return "";
+  std::size_t e = s.find_last_not_of(' ');
+  return s.substr(b, e - b + 1);
+}
+
+std::string upper(std::string s) {
+  for (char& c : s) c = static_cast<char>(std::toupper(static_cast<unsigned char>(c)));
+  return s;
+}
+
+std::string one_line(std::string s) {
+  for (char& c : s)
+    if (c == '\n' || c == '\r' || c == '\t') c = ' ';
+  return trim(s);
+}
+
+struct WcsDeleter {
+  void operator()(wcsprm* w) const {
+    if (w) {
+      wcsfree(w);
+      delete w;
+    }
+  }
+};
+using WcsPtr = std::unique_ptr<wcsprm, WcsDeleter>;
+
+WcsPtr new_blank_wcs() {
+  WcsPtr w(new wcsprm);
+  std::memset(w.get(), 0, sizeof(wcsprm));
+  w->flag = -1;
+  return w;
+}
+
+std::string wcs_error_text(const wcsprm* w, int status, const char* what) {
+  std::string msg = what;
+  if (w && w->err && w->err->msg[0]) {
+    msg += ": " + one_line(w->err->msg);
+  } else if (status > 0 && status < 15) {
+    msg += std::string(": ") + wcs_errmsg[status];
+  }
+  return msg;
+}
+
+enum class Frame { Icrs, Fk5, Galactic };
+
+/// 3x3 row-major rotation applied to unit vectors: v_icrs = R v_native.
+struct Rotation {
+  double r[3][3];
+};
+
+// Unit vector of (lon, lat) in degrees.
+inline void to_vec(double lon_deg, double lat_deg, double v[3]) {
+  eraS2c(lon_deg * kDegToRad, lat_deg * kDegToRad, v);
+}
+inline void from_vec(const double v[3], double& lon_deg, double& lat_deg) {
+  double a, d;
+  eraC2s(const_cast<double*>(v), &a, &d);
+  lon_deg = eraAnp(a) * kRadToDeg;
+  lat_deg = d * kRadToDeg;
+}
+
+class WcslibSky final : public PixelSky {
+ public:
+  WcslibSky(WcsPtr proto, Frame frame, const Rotation& fk5_to_icrs)
+      : proto_(std::move(proto)), frame_(frame), rot_(fk5_to_icrs) {
+    lng_ = proto_->lng;
+    lat_ = proto_->lat;
+  }
+
+  bool pix_to_sky(double x, double y, double& ra_deg, double& dec_deg) const override {
+    pix_to_sky_n(1, &x, &y, &ra_deg, &dec_deg);
+    return std::isfinite(ra_deg) && std::isfinite(dec_deg);
+  }
+  bool sky_to_pix(double ra_deg, double dec_deg, double& x, double& y) const override {
+    sky_to_pix_n(1, &ra_deg, &dec_deg, &x, &y);
+    return std::isfinite(x) && std::isfinite(y);
+  }
+
+  /// 0-based pixels -> ICRS; NaN where undefined.
+  void pix_to_sky_n(std::size_t n, const double* x, const double* y, double* ra,
+                    double* dec) const {
+    Lease lease(*this);
+    wcsprm* w = lease.get();
+    constexpr std::size_t kChunk = 2048;
+    std::vector<double> pix(2 * kChunk), img(2 * kChunk), phi(kChunk), theta(kChunk),
+        world(2 * kChunk);
+    std::vector<int> stat(kChunk);
+    for (std::size_t s = 0; s < n; s += kChunk) {
+      const std::size_t m = std::min(kChunk, n - s);
+      for (std::size_t i = 0; i < m; ++i) {
+        // The one place where 0-based pixels become FITS 1-based (Paper I: pixel
+        // coordinate 1.0 is the centre of the first pixel).
+        pix[2 * i] = x[s + i] + 1.0;
+        pix[2 * i + 1] = y[s + i] + 1.0;
+      }
+      const int status = wcsp2s(w, static_cast<int>(m), 2, pix.data(), img.data(), phi.data(),
+                                theta.data(), world.data(), stat.data());
+      for (std::size_t i = 0; i < m; ++i) {
+        const bool ok = (status == 0 || (status == 8 && stat[i] == 0)) &&
+                        std::isfinite(pix[2 * i]) && std::isfinite(pix[2 * i + 1]);
+        if (!ok || !std::isfinite(world[2 * i + lng_]) || !std::isfinite(world[2 * i + lat_])) {
+          ra[s + i] = dec[s + i] = std::numeric_limits<double>::quiet_NaN();
+          continue;
+        }
+        native_to_icrs(world[2 * i + lng_], world[2 * i + lat_], ra[s + i], dec[s + i]);
+      }
+    }
+  }
+
+  /// ICRS -> 0-based pixels; NaN where outside the projection.
+  void sky_to_pix_n(std::size_t n, const double* ra, const double* dec, double* x,
+                    double* y) const {
+    Lease lease(*this);
+    wcsprm* w = lease.get();
+    constexpr std::size_t kChunk = 2048;
+    std::vector<double> pix(2 * kChunk), img(2 * kChunk), phi(kChunk), theta(kChunk),
+        world(2 * kChunk);
+    std::vector<int> stat(kChunk);
+    std::vector<char> bad(kChunk);
+    for (std::size_t s = 0; s < n; s += kChunk) {
+      const std::size_t m = std::min(kChunk, n - s);
+      for (std::size_t i = 0; i < m; ++i) {
+        bad[i] = !(std::isfinite(ra[s + i]) && std::isfinite(dec[s + i]) &&
+                   std::abs(dec[s + i]) <= 90.0);
+        double lon = 0.0, lat = 0.0;
+        if (!bad[i]) icrs_to_native(ra[s + i], dec[s + i], lon, lat);
+        world[2 * i + lng_] = lon;
+        world[2 * i + lat_] = lat;
+      }
+      const int status = wcss2p(w, static_cast<int>(m), 2, world.data(), phi.data(),
+                                theta.data(), img.data(), pix.data(), stat.data());
+      for (std::size_t i = 0; i < m; ++i) {
+        const bool ok = !bad[i] && (status == 0 || (status == 9 && stat[i] == 0)) &&
+                        std::isfinite(pix[2 * i]) && std::isfinite(pix[2 * i + 1]);
+        if (!ok) {
+          x[s + i] = y[s + i] = std::numeric_limits<double>::quiet_NaN();
+          continue;
+        }
+        x[s + i] = pix[2 * i] - 1.0;  // FITS 1-based -> 0-based
+        y[s + i] = pix[2 * i + 1] - 1.0;
+      }
+    }
+  }
+
+ private:
+  // WCSLIB's wcsp2s/wcss2p write scratch state into the wcsprm (and may call
+  // wcsset), so each call leases a private copy from a pool; copies are made on
+  // demand (one per concurrently converting thread) and reused.
+  class Lease {
+   public:
+    explicit Lease(const WcslibSky& s) : sky_(s), w_(s.acquire()) {}
+    ~Lease() { sky_.release(std::move(w_)); }
+    Lease(const Lease&) = delete;
+    Lease& operator=(const Lease&) = delete;
+    wcsprm* get() { return w_.get(); }
+
+   private:
+    const WcslibSky& sky_;
+    WcsPtr w_;
+  };
+
+  WcsPtr acquire() const {
+    std::lock_guard<std::mutex> lock(mutex_);
+    if (!pool_.empty()) {
+      WcsPtr w = std::move(pool_.back());
+      pool_.pop_back();
+      return w;
+    }
+    WcsPtr w = new_blank_wcs();
+    if (wcssub(1, proto_.get(), nullptr, nullptr, w.get()) != 0 || wcsset(w.get()) != 0)
+      throw std::runtime_error("WCSLIB could not copy a world coordinate system");
+    return w;
+  }
+  void release(WcsPtr w) const {
+    std::lock_guard<std::mutex> lock(mutex_);
+    pool_.push_back(std::move(w));
+  }
+
+  void native_to_icrs(double lon, double lat, double& ra, double& dec) const {
+    switch (frame_) {
+      case Frame::Icrs:
+        ra = lon;
+        dec = lat;
+        break;
+      case Frame::Galactic: {
+        // ERFA eraG2icrs: Galactic (l, b) -> ICRS (alpha, delta), radians.
+        double a, d;
+        eraG2icrs(lon * kDegToRad, lat * kDegToRad, &a, &d);
+        ra = eraAnp(a) * kRadToDeg;
+        dec = d * kRadToDeg;
+        break;
+      }
+      case Frame::Fk5: {
+        double v[3], u[3];
+        to_vec(lon, lat, v);
+        for (int i = 0; i < 3; ++i)
+          u[i] = rot_.r[i][0] * v[0] + rot_.r[i][1] * v[1] + rot_.r[i][2] * v[2];
+        from_vec(u, ra, dec);
+        break;
+      }
+    }
+  }
+  void icrs_to_native(double ra, double dec, double& lon, double& lat) const {
+    switch (frame_) {
+      case Frame::Icrs:
+        lon = ra;
+        lat = dec;
+        break;
+      case Frame::Galactic: {
+        double l, b;
+        eraIcrs2g(ra * kDegToRad, dec * kDegToRad, &l, &b);
+        lon = eraAnp(l) * kRadToDeg;
+        lat = b * kRadToDeg;
+        break;
+      }
+      case Frame::Fk5: {
+        double v[3], u[3];
+        to_vec(ra, dec, v);
+        for (int i = 0; i < 3; ++i)  // transpose of the rotation
+          u[i] = rot_.r[0][i] * v[0] + rot_.r[1][i] * v[1] + rot_.r[2][i] * v[2];
+        from_vec(u, lon, lat);
+        break;
+      }
+    }
+  }
+
+  WcsPtr proto_;
+  Frame frame_;
+  Rotation rot_;
+  int lng_ = 0, lat_ = 1;
+  mutable std::mutex mutex_;
+  mutable std::vector<WcsPtr> pool_;
+};
+
+/// FK5 mean equator and equinox `equinox_jyr` (Julian epoch) -> ICRS.
+///   v_J2000 = P^T v_E with P = eraPmat76(J2000 -> E) (IAU 1976 precession, the
+///   precession of the FK5 system); v_ICRS = R5h v_J2000 with R5h from eraFk5hip
+///   (orientation of FK5 J2000 relative to Hipparcos/ICRS; frame spin ignored,
+///   positions at epoch J2000 as ERFA eraFk52h does for zero proper motion).
+Rotation fk5_rotation(double equinox_jyr) {
+  double r5h[3][3], s5h[3];
+  eraFk5hip(r5h, s5h);
+  Rotation out{};
+  if (std::abs(equinox_jyr - 2000.0) < 1e-9) {
+    std::memcpy(out.r, r5h, sizeof(r5h));
+    return out;
+  }
+  double d1, d2, p[3][3];
+  eraEpj2jd(equinox_jyr, &d1, &d2);
+  eraPmat76(d1, d2, p);
+  double pt[3][3];
+  eraTr(p, pt);
+  eraRxr(r5h, pt, out.r);
+  return out;
+}
+
+}  // namespace
+
+std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
+                                                std::string* frame_out,
+                                                std::string* cards2d_out) {
+  if (header_cards.empty() || header_cards.size() % 80 != 0)
+    throw std::invalid_argument("header text is not a sequence of 80-character cards");
+  std::vector<char> text(header_cards.begin(), header_cards.end());
+  text.push_back('\0');
+  const int nkeyrec = static_cast<int>(header_cards.size() / 80);
+
+  WcsPtr sub = new_blank_wcs();
+  {
+    std::lock_guard<std::mutex> lock(g_parse_mutex);
+    static bool err_enabled = false;
+    if (!err_enabled) {
+      wcserr_enable(1);
+      err_enabled = true;
+    }
+    int nreject = 0, nwcs = 0;
+    wcsprm* all = nullptr;
+    // WCSHDR_all: accept the common non-standard forms too (CROTAn, EPOCH,
+    // RADECSYS, VSOURCE, ...); ctrl = 0: rejected cards are not reported.
+    int status = wcspih(text.data(), nkeyrec, WCSHDR_all, 0, &nreject, &nwcs, &all);
+    if (status != 0 || nwcs < 1 || all == nullptr) {
+      if (all) wcsvfree(&nwcs, &all);
+      throw std::invalid_argument(std::string("WCSLIB could not parse the header") +
+                                  (status > 0 && status < 7
+                                       ? std::string(": ") + wcshdr_errmsg[status]
+                                       : std::string()));
+    }
+    // The primary description (alternate ' ') is the first one wcspih returns.
+    wcsprm* primary = &all[0];
+    for (int i = 0; i < nwcs; ++i)
+      if (all[i].alt[0] == ' ' || all[i].alt[0] == '\0') {
+        primary = &all[i];
+        break;
+      }
+    if (primary->naxis < 2) {
+      wcsvfree(&nwcs, &all);
+      throw std::invalid_argument("no celestial WCS (fewer than 2 world axes)");
+    }
+    // Keep image axes 1 and 2, in that order, so that pixel (x, y) feeds them.
+    int nsub = 2;
+    int axes[2] = {1, 2};
+    status = wcssub(1, primary, &nsub, axes, sub.get());
+    const std::string ct1 = trim(std::string(primary->ctype[0], strnlen(primary->ctype[0], 72)));
+    const std::string ct2 = trim(std::string(primary->ctype[1], strnlen(primary->ctype[1], 72)));
+    wcsvfree(&nwcs, &all);
+    if (status != 0) throw std::invalid_argument("WCSLIB could not select the celestial axes 1 and 2");
+
+    // Translate AIPS-style NCP/GLS and unit spellings (WCSLIB's celfix, unitfix).
+    celfix(sub.get());
+    unitfix(0, sub.get());
+    status = wcsset(sub.get());
+    if (status != 0)
+      throw std::invalid_argument(wcs_error_text(sub.get(), status, "invalid celestial WCS"));
+    if (sub->lng < 0 || sub->lat < 0 || sub->cubeface >= 0)
+      throw std::invalid_argument("no celestial WCS on axes 1 and 2 (CTYPE1 = '" + ct1 +
+                                  "', CTYPE2 = '" + ct2 + "')");
+  }
+
+  const std::string lngtyp = trim(sub->lngtyp);
+  std::string radesys = upper(trim(sub->radesys));
+  Frame frame = Frame::Icrs;
+  Rotation rot{};
+  std::string frame_name;
+  if (lngtyp == "RA") {
+    const bool has_equinox = !undefined(sub->equinox);
+    if (radesys.empty()) {
+      // Paper II sect. 3.1: ICRS when there is no EQUINOX, FK4 for EQUINOX < 1984,
+      // FK5 otherwise.
+      if (!has_equinox)
+        radesys = "ICRS";
+      else
+        radesys = sub->equinox < 1984.0 ? "FK4" : "FK5";
+    }
+    if (radesys == "ICRS") {
+      frame = Frame::Icrs;
+      frame_name = "ICRS";
+    } else if (radesys == "FK5") {
+      frame = Frame::Fk5;
+      frame_name = "FK5";
+      rot = fk5_rotation(has_equinox ? sub->equinox : 2000.0);
+    } else if (radesys == "FK4" || radesys == "FK4-NO-E") {
+      throw std::invalid_argument(
+          "celestial frame " + radesys +
+          (has_equinox ? " (EQUINOX " + fits_real(sub->equinox) + ")" : std::string()) +
+          " is not supported: convert the image to ICRS or FK5 J2000 first");
+    } else {
+      throw std::invalid_argument("celestial frame RADESYS = '" + radesys +
+                                  "' is not supported (ICRS, FK5 or Galactic)");
+    }
+  } else if (lngtyp == "GLON") {
+    frame = Frame::Galactic;
+    frame_name = "GALACTIC";
+  } else {
+    throw std::invalid_argument("celestial axes " + lngtyp + "/" + trim(sub->lattyp) +
+                                " are not supported (RA/DEC or GLON/GLAT)");
+  }
+
+  if (cards2d_out) {
+    int nkey = 0;
+    char* hdr = nullptr;
+    const int status = wcshdo(WCSHDO_P17, sub.get(), &nkey, &hdr);
+    if (status != 0 || hdr == nullptr) {
+      if (hdr) wcsdealloc(hdr);
+      throw std::invalid_argument(wcs_error_text(sub.get(), status, "WCSLIB could not write the WCS"));
+    }
+    std::string cards(hdr, static_cast<std::size_t>(nkey) * 80);
+    wcsdealloc(hdr);
+    // wcshdo writes comment cards and blank padding too; keep keyword cards only.
+    std::string kept;
+    for (std::size_t i = 0; i + 80 <= cards.size(); i += 80) {
+      const std::string c = cards.substr(i, 80);
+      if (c.compare(0, 8, "COMMENT ") == 0 || c.compare(0, 8, "        ") == 0) continue;
+      kept += c;
+    }
+    *cards2d_out = kept;
+  }
+  if (frame_out) *frame_out = frame_name;
+  return std::make_shared<WcslibSky>(std::move(sub), frame, rot);
+}
+
+void pix_to_sky_many(const PixelSky& sky, std::size_t n, const double* x, const double* y,
+                     double* ra_deg, double* dec_deg) {
+  if (auto* w = dynamic_cast<const WcslibSky*>(&sky)) {
+    w->pix_to_sky_n(n, x, y, ra_deg, dec_deg);
+    return;
+  }
+  for (std::size_t i = 0; i < n; ++i)
+    if (!sky.pix_to_sky(x[i], y[i], ra_deg[i], dec_deg[i]))
+      ra_deg[i] = dec_deg[i] = std::numeric_limits<double>::quiet_NaN();
+}
+
+void sky_to_pix_many(const PixelSky& sky, std::size_t n, const double* ra_deg,
+                     const double* dec_deg, double* x, double* y) {
+  if (auto* w = dynamic_cast<const WcslibSky*>(&sky)) {
+    w->sky_to_pix_n(n, ra_deg, dec_deg, x, y);
+    return;
+  }
+  for (std::size_t i = 0; i < n; ++i)
+    if (!sky.sky_to_pix(ra_deg[i], dec_deg[i], x[i], y[i]))
+      x[i] = y[i] = std::numeric_limits<double>::quiet_NaN();
+}
+
+// ---- Header writing -------------------------------------------------------------
+
+std::string fits_real(double v) {
+  if (!std::isfinite(v)) throw std::invalid_argument("a FITS real value must be finite");
+  char buf[40];
+  for (int prec = 15; prec <= 17; ++prec) {
+    std::snprintf(buf, sizeof buf, "%.*G", prec, v);
+    if (std::strtod(buf, nullptr) == v) break;
+  }
+  std::string s(buf);
+  // FITS reals carry a decimal point (FITS Standard 4.0, sect. 4.2.4).
+  if (s.find('.') == std::string::npos) {
+    const std::size_t e = s.find('E');
+    if (e == std::string::npos)
+      s += ".0";
+    else
+      s.insert(e, ".0");
+  }
+  return s;
+}
+
+std::string fits_string(const std::string& s) {
+  std::string out = "'";
+  for (char c : s) {
+    out += c;
+    if (c == '\'') out += '\'';
+  }
+  // Fixed-format strings are at least 8 characters between the quotes.
+  while (out.size() < 9) out += ' ';
+  return out + "'";
+}
+
+std::string fits_card(const std::string& key, const std::string& value,
+                      const std::string& comment) {
+  if (key.empty() || key.size() > 8)
+    throw std::invalid_argument("FITS keyword '" + key + "' must have 1 to 8 characters");
+  for (char c : key)
+    if (!(std::isupper(static_cast<unsigned char>(c)) || std::isdigit(static_cast<unsigned char>(c)) ||
+          c == '-' || c == '_'))
+      throw std::invalid_argument("FITS keyword '" + key + "' has a character other than A-Z 0-9 - _");
+  std::string card = key;
+  card.resize(8, ' ');
+  card += "= ";
+  if (!value.empty() && value[0] == '\'') {
+    card += value;
+  } else {
+    // Fixed format: numbers and logicals right-justified to column 30.
+    if (value.size() < 20) card += std::string(20 - value.size(), ' ');
+    card += value;
+  }
+  if (!comment.empty() && card.size() + 3 < 80) card += " / " + comment;
+  if (card.size() > 80) {
+    if (value.size() + 10 > 80) throw std::invalid_argument("FITS value of " + key + " is too long");
+    card.resize(80);
+  }
+  card.resize(80, ' ');
+  return card;
+}
+
+std::string header_for_grid(const GridSpec& g) {
+  if (g.nx < 1 || g.ny < 1) throw std::invalid_argument("grid has no pixels");
+  if (!(g.cdelt1_deg != 0.0 && g.cdelt2_deg != 0.0 && std::isfinite(g.cdelt1_deg) &&
+        std::isfinite(g.cdelt2_deg)))
+    throw std::invalid_argument("grid pixel steps must be finite and non-zero");
+  std::string code = upper(g.projection);
+  if (code.size() != 3 || !std::all_of(code.begin(), code.end(), [](char c) { return c >= 'A' && c <= 'Z'; }))
+    throw std::invalid_argument("projection code '" + g.projection + "' is not 3 letters");
+  const std::string frame = upper(g.frame);
+  std::string c1, c2;
+  if (frame == "ICRS" || frame == "FK5") {
+    c1 = "RA---" + code;
+    c2 = "DEC--" + code;
+  } else if (frame == "GALACTIC") {
+    c1 = "GLON-" + code;
+    c2 = "GLAT-" + code;
+  } else {
+    throw std::invalid_argument("grid frame '" + g.frame + "' is not ICRS, FK5 or GALACTIC");
+  }
+  std::string h;
+  h += fits_card("NAXIS", "2");
+  h += fits_card("NAXIS1", std::to_string(g.nx));
+  h += fits_card("NAXIS2", std::to_string(g.ny));
+  h += fits_card("CTYPE1", fits_string(c1));
+  h += fits_card("CTYPE2", fits_string(c2));
+  h += fits_card("CRVAL1", fits_real(g.crval1_deg), "[deg]");
+  h += fits_card("CRVAL2", fits_real(g.crval2_deg), "[deg]");
+  h += fits_card("CRPIX1", fits_real(g.crpix1), "reference pixel (1-based)");
+  h += fits_card("CRPIX2", fits_real(g.crpix2), "reference pixel (1-based)");
+  h += fits_card("CDELT1", fits_real(g.cdelt1_deg), "[deg]");
+  h += fits_card("CDELT2", fits_real(g.cdelt2_deg), "[deg]");
+  if (g.rotation_deg != 0.0) {
+    // CROTA2 = rho as a PC matrix (Calabretta & Greisen 2002, eq. 189):
+    //   PC1_1 = cos rho, PC1_2 = -(CDELT2/CDELT1) sin rho,
+    //   PC2_1 = (CDELT1/CDELT2) sin rho, PC2_2 = cos rho.
+    const double r = g.rotation_deg * kDegToRad;
+    const double ratio = g.cdelt2_deg / g.cdelt1_deg;
+    h += fits_card("PC1_1", fits_real(std::cos(r)));
+    h += fits_card("PC1_2", fits_real(-ratio * std::sin(r)));
+    h += fits_card("PC2_1", fits_real(std::sin(r) / ratio));
+    h += fits_card("PC2_2", fits_real(std::cos(r)));
+  }
+  h += fits_card("CUNIT1", fits_string("deg"));
+  h += fits_card("CUNIT2", fits_string("deg"));
+  if (frame == "ICRS") {
+    h += fits_card("RADESYS", fits_string("ICRS"));
+  } else if (frame == "FK5") {
+    h += fits_card("RADESYS", fits_string("FK5"));
+    h += fits_card("EQUINOX", fits_real(2000.0));
+  }
+  if (g.beam.valid()) {
+    h += fits_card("BMAJ", fits_real(g.beam.maj_arcsec * kArcsecToDeg), "beam major FWHM [deg]");
+    h += fits_card("BMIN", fits_real(g.beam.min_arcsec * kArcsecToDeg), "beam minor FWHM [deg]");
+    h += fits_card("BPA", fits_real(g.beam.pa_deg), "beam PA east of north [deg]");
+  }
+  if (g.freq_hz > 0.0 && std::isfinite(g.freq_hz))
+    h += fits_card("FREQ", fits_real(g.freq_hz), "observing frequency [Hz]");
+  return h;
+}
+
+}  // namespace skerry
