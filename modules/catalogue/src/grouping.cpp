@@ -138,10 +138,7 @@ std::vector<CatalogueSource> group_sources(const std::vector<CatalogueComponent>
   for (const auto& isl : islands) island_by_id[isl.id] = &isl;
   auto island_diffuse = [&](std::int64_t id) {
     auto it = island_by_id.find(id);
-    if (it == island_by_id.end()) return false;
-    const auto& isl = *it->second;
-    return isl.n_beams >= opt.diffuse_min_beams && isl.mean_rms_jy_per_beam > 0.0 &&
-           isl.residual_rms_jy_per_beam > opt.diffuse_residual_ratio * isl.mean_rms_jy_per_beam;
+    return it != island_by_id.end() && island_is_diffuse(*it->second, opt);
   };
 
   std::vector<std::int64_t> source_of_root(n, 0);

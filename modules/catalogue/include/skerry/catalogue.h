@@ -159,28 +159,19 @@ std::vector<CatalogueSource> group_sources(const std::vector<CatalogueComponent>
 
 // ---- Island pixel statistics ------------------------------------------------
 
-/// Per-island sums over the pixels carrying its label. Arrays are indexed by
-/// island id - 1. Computed from each island's bounding box (0-based,
-/// inclusive), in parallel over islands (each island's sums in a fixed order).
-struct IslandBox {
-  long x0 = 0, y0 = 0, x1 = -1, y1 = -1;  ///< 0-based inclusive bounding box
-};
-struct IslandPixelStats {
-  std::vector<double> residual_rms_jy_per_beam;  ///< sqrt(mean(residual^2)) over finite residual pixels
-  std::vector<double> mean_rms_jy_per_beam;      ///< mean of the rms map over the island
-  /// Error of the island's pixel-sum flux density [Jy], CONVENTIONS "Noise":
-  /// sigma_S = sqrt(sum_i sum_j s_i s_j rho_ij) / Omega_beam_pix, with rho the
-  /// beam-shaped noise correlation between pixels i and j of the island,
-  /// evaluated exactly over the island (kernel truncated where rho < 1e-4, which
-  /// drops a fraction 1e-4 of the correlation mass).
-  std::vector<double> flux_err_jy;
-};
-/// `labels` hold island ids (0 = none). `residual` may be empty (residual rms
-/// then NaN). `beam_cov_pix` is the beam's covariance in pixel units
-/// (LocalGeometry::sky_cov_to_pixel(ellipse_to_cov(beam))); `beam_area_pix` is
-/// Omega_beam_pix.
-IslandPixelStats island_pixel_stats(const LabelsI32& labels, const std::vector<IslandBox>& boxes,
-                                    const ImageF& residual, const ImageF& rms,
-                                    const Eigen::Matrix2d& beam_cov_pix, double beam_area_pix);
+/// True when the island counts as "diffuse" under `options` (rule above).
+bool island_is_diffuse(const CatalogueIsland& island, const GroupingOptions& options);
+
+/// Error of an island's pixel-sum flux density [Jy], CONVENTIONS "Noise":
+///   sigma_S = sqrt(sum_i sum_j s_i s_j rho_ij) / Omega_beam_pix,
+/// the sums over the island's pixels (in_island != 0 and rms finite), s the
+/// local rms [Jy/beam], rho_ij = exp(-1/2 d^T C^-1 d) the beam-shaped noise
+/// correlation of pixels offset by d (C = beam covariance in pixels), evaluated
+/// exactly over the island with the kernel truncated where rho < 1e-4 (which
+/// drops a fraction 1e-4 of the correlation mass). For constant s and an island
+/// much larger than the beam this tends to s sqrt(N_pix / Omega_beam_pix).
+/// `rms` and `in_island` are the same small cutout. NaN without a usable pixel.
+double pixel_sum_flux_error(const ImageF& rms, const MaskU8& in_island,
+                            const Eigen::Matrix2d& beam_cov_pix, double beam_area_pix);
 
 }  // namespace skerry
