@@ -190,7 +190,7 @@ struct BandSource {
 
 struct BandImage {
   ImageF image;          ///< (y, x) Jy/beam; NaN = blanked
-  ImageF primary_beam;   ///< pb in (0, 1] (NaN where blanked); empty when pb_fwhm_deg = 0
+  ImageF primary_beam;   ///< pb in (0, 1] (NaN only without a sky position); empty when pb_fwhm_deg = 0
   ImageF background;     ///< truth background [Jy/beam]; empty unless keep_background
   ImageF model;          ///< noiseless sources [Jy/beam]; empty unless keep_model
   std::vector<BandSource> sources;  ///< one per sky source, in id order (outside ones flagged)
