@@ -214,8 +214,12 @@ struct SkyOptions {
   /// Unresolved when the fitted size is within this many of its own errors of the
   /// beam along an axis (CONVENTIONS: about two), or not positive definite.
   double unresolved_nsigma = 2.0;
-  /// Resolved by S_int/S_peak > 1 + a SNR^-b (SNR = peak / local rms).
-  double envelope_a = 3.0;
+  /// Resolved by S_int/S_peak > 1 + a SNR^-b (SNR = peak / local rms). Default:
+  /// for a beam-sized component Condon (1997) gives sigma(ln S_int/S_peak) =
+  /// sqrt(var ln theta_M + var ln theta_m) = sqrt(2) / SNR (REF-CONDON-02 with
+  /// theta = theta_N), so a = 3.5, b = 1 is about a one-sided 2.5 sigma envelope
+  /// [derived]. REF-RESOLVED-01 lists a published member of the same family.
+  double envelope_a = 3.5;
   double envelope_b = 1.0;
   /// Report Condon's expected errors instead of the fit's covariance.
   bool use_condon_errors = false;

@@ -23,8 +23,9 @@
 ///   relative reduction (chi2_old - chi2_new) <= chi2_rel_tol * chi2_old
 ///   gradient           max_j |(J^T r)_j| * scale_j <= gradient_tol  (projected on
 ///                      the bounds; scale_j = max(|p_j|, 1) / max(chi2, tiny))
-/// An accepted step must also be small for the first two criteria to count only
-/// when lambda is not rising (a rejected step never ends the iteration by itself).
+/// A rejected step ends the iteration only when it is itself below the step
+/// criterion and does not raise chi2 (the minimum to machine precision).
+/// Optionally each step gets a geodesic-acceleration correction (LmOptions).
 #include <Eigen/Core>
 #include <functional>
 #include <string_view>
@@ -59,6 +60,12 @@ struct LmOptions {
   double lambda_up = 10.0;       ///< factor after a rejected step
   double lambda_down = 0.1;      ///< factor after an accepted step
   double max_lambda = 1e16;      ///< give up beyond this damping
+  /// Geodesic acceleration (Transtrum & Sethna 2012, arXiv:1201.5885): a second-
+  /// order correction of each step from one extra residual evaluation; steps whose
+  /// correction is large (2 |a| / |v| > geodesic_alpha) are rejected. Keeps the
+  /// iteration out of the flat valleys of exponential models.
+  bool geodesic_acceleration = true;
+  double geodesic_alpha = 0.75;
 };
 
 /// Residual functor: fill r (size m) at p; when jac != nullptr also fill the m x n
@@ -74,6 +81,7 @@ struct LmResult {
   double initial_chi2 = 0.0;   ///< sum r^2 at the start point
   int iterations = 0;          ///< steps tried (accepted + rejected)
   int accepted_steps = 0;
+  int evaluations = 0;         ///< residual evaluations
   Eigen::MatrixXd jacobian;    ///< J at params (m x n)
   Eigen::VectorXd residuals;   ///< r at params (m)
   /// Parameters on a bound at the end (their covariance rows are set to zero).
