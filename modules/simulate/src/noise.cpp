@@ -23,6 +23,7 @@
 // (seed, noise, stream, kx); the 2-D inverse FFT is done as 1-D FFTW transforms
 // (the same plan for every column, then for every row) executed in parallel with
 // oneTBB: each 1-D transform does the same arithmetic whichever thread runs it.
+#include <Eigen/LU>
 #include <fftw3.h>
 #include <tbb/blocked_range.h>
 #include <tbb/parallel_for.h>
