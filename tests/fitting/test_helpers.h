@@ -41,11 +41,13 @@ inline Eigen::Matrix2d beam_pix(const skerry::PixelSky& sky, const skerry::Beam&
 
 // Cutout [x0, x0 + w) x [y0, y0 + h) of `img` with constant rms; island = pixels
 // >= thresh * rms 8-connected to the highest pixel within `seed_radius` of the
-// cutout centre; every other finite pixel is kCutoutFree.
+// seed (cutout coordinates; default the cutout centre); every other pixel is
+// kCutoutFree.
 template <typename Image>
 skerry::IslandCutout make_cutout(const Image& img, double rms, int x0, int y0, int w, int h,
                                  double thresh, const Eigen::Matrix2d& beam_cov_pix,
-                                 std::int64_t id = 0, int seed_radius = 3) {
+                                 std::int64_t id = 0, int seed_radius = 3, int seed_x = -1,
+                                 int seed_y = -1) {
   skerry::IslandCutout c;
   c.island_id = id;
   c.x_origin = x0;
@@ -55,9 +57,11 @@ skerry::IslandCutout make_cutout(const Image& img, double rms, int x0, int y0, i
   c.mask.setConstant(h, w, skerry::kCutoutFree);
   for (int y = 0; y < h; ++y)
     for (int x = 0; x < w; ++x) c.data(y, x) = static_cast<float>(img(y0 + y, x0 + x));
-  int sx = w / 2, sy = h / 2;
-  for (int y = h / 2 - seed_radius; y <= h / 2 + seed_radius; ++y)
-    for (int x = w / 2 - seed_radius; x <= w / 2 + seed_radius; ++x)
+  if (seed_x < 0) seed_x = w / 2;
+  if (seed_y < 0) seed_y = h / 2;
+  int sx = seed_x, sy = seed_y;
+  for (int y = std::max(0, seed_y - seed_radius); y <= std::min(h - 1, seed_y + seed_radius); ++y)
+    for (int x = std::max(0, seed_x - seed_radius); x <= std::min(w - 1, seed_x + seed_radius); ++x)
       if (c.data(y, x) > c.data(sy, sx)) {
         sx = x;
         sy = y;
