@@ -71,41 +71,75 @@ struct Region {
   int n() const { return static_cast<int>(x.size()); }
 };
 
-// Beam-shaped noise correlation rho(d) = exp(-d^T C^-1 d / 2) on integer offsets.
+// Beam-shaped noise correlation rho(d) = exp(-d^T C^-1 d / 2) on integer offsets,
+// zero beyond the cutoff: a list of the non-zero offsets and a dense
+// (2 ry + 1) x (2 rx + 1) table.
 struct CorrTable {
+  Eigen::Matrix2d C = Eigen::Matrix2d::Zero();
+  double cut = -1.0;
+  int rx = 0, ry = 0;
   std::vector<int> ox, oy;
-  std::vector<double> rho;
+  std::vector<double> rho, dense;
+  double at(int dx, int dy) const {
+    if (dx < -rx || dx > rx || dy < -ry || dy > ry) return 0.0;
+    return dense[(dy + ry) * (2 * rx + 1) + dx + rx];
+  }
 };
-CorrTable make_corr_table(const Eigen::Matrix2d& C, double cut_sigma) {
-  CorrTable t;
+void make_corr_table(const Eigen::Matrix2d& C, double cut_sigma, CorrTable& t) {
+  if (t.cut == cut_sigma && t.C == C) return;  // same beam as the previous island
+  t = CorrTable();
+  t.C = C;
+  t.cut = cut_sigma;
   const Eigen::Matrix2d Ci = C.inverse();
-  const int rx = static_cast<int>(std::ceil(cut_sigma * std::sqrt(C(0, 0))));
-  const int ry = static_cast<int>(std::ceil(cut_sigma * std::sqrt(C(1, 1))));
+  t.rx = static_cast<int>(std::ceil(cut_sigma * std::sqrt(C(0, 0))));
+  t.ry = static_cast<int>(std::ceil(cut_sigma * std::sqrt(C(1, 1))));
+  t.dense.assign(static_cast<std::size_t>(2 * t.rx + 1) * (2 * t.ry + 1), 0.0);
   const double cut2 = cut_sigma * cut_sigma;
-  for (int dy = -ry; dy <= ry; ++dy)
-    for (int dx = -rx; dx <= rx; ++dx) {
+  for (int dy = -t.ry; dy <= t.ry; ++dy)
+    for (int dx = -t.rx; dx <= t.rx; ++dx) {
       const double q = Ci(0, 0) * dx * dx + 2.0 * Ci(0, 1) * dx * dy + Ci(1, 1) * dy * dy;
       if (q <= cut2) {
+        const double r = std::exp(-0.5 * q);
         t.ox.push_back(dx);
         t.oy.push_back(dy);
-        t.rho.push_back(std::exp(-0.5 * q));
+        t.rho.push_back(r);
+        t.dense[(dy + t.ry) * (2 * t.rx + 1) + dx + t.rx] = r;
       }
     }
-  return t;
 }
 
-// J^T R J for whitened Jacobian rows on the region's pixels.
+// J^T R J for whitened Jacobian rows on the region's pixels: sum_i sum_j rho_ij
+// J_i^T J_j, over pixel pairs (small regions) or over the table's offsets of
+// each pixel (large regions), whichever visits fewer pairs. Fixed order: the
+// result does not depend on threads.
 Eigen::MatrixXd correlated_meat(const Eigen::MatrixXd& J, const Region& reg, const CorrTable& ct) {
-  const int n = static_cast<int>(J.cols());
-  Eigen::MatrixXd RJ = Eigen::MatrixXd::Zero(J.rows(), n);
+  const int n = static_cast<int>(J.cols()), N = reg.n();
+  // Row-major copy: rows are the unit of work below.
+  const Eigen::Matrix<double, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor> Jr = J;
+  Eigen::Matrix<double, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor> RJ =
+      Eigen::Matrix<double, Eigen::Dynamic, Eigen::Dynamic, Eigen::RowMajor>::Zero(N, n);
   const int nt = static_cast<int>(ct.rho.size());
-  for (int i = 0; i < reg.n(); ++i) {
-    for (int k = 0; k < nt; ++k) {
-      const int xx = reg.cx[i] + ct.ox[k], yy = reg.cy[i] + ct.oy[k];
-      if (xx < 0 || yy < 0 || xx >= reg.nx || yy >= reg.ny) continue;
-      const int j = reg.index_of[yy * reg.nx + xx];
-      if (j < 0) continue;
-      RJ.row(i) += ct.rho[k] * J.row(j);
+  if (N <= nt) {
+    for (int i = 0; i < N; ++i) {
+      double* out = RJ.row(i).data();
+      for (int j = 0; j < N; ++j) {
+        const double r = ct.at(reg.cx[j] - reg.cx[i], reg.cy[j] - reg.cy[i]);
+        if (r == 0.0) continue;
+        const double* in = Jr.row(j).data();
+        for (int a = 0; a < n; ++a) out[a] += r * in[a];
+      }
+    }
+  } else {
+    for (int i = 0; i < N; ++i) {
+      double* out = RJ.row(i).data();
+      for (int k = 0; k < nt; ++k) {
+        const int xx = reg.cx[i] + ct.ox[k], yy = reg.cy[i] + ct.oy[k];
+        if (xx < 0 || yy < 0 || xx >= reg.nx || yy >= reg.ny) continue;
+        const int j = reg.index_of[yy * reg.nx + xx];
+        if (j < 0) continue;
+        const double* in = Jr.row(j).data();
+        for (int a = 0; a < n; ++a) out[a] += ct.rho[k] * in[a];
+      }
     }
   }
   return J.transpose() * RJ;
@@ -184,6 +218,12 @@ struct TrialFit {
   double bic = INFINITY;
 };
 
+// One correlation table per thread, rebuilt only when the beam changes.
+CorrTable& corr_cache() {
+  thread_local CorrTable t;
+  return t;
+}
+
 class IslandFitter {
  public:
   IslandFitter(const IslandCutout& isl, const FitOptions& opt) : isl_(isl), opt_(opt) {}
@@ -198,6 +238,10 @@ class IslandFitter {
   void covariances(const Eigen::MatrixXd& Jw, const BoolVec& fixed, Eigen::MatrixXd& cov,
                    Eigen::MatrixXd& cov_white, bool& ok);
   double rms_at(double x, double y) const;
+  const CorrTable& corr_table() {
+    make_corr_table(isl_.beam_cov_pix, opt_.correlation_cutoff_sigma, corr_cache());
+    return corr_cache();
+  }
 
   const IslandCutout& isl_;
   const FitOptions& opt_;
@@ -206,7 +250,6 @@ class IslandFitter {
   bool touches_excluded_ = false;
   Shape beam_;
   double beam_area_pix_ = 0.0;
-  CorrTable corr_;
   double bx0_ = 0, bx1_ = 0, by0_ = 0, by1_ = 0;  // island bounding box (image pixels)
   Eigen::Matrix2d moment_cov_ = Eigen::Matrix2d::Zero();
   double mx_ = 0.0, my_ = 0.0, mpeak_ = 0.0;
@@ -242,7 +285,6 @@ bool IslandFitter::prepare() {
     return false;
   beam_ = shape_of(B);
   beam_area_pix_ = 2.0 * kPi * std::sqrt(B.determinant());
-  corr_ = make_corr_table(B, opt_.correlation_cutoff_sigma);
 
   reg_.nx = nx;
   reg_.ny = ny;
@@ -382,9 +424,10 @@ TrialFit IslandFitter::fit(const std::vector<Peak>& peaks, int k, bool fixed, bo
     }
   }
   const double bshape[3] = {beam_.sa, beam_.sb, beam_.t};
+  std::vector<fitting_detail::GaussEval> ev;
+  ev.reserve(k);
   LmFunctor f = [&](const Eigen::VectorXd& p, Eigen::VectorXd& r, Eigen::MatrixXd* J) {
-    std::vector<fitting_detail::GaussEval> ev;
-    ev.reserve(k);
+    ev.clear();
     for (int c = 0; c < k; ++c) {
       double q[6];
       for (int j = 0; j < 3; ++j) q[j] = p(npc * c + j);
@@ -422,13 +465,16 @@ TrialFit IslandFitter::fit(const std::vector<Peak>& peaks, int k, bool fixed, bo
 
 void IslandFitter::covariances(const Eigen::MatrixXd& Jw, const BoolVec& fixed,
                                Eigen::MatrixXd& cov, Eigen::MatrixXd& cov_white, bool& ok) {
+  // Bread (J^T W J)^-1 once; the sandwich puts J^T W C W J between two of them.
   ok = lm_covariance(Jw, cov_white, fixed);
-  if (opt_.error_model == ErrorModel::kWhite) {
+  if (opt_.error_model == ErrorModel::kWhite || !ok) {
     cov = cov_white;
     return;
   }
-  const Eigen::MatrixXd meat = correlated_meat(Jw, reg_, corr_);
-  ok = lm_sandwich_covariance(Jw, meat, cov, fixed) && ok;
+  const Eigen::MatrixXd meat = correlated_meat(Jw, reg_, corr_table());
+  cov = cov_white * meat * cov_white;
+  cov = (0.5 * (cov + cov.transpose())).eval();
+  ok = cov.allFinite();
 }
 
 void IslandFitter::unpack(const TrialFit& tf, IslandFit& out) {

@@ -2,7 +2,6 @@
 #include "skerry/levmar.h"
 
 #include <Eigen/Cholesky>
-#include <Eigen/Eigenvalues>
 #include <algorithm>
 #include <cmath>
 #include <limits>
@@ -218,18 +217,19 @@ bool scaled_inverse(const Eigen::MatrixXd& A, const Eigen::Matrix<bool, Eigen::D
   }
   for (int a = 0; a < k; ++a)
     for (int b = 0; b < k; ++b) B(a, b) = A(idx[a], idx[b]) * s(a) * s(b);
-  Eigen::SelfAdjointEigenSolver<Eigen::MatrixXd> es(B);
-  if (es.info() != Eigen::Success) {
+  // Cholesky of the unit-diagonal matrix; its pivots bound the conditioning
+  // (a pivot below 1e-14 means B is singular to working precision).
+  Eigen::LLT<Eigen::MatrixXd> llt(B);
+  if (llt.info() != Eigen::Success) {
     inv.setConstant(NAN);
     return false;
   }
-  const Eigen::VectorXd ev = es.eigenvalues();
-  if (!(ev(0) > 1e-14 * ev(k - 1))) {
+  const Eigen::MatrixXd L = llt.matrixL();
+  if (!(L.diagonal().array().square().minCoeff() > 1e-14)) {
     inv.setConstant(NAN);
     return false;
   }
-  const Eigen::MatrixXd Binv =
-      es.eigenvectors() * ev.cwiseInverse().asDiagonal() * es.eigenvectors().transpose();
+  const Eigen::MatrixXd Binv = llt.solve(Eigen::MatrixXd::Identity(k, k));
   for (int a = 0; a < k; ++a)
     for (int b = 0; b < k; ++b) inv(idx[a], idx[b]) = Binv(a, b) * s(a) * s(b);
   return true;
