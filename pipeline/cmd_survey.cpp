@@ -1,0 +1,405 @@
+// `skerry survey CONFIG`: unattended, incremental reduction of a survey's tiles
+// and the merged survey catalogue. See survey_engine.h for the files it keeps.
+//
+// Exit codes (errors.h): 0 work done, 5 nothing to do, 6 some tiles failed
+// (the others were processed and merged; the failed ones are retried on the next
+// run), 7 another run holds the lock, 2 bad configuration.
+#include <fcntl.h>
+#include <sys/file.h>
+#include <sys/stat.h>
+#include <unistd.h>
+
+#include <atomic>
+#include <chrono>
+#include <cstring>
+#include <filesystem>
+#include <fstream>
+#include <iostream>
+#include <mutex>
+#include <set>
+#include <sstream>
+#include <thread>
+
+#include "command.h"
+#include "errors.h"
+#include "io/atomic_file.h"
+#include "options.h"
+#include "progress.h"
+#include "run_record.h"
+#include "survey_engine.h"
+
+namespace skerry {
+
+namespace {
+
+namespace fs = std::filesystem;
+using namespace surveyrun;
+
+/// The lock: flock(2) on survey.lock, held for the life of the run and released
+/// by the kernel however the process ends (kill -9 included).
+class RunLock {
+ public:
+  explicit RunLock(const std::string& path) {
+    fd_ = ::open(path.c_str(), O_RDWR | O_CREAT | O_CLOEXEC, 0644);
+    if (fd_ < 0) throw OutputError(path, std::string("cannot open the lock file: ") + std::strerror(errno));
+    if (::flock(fd_, LOCK_EX | LOCK_NB) != 0) {
+      const int e = errno;
+      ::close(fd_);
+      fd_ = -1;
+      if (e == EWOULDBLOCK) throw ExitError(kExitBusy, "busy: another survey run holds " + path);
+      throw OutputError(path, std::string("cannot lock: ") + std::strerror(e));
+    }
+  }
+  ~RunLock() {
+    if (fd_ >= 0) ::close(fd_);
+  }
+  RunLock(const RunLock&) = delete;
+  RunLock& operator=(const RunLock&) = delete;
+
+ private:
+  int fd_ = -1;
+};
+
+/// Removes temporary files and folders left by a killed run (we hold the lock,
+/// so nothing of ours is writing them).
+void remove_stale_temporaries(const SurveyConfig& cfg) {
+  for (const fs::path& dir : {fs::path(cfg.output_root), fs::path(cfg.output_root) / "tiles",
+                             fs::path(cfg.output_root) / "stage"}) {
+    std::error_code ec;
+    if (!fs::is_directory(dir, ec)) continue;
+    for (const auto& e : fs::directory_iterator(dir, ec)) {
+      if (is_temporary_name(e.path().filename().string())) fs::remove_all(e.path(), ec);
+    }
+  }
+}
+
+std::string run_id_now() {
+  std::time_t t = std::time(nullptr);
+  std::tm tm{};
+  gmtime_r(&t, &tm);
+  char buf[32];
+  std::strftime(buf, sizeof buf, "%Y%m%dT%H%M%SZ", &tm);
+  return std::string(buf) + "-" + std::to_string(::getpid());
+}
+
+std::string fixed(double v, int digits) {
+  std::ostringstream s;
+  s.setf(std::ios::fixed);
+  s.precision(digits);
+  s << v;
+  return s.str();
+}
+
+std::string stage_ini(const SurveyConfig& cfg) {
+  std::ostringstream s;
+  s << "# [extract] settings of survey " << cfg.name << " (written by skerry survey from "
+    << fs::path(cfg.config_path).filename().string() << ")\n[extract]\n";
+  for (const auto& [k, v] : cfg.extract) s << k << " = " << v << "\n";
+  return s.str();
+}
+
+bool is_current(const StateRecord::TileState& s, const std::string& inputs_sha256, const SurveyConfig& cfg) {
+  return s.status == "ok" && s.inputs_sha256 == inputs_sha256 && s.config_sha256 == cfg.config_sha256 &&
+         s.tool_version == tool_version();
+}
+
+struct ProgressCtx {
+  Progress* p;
+  std::size_t shown = 0;
+};
+void slurm_progress(std::size_t done, std::size_t, void* ctx) {
+  auto* c = static_cast<ProgressCtx*>(ctx);
+  if (done > c->shown) {
+    c->p->advance(done - c->shown);
+    c->shown = done;
+  }
+}
+
+int run_survey(const std::vector<std::string>& args) {
+  po::options_description d("survey");
+  // clang-format off
+  d.add_options()
+    ("survey-file", po::value<std::string>(), "the survey description (INI: [survey], [extract], [slurm])")
+    ("force", po::bool_switch(), "reprocess every tile (with --only: those tiles)")
+    ("only", po::value<std::vector<std::string>>()->composing(), "process only this tile (by name; repeatable); it is reprocessed even when current")
+    ("engine", po::value<std::string>(), "local or slurm (overrides survey.engine)")
+    ("worker-task", po::value<int>(), "internal: run task N of a Slurm run (--run-dir)")
+    ("merge-job", po::bool_switch(), "internal: the merge job of a Slurm run (--run-dir)")
+    ("run-dir", po::value<std::string>(), "internal: the Slurm run folder");
+  // clang-format on
+  ParsedOptions opts = parse_options(
+      "survey", "CONFIG [--force] [--only TILE]... [--engine local|slurm] [--threads N]\n\n"
+                "Processes new or changed tiles of a survey and merges all tiles into one catalogue.\n"
+                "--threads N: tiles run at once by the local engine (0 = survey.workers, default 2).\n"
+                "Exit codes: 0 done, 5 nothing to do, 6 some tiles failed, 7 busy (another run holds\n"
+                "the lock), 2 bad configuration.",
+      d, {{"survey-file", 1}}, args);
+  if (opts.help) return kExitOk;
+  if (!opts.vm.count("survey-file")) throw UsageError("survey: the survey description CONFIG is missing");
+  SurveyConfig cfg = load_survey_config(opts.vm["survey-file"].as<std::string>());
+  if (opts.vm.count("engine")) {
+    cfg.engine = opts.vm["engine"].as<std::string>();
+    require(cfg.engine == "local" || cfg.engine == "slurm", "engine", cfg.engine, "local or slurm");
+  }
+  const int threads = opts.vm["threads"].as<int>();
+  require(threads >= 0, "threads", std::to_string(threads), "threads >= 0");
+  if (threads > 0) cfg.workers = threads;
+
+  // ---- Slurm task and merge job: files only, no lock, no state record --------
+  if (opts.vm.count("worker-task") || opts.vm["merge-job"].as<bool>()) {
+    if (!opts.vm.count("run-dir")) throw UsageError("--worker-task and --merge-job need --run-dir");
+    const std::string run_dir = opts.vm["run-dir"].as<std::string>();
+    if (opts.vm.count("worker-task")) return slurm_worker_task(cfg, run_dir, opts.vm["worker-task"].as<int>());
+    ThreadLimit tl(cfg.slurm.cpus_per_task);
+    return slurm_merge_job(cfg, run_dir);
+  }
+
+  const auto t_start = std::chrono::steady_clock::now();
+  const bool tty = stderr_is_terminal();
+  std::error_code ec;
+  fs::create_directories(cfg.output_root, ec);
+  if (ec) throw OutputError(cfg.output_root, "cannot create the output folder: " + ec.message());
+  RunLock lock((fs::path(cfg.output_root) / "survey.lock").string());
+  remove_stale_temporaries(cfg);
+  StateRecord db((fs::path(cfg.output_root) / "survey.sqlite").string());
+  SurveyLog log(cfg.output_root);
+  const std::string run_id = run_id_now();
+
+  const std::vector<TileInput> tiles = discover_tiles(cfg);
+  std::set<std::string> only;
+  if (opts.vm.count("only")) {
+    for (const auto& n : opts.vm["only"].as<std::vector<std::string>>()) {
+      bool found = false;
+      for (const auto& t : tiles) found |= t.name == n;
+      if (!found) throw UsageError("--only " + n + ": no tile of that name in the survey (" + cfg.config_path + ")");
+      only.insert(n);
+    }
+  }
+  const bool force = opts.vm["force"].as<bool>();
+
+  // ---- Inputs: quick key (size, mtime ns, inode) decides whether to hash ------
+  std::vector<std::string> inputs_sha(tiles.size());
+  std::vector<std::string> unreadable(tiles.size());
+  bool began = false;
+  for (std::size_t i = 0; i < tiles.size(); ++i) {
+    struct stat st {};
+    if (::stat(tiles[i].image.c_str(), &st) != 0) {
+      unreadable[i] = tiles[i].image + ": " + std::strerror(errno);
+      continue;
+    }
+    StateRecord::InputKey k;
+    k.size = static_cast<std::int64_t>(st.st_size);
+    k.mtime_ns = static_cast<std::int64_t>(st.st_mtim.tv_sec) * 1000000000LL + st.st_mtim.tv_nsec;
+    k.inode = static_cast<std::int64_t>(st.st_ino);
+    auto old = db.input(tiles[i].image);
+    if (old && old->size == k.size && old->mtime_ns == k.mtime_ns && old->inode == k.inode) {
+      inputs_sha[i] = old->sha256;
+      continue;
+    }
+    try {
+      k.sha256 = sha256_file(tiles[i].image);
+    } catch (const std::exception& e) {
+      unreadable[i] = e.what();
+      continue;
+    }
+    inputs_sha[i] = k.sha256;
+    if (!began) {
+      db.begin();
+      began = true;
+    }
+    db.set_input(tiles[i].image, k);  // a touch updates the quick key; the hash decides
+  }
+  if (began) db.commit();
+
+  // ---- Which tiles are pending ------------------------------------------------
+  auto state = db.tiles();
+  std::vector<PendingTile> pending;
+  std::vector<TileReport> failures_now;
+  for (std::size_t i = 0; i < tiles.size(); ++i) {
+    const auto& t = tiles[i];
+    if (!only.empty() && !only.count(t.name)) continue;
+    std::string reason;
+    auto s = state.find(t.name);
+    if (force || !only.empty()) reason = "forced";
+    else if (s == state.end()) reason = "new";
+    else if (s->second.status != "ok") reason = "failed before";
+    else if (s->second.inputs_sha256 != inputs_sha[i]) reason = "content changed";
+    else if (s->second.config_sha256 != cfg.config_sha256) reason = "configuration changed";
+    else if (s->second.tool_version != tool_version()) reason = "tool version changed";
+    else if (!fs::exists(fs::path(cfg.output_root) / "tiles" / t.name / "tile.json", ec)) reason = "results missing";
+    if (reason.empty()) continue;
+    if (!unreadable[i].empty()) {
+      TileReport r;
+      r.name = t.name;
+      r.exit_code = kExitBadInput;
+      r.message = unreadable[i];
+      failures_now.push_back(r);
+      continue;
+    }
+    pending.push_back({t, inputs_sha[i], reason});
+  }
+
+  auto merge_list = [&]() {
+    std::vector<MergeTile> m;
+    auto st = db.tiles();
+    for (std::size_t i = 0; i < tiles.size(); ++i) {
+      auto s = st.find(tiles[i].name);
+      if (s != st.end() && is_current(s->second, inputs_sha[i], cfg))
+        m.push_back({tiles[i].name, s->second.components_sha256, s->second.centre_ra_deg, s->second.centre_dec_deg});
+    }
+    return m;
+  };
+
+  // ---- Nothing to do? ------------------------------------------------------------
+  if (pending.empty() && failures_now.empty()) {
+    const std::string fp = merge_fingerprint(cfg, merge_list());
+    if (fp == db.get("merge_fingerprint") && fs::exists(catalogue_path(cfg), ec)) {
+      log.write("run " + run_id + " nothing to do (" + std::to_string(tiles.size()) + " tiles up to date)",
+                "\"event\":\"run\",\"run\":" + json_str(run_id) + ",\"outcome\":\"nothing_to_do\",\"tiles\":" +
+                    std::to_string(tiles.size()));
+      if (tty) std::cerr << "skerry survey: nothing to do (" << tiles.size() << " tiles up to date)\n";
+      return kExitNothingToDo;
+    }
+  }
+
+  // The [extract] settings every tile run reads (rewritten only when they change).
+  if (!cfg.extract.empty()) {
+    const std::string ini = stage_ini(cfg);
+    const std::string p = (fs::path(cfg.output_root) / "stage" / "extract.ini").string();
+    std::ifstream in(p);
+    std::ostringstream cur;
+    cur << in.rdbuf();
+    if (!in || cur.str() != ini) write_text_atomic(p, ini);
+  }
+
+  log.write("run " + run_id + " start engine=" + cfg.engine + " tiles=" + std::to_string(tiles.size()) +
+                " pending=" + std::to_string(pending.size()),
+            "\"event\":\"run_start\",\"run\":" + json_str(run_id) + ",\"engine\":" + json_str(cfg.engine) +
+                ",\"tiles\":" + std::to_string(tiles.size()) + ",\"pending\":" + std::to_string(pending.size()));
+
+  std::mutex mu;
+  std::size_t n_ok = 0, n_failed = 0;
+  auto record = [&](const TileReport& r, const PendingTile* p) {
+    std::lock_guard g(mu);
+    StateRecord::TileState s;
+    s.name = r.name;
+    s.image = p ? p->tile.image : "";
+    s.status = r.ok ? "ok" : "failed";
+    s.inputs_sha256 = r.ok ? r.inputs_sha256 : "";
+    s.config_sha256 = r.ok ? r.config_sha256 : "";
+    s.tool_version = r.ok ? r.tool_version : "";
+    s.components_sha256 = r.components_sha256;
+    s.message = r.message;
+    s.centre_ra_deg = r.centre_ra_deg;
+    s.centre_dec_deg = r.centre_dec_deg;
+    s.seconds = r.seconds;
+    s.rows = r.rows;
+    s.updated_utc = utc_now();
+    db.begin();
+    db.set_tile(s);
+    db.commit();
+    (r.ok ? n_ok : n_failed)++;
+    const std::string reason = p ? p->reason : "unreadable";
+    if (r.ok) {
+      log.write("tile " + r.name + " ok " + fixed(r.seconds, 2) + " s components=" + std::to_string(r.rows) + " (" +
+                    reason + ")",
+                "\"event\":\"tile\",\"run\":" + json_str(run_id) + ",\"tile\":" + json_str(r.name) +
+                    ",\"status\":\"ok\",\"seconds\":" + fixed(r.seconds, 3) + ",\"components\":" +
+                    std::to_string(r.rows) + ",\"reason\":" + json_str(reason));
+    } else {
+      log.write("tile " + r.name + " failed " + fixed(r.seconds, 2) + " s exit=" + std::to_string(r.exit_code) + ": " +
+                    r.message,
+                "\"event\":\"tile\",\"run\":" + json_str(run_id) + ",\"tile\":" + json_str(r.name) +
+                    ",\"status\":\"failed\",\"seconds\":" + fixed(r.seconds, 3) + ",\"exit_code\":" +
+                    std::to_string(r.exit_code) + ",\"message\":" + json_str(r.message) + ",\"reason\":" +
+                    json_str(reason));
+    }
+  };
+  for (const auto& f : failures_now) record(f, nullptr);
+
+  // ---- Run the pending tiles ------------------------------------------------------
+  bool slurm_merged = false;
+  if (!pending.empty()) {
+    Progress prog("survey tiles", pending.size());
+    if (cfg.engine == "local") {
+      std::atomic<std::size_t> next{0};
+      std::vector<std::thread> pool;
+      const std::size_t nw = std::min<std::size_t>(static_cast<std::size_t>(cfg.workers), pending.size());
+      for (std::size_t w = 0; w < nw; ++w) {
+        pool.emplace_back([&] {
+          for (std::size_t i; (i = next++) < pending.size();) {
+            const TileReport r = process_tile(cfg, pending[i].tile, pending[i].inputs_sha256, run_id);
+            record(r, &pending[i]);
+            prog.advance();
+          }
+        });
+      }
+      for (auto& th : pool) th.join();
+    } else {
+      ProgressCtx pc{&prog};
+      std::string run_dir;
+      auto reports = run_slurm(cfg, pending, merge_list(), run_id, &slurm_progress, &pc, &run_dir);
+      for (std::size_t i = 0; i < reports.size(); ++i) record(reports[i], &pending[i]);
+      // Accept the merge job's catalogue only if it merged exactly what we would.
+      auto ms = read_merge_summary(cfg);
+      slurm_merged = ms && ms->fingerprint == merge_fingerprint(cfg, merge_list()) && fs::exists(catalogue_path(cfg), ec);
+      if (slurm_merged) {
+        db.begin();
+        db.set("merge_fingerprint", ms->fingerprint);
+        db.commit();
+        log.write("merge ok " + fixed(ms->seconds, 2) + " s (Slurm job) tiles=" + std::to_string(ms->tiles) +
+                      " rows=" + std::to_string(ms->rows) + " residual_duplicate_pairs=" +
+                      std::to_string(ms->residual_duplicate_pairs),
+                  "\"event\":\"merge\",\"run\":" + json_str(run_id) + ",\"where\":\"slurm\",\"seconds\":" +
+                      fixed(ms->seconds, 3) + ",\"tiles\":" + std::to_string(ms->tiles) + ",\"rows\":" +
+                      std::to_string(ms->rows) + ",\"residual_duplicate_pairs\":" +
+                      std::to_string(ms->residual_duplicate_pairs));
+      }
+    }
+    prog.finish();
+  }
+
+  // ---- Merge (locally, unless the Slurm merge job did it) -----------------------------
+  if (!slurm_merged) {
+    const auto mt = merge_list();
+    const std::string fp = merge_fingerprint(cfg, mt);
+    if (fp != db.get("merge_fingerprint") || !fs::exists(catalogue_path(cfg), ec)) {
+      ThreadLimit tl(cfg.workers);
+      const MergeSummary ms = merge_tiles(cfg, mt);
+      db.begin();
+      db.set("merge_fingerprint", ms.fingerprint);
+      db.commit();
+      log.write("merge ok " + fixed(ms.seconds, 2) + " s tiles=" + std::to_string(ms.tiles) + " rows=" +
+                    std::to_string(ms.rows) + " of " + std::to_string(ms.input_rows) + " residual_duplicate_pairs=" +
+                    std::to_string(ms.residual_duplicate_pairs) + " partitions=" + std::to_string(ms.partitions),
+                "\"event\":\"merge\",\"run\":" + json_str(run_id) + ",\"where\":\"local\",\"seconds\":" +
+                    fixed(ms.seconds, 3) + ",\"tiles\":" + std::to_string(ms.tiles) + ",\"rows\":" +
+                    std::to_string(ms.rows) + ",\"input_rows\":" + std::to_string(ms.input_rows) +
+                    ",\"residual_duplicate_pairs\":" + std::to_string(ms.residual_duplicate_pairs) +
+                    ",\"partitions\":" + std::to_string(ms.partitions));
+    }
+  }
+
+  const double secs = std::chrono::duration<double>(std::chrono::steady_clock::now() - t_start).count();
+  const int code = n_failed > 0 ? kExitSomeFailed : kExitOk;
+  log.write("run " + run_id + " end exit=" + std::to_string(code) + " processed=" + std::to_string(n_ok) +
+                " failed=" + std::to_string(n_failed) + " " + fixed(secs, 2) + " s",
+            "\"event\":\"run_end\",\"run\":" + json_str(run_id) + ",\"exit_code\":" + std::to_string(code) +
+                ",\"processed\":" + std::to_string(n_ok) + ",\"failed\":" + std::to_string(n_failed) +
+                ",\"seconds\":" + fixed(secs, 3));
+  if (n_failed > 0) {
+    // Not quiet: cron mails this line to whoever owns the job.
+    std::cerr << "skerry survey: " << n_failed << " of " << (n_ok + n_failed) << " tiles failed (retried next run; see "
+              << (fs::path(cfg.output_root) / "survey.log").string() << ")\n";
+  } else if (tty) {
+    std::cerr << "skerry survey: " << n_ok << " tiles processed, catalogue " << catalogue_path(cfg) << " ("
+              << fixed(secs, 1) << " s)\n";
+  }
+  return code;
+}
+
+const CommandRegistrar reg{"survey", "incremental survey runs (cron, Slurm) and the merged survey catalogue",
+                           &run_survey};
+
+}  // namespace
+}  // namespace skerry

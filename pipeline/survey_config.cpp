@@ -1,0 +1,194 @@
+// `skerry survey`: the survey description (INI, same format as the stage
+// configurations) and tile discovery.
+#include <glob.h>
+
+#include <algorithm>
+#include <filesystem>
+#include <fstream>
+#include <set>
+#include <sstream>
+
+#include "errors.h"
+#include "options.h"
+#include "run_record.h"
+#include "survey_engine.h"
+#include "version.h"
+
+namespace skerry::surveyrun {
+
+namespace fs = std::filesystem;
+
+std::string tool_version() { return std::string(SKERRY_VERSION) + " (" + SKERRY_GIT_REVISION + ")"; }
+
+namespace {
+
+std::vector<std::string> split_list(const std::string& s) {
+  std::vector<std::string> out;
+  std::string cur;
+  for (char ch : s) {
+    if (ch == ',' || ch == ' ' || ch == '\t') {
+      if (!cur.empty()) out.push_back(cur);
+      cur.clear();
+    } else {
+      cur += ch;
+    }
+  }
+  if (!cur.empty()) out.push_back(cur);
+  return out;
+}
+
+std::string absolute_from(const std::string& base, const std::string& p) {
+  fs::path q(p);
+  if (q.is_relative()) q = fs::path(base) / q;
+  return q.lexically_normal().string();
+}
+
+}  // namespace
+
+SurveyConfig load_survey_config(const std::string& path) {
+  SurveyConfig cfg;
+  std::error_code ec;
+  fs::path abs = fs::absolute(path, ec);
+  if (ec || !fs::is_regular_file(abs, ec)) throw InputError(path, "cannot open survey configuration file");
+  cfg.config_path = abs.lexically_normal().string();
+  cfg.base_dir = abs.parent_path().lexically_normal().string();
+
+  std::string tiles, output, catalogue, engine, prefix;
+  int workers = 2, tpt = 1, order = 4;
+  double radius = 5.0, margin = 3.0;
+  po::options_description d("survey configuration");
+  // clang-format off
+  d.add_options()
+    ("survey.name", po::value<std::string>(&cfg.name)->default_value("survey"), "survey name (logs, catalogue meta)")
+    ("survey.tiles", po::value<std::string>(&tiles), "tile images: globs or files, comma-separated, relative to this file")
+    ("survey.output", po::value<std::string>(&output), "output root folder, relative to this file")
+    ("survey.catalogue", po::value<std::string>(&catalogue)->default_value("survey.components.csv"), "merged catalogue file name in the output root (.csv, .fits or .vot)")
+    ("survey.engine", po::value<std::string>(&engine)->default_value("local"), "local or slurm")
+    ("survey.workers", po::value<int>(&workers)->default_value(2), "tiles processed at once by the local engine")
+    ("survey.threads_per_tile", po::value<int>(&tpt)->default_value(1), "--threads of each tile run")
+    ("survey.match_radius_arcsec", po::value<double>(&radius)->default_value(5.0), "self-match radius of the duplicate check [arcsec]")
+    ("survey.margin_match_radii", po::value<double>(&margin)->default_value(3.0), "overlap margin of a sky partition [match radii]")
+    ("survey.partition_order", po::value<int>(&order)->default_value(4), "HEALPix order of the merge partitions (results do not depend on it)")
+    ("survey.designation_prefix", po::value<std::string>(&prefix)->default_value("SKDC"), "designation prefix of merged source names")
+    ("survey.ra_column", po::value<std::string>(&cfg.ra_column)->default_value("ra_deg"), "RA column of the tile component tables [deg]")
+    ("survey.dec_column", po::value<std::string>(&cfg.dec_column)->default_value("dec_deg"), "Dec column of the tile component tables [deg]")
+    ("slurm.partition", po::value<std::string>(&cfg.slurm.partition)->default_value(""), "sbatch --partition (empty: the default)")
+    ("slurm.account", po::value<std::string>(&cfg.slurm.account)->default_value(""), "sbatch --account (empty: none)")
+    ("slurm.cpus_per_task", po::value<int>(&cfg.slurm.cpus_per_task)->default_value(1), "sbatch --cpus-per-task of a tile task")
+    ("slurm.mem", po::value<std::string>(&cfg.slurm.mem)->default_value("2G"), "sbatch --mem of a tile task")
+    ("slurm.time", po::value<std::string>(&cfg.slurm.time)->default_value("01:00:00"), "sbatch --time of a tile task")
+    ("slurm.max_parallel", po::value<int>(&cfg.slurm.max_parallel)->default_value(0), "array throttle: tasks running at once (0 = no limit)")
+    ("slurm.merge_mem", po::value<std::string>(&cfg.slurm.merge_mem)->default_value("4G"), "sbatch --mem of the merge job")
+    ("slurm.merge_time", po::value<std::string>(&cfg.slurm.merge_time)->default_value("01:00:00"), "sbatch --time of the merge job")
+    ("slurm.poll_seconds", po::value<double>(&cfg.slurm.poll_seconds)->default_value(1.0), "squeue polling interval [s]")
+    ("slurm.extra", po::value<std::string>(&cfg.slurm.extra)->default_value(""), "extra sbatch arguments, space-separated");
+  // clang-format on
+  std::ifstream in(cfg.config_path);
+  if (!in) throw InputError(path, "cannot open survey configuration file");
+  po::variables_map vm;
+  try {
+    auto parsed = po::parse_config_file(in, d, /*allow_unregistered=*/true);
+    for (const auto& o : parsed.options) {
+      if (!o.unregistered) continue;
+      const std::string& key = o.string_key;
+      if (key.rfind("extract.", 0) == 0 && key.size() > 8) {
+        const std::string k = key.substr(8);
+        if (cfg.extract.count(k)) throw UsageError(path + ": option 'extract." + k + "' given twice");
+        cfg.extract[k] = o.value.empty() ? "" : o.value.front();
+      } else {
+        throw UsageError(path + ": unknown option '" + key + "' (sections: [survey], [extract], [slurm])");
+      }
+    }
+    po::store(parsed, vm);
+    po::notify(vm);
+  } catch (const po::error& e) {
+    throw UsageError(path + ": " + e.what());
+  }
+  auto need = [&](bool ok, const std::string& opt, const std::string& v, const std::string& rule) {
+    if (!ok) throw UsageError(path + ": " + opt + " = " + v + " breaks " + rule);
+  };
+  need(!tiles.empty(), "survey.tiles", "''", "a glob or a list of tile images");
+  need(!output.empty(), "survey.output", "''", "an output folder");
+  need(engine == "local" || engine == "slurm", "survey.engine", engine, "local or slurm");
+  need(workers >= 1 && workers <= 1024, "survey.workers", std::to_string(workers), "1 <= workers <= 1024");
+  need(tpt >= 0 && tpt <= 1024, "survey.threads_per_tile", std::to_string(tpt), "0 <= threads_per_tile <= 1024");
+  need(!catalogue.empty() && catalogue.find('/') == std::string::npos && catalogue[0] != '.',
+       "survey.catalogue", catalogue, "a plain file name");
+  {
+    const std::string ext = fs::path(catalogue).extension().string();
+    need(ext == ".csv" || ext == ".fits" || ext == ".fit" || ext == ".vot" || ext == ".xml", "survey.catalogue",
+         catalogue, "a name ending in .csv, .fits or .vot");
+  }
+  need(cfg.slurm.cpus_per_task >= 1, "slurm.cpus_per_task", std::to_string(cfg.slurm.cpus_per_task), ">= 1");
+  need(cfg.slurm.max_parallel >= 0, "slurm.max_parallel", std::to_string(cfg.slurm.max_parallel), ">= 0");
+  need(cfg.slurm.poll_seconds > 0.0 && cfg.slurm.poll_seconds <= 600.0, "slurm.poll_seconds",
+       std::to_string(cfg.slurm.poll_seconds), "0 < poll_seconds <= 600");
+  cfg.tile_patterns = split_list(tiles);
+  cfg.output_root = absolute_from(cfg.base_dir, output);
+  cfg.catalogue = catalogue;
+  cfg.engine = engine;
+  cfg.workers = workers;
+  cfg.threads_per_tile = tpt;
+  cfg.merge.partition_order = order;
+  cfg.merge.match_radius_arcsec = radius;
+  cfg.merge.margin_match_radii = margin;
+  cfg.merge.designation_prefix = prefix;
+  try {
+    survey::validate(cfg.merge);
+  } catch (const std::invalid_argument& e) {
+    throw UsageError(path + ": survey." + e.what());
+  }
+  // What changes a tile's results: the per-tile command and its settings.
+  std::ostringstream h;
+  h << "skerry-survey-tile-v1\ncommand=extract\n";
+  for (const auto& [k, v] : cfg.extract) h << "extract." << k << "=" << v << "\n";
+  const std::string ht = h.str();
+  cfg.config_sha256 = sha256_hex(ht.data(), ht.size());
+  // The merge settings that change the catalogue (not the partition order).
+  std::ostringstream m;
+  m.precision(17);
+  m << "match_radius_arcsec=" << radius << ";margin_match_radii=" << margin << ";prefix=" << prefix
+    << ";ra=" << cfg.ra_column << ";dec=" << cfg.dec_column << ";name=" << cfg.name << ";catalogue=" << catalogue;
+  cfg.merge_settings = m.str();
+  return cfg;
+}
+
+std::vector<TileInput> discover_tiles(const SurveyConfig& cfg) {
+  std::vector<TileInput> out;
+  std::set<std::string> seen_paths;
+  for (const auto& pat : cfg.tile_patterns) {
+    const std::string abs = absolute_from(cfg.base_dir, pat);
+    const bool wild = pat.find_first_of("*?[") != std::string::npos;
+    std::vector<std::string> found;
+    if (wild) {
+      glob_t g{};
+      const int rc = ::glob(abs.c_str(), 0, nullptr, &g);
+      if (rc == 0)
+        for (std::size_t i = 0; i < g.gl_pathc; ++i) found.emplace_back(g.gl_pathv[i]);
+      ::globfree(&g);
+    } else {
+      std::error_code ec;
+      if (!fs::is_regular_file(abs, ec))
+        throw UsageError(cfg.config_path + ": survey.tiles lists " + pat + ", which is not a file");
+      found.push_back(abs);
+    }
+    for (auto& f : found) {
+      const std::string fname = fs::path(f).filename().string();
+      if (fname.empty() || fname[0] == '.') continue;  // hidden and temporary files are not tiles
+      std::error_code ec;
+      if (!fs::is_regular_file(f, ec)) continue;
+      if (!seen_paths.insert(f).second) continue;
+      std::string stem = fs::path(f).stem().string();
+      if (fs::path(f).extension() == ".gz" || fs::path(f).extension() == ".fz") stem = fs::path(stem).stem().string();
+      out.push_back({stem, f});
+    }
+  }
+  std::sort(out.begin(), out.end(), [](const TileInput& a, const TileInput& b) { return a.name < b.name; });
+  for (std::size_t i = 1; i < out.size(); ++i)
+    if (out[i].name == out[i - 1].name)
+      throw UsageError(cfg.config_path + ": tiles " + out[i - 1].image + " and " + out[i].image +
+                       " have the same name '" + out[i].name + "'");
+  return out;
+}
+
+}  // namespace skerry::surveyrun

@@ -1,0 +1,224 @@
+#pragma once
+/// `skerry survey`: internals shared by the controller (cmd_survey.cpp), the
+/// tile worker, the merge and the Slurm engine. Not a module: these read and
+/// write files.
+///
+/// Layout of the output root:
+///   survey.lock                 flock'ed by the controlling run (busy -> exit 7)
+///   survey.sqlite               state record; written by the controller only
+///   survey.log, survey.jsonl    plain log (one line per tile) and JSON lines
+///   stage/extract.ini           the [extract] settings passed to every tile run
+///   tiles/NAME/                 one tile's results (renamed into place whole)
+///       NAME.components.csv ... what `skerry extract` wrote
+///       tile.json               the worker's record of the tile (hashes, centre)
+///   tiles/NAME.failed.json      the last failure of the tile (removed on success)
+///   CATALOGUE                   the merged catalogue ([survey] catalogue)
+///   CATALOGUE stem + .merge.json  merge summary (counts, fingerprint)
+///   slurm/RUN/                  job scripts, task list and task logs of a Slurm run
+#include <cstdint>
+#include <map>
+#include <optional>
+#include <string>
+#include <vector>
+
+#include "skerry/survey.h"
+
+namespace skerry::surveyrun {
+
+struct SlurmSettings {
+  std::string partition;        ///< empty: the cluster's default
+  std::string account;          ///< empty: none
+  int cpus_per_task = 1;
+  std::string mem = "2G";       ///< --mem per task
+  std::string time = "01:00:00";///< --time per task
+  int max_parallel = 0;         ///< array throttle (%N); 0 = no limit
+  std::string merge_mem = "4G";
+  std::string merge_time = "01:00:00";
+  double poll_seconds = 1.0;
+  std::string extra;            ///< extra sbatch arguments (split on spaces)
+};
+
+struct SurveyConfig {
+  std::string config_path;      ///< absolute
+  std::string base_dir;         ///< folder of the configuration file (relative paths start here)
+  std::string name = "survey";
+  std::vector<std::string> tile_patterns;  ///< globs or files, as written
+  std::string output_root;      ///< absolute
+  std::string catalogue = "survey.components.csv";
+  std::string engine = "local"; ///< "local" or "slurm"
+  int workers = 2;
+  int threads_per_tile = 1;
+  survey::MergeOptions merge;
+  std::string ra_column = "ra_deg", dec_column = "dec_deg";
+  /// [extract] settings, key (without the section) -> value, passed through.
+  std::map<std::string, std::string> extract;
+  SlurmSettings slurm;
+  /// Hash of everything that changes a tile's results: the stage settings.
+  std::string config_sha256;
+  /// Hash of the merge settings (a change re-merges, it does not reprocess).
+  std::string merge_settings;
+};
+
+/// Reads the survey description. Throws UsageError (bad or unknown keys, naming
+/// the file and option) or InputError (file missing).
+SurveyConfig load_survey_config(const std::string& path);
+
+/// "VERSION (REVISION)" of this executable.
+std::string tool_version();
+
+struct TileInput {
+  std::string name;     ///< the image file's stem: unique in a survey
+  std::string image;    ///< absolute path
+};
+
+/// Expands the tile patterns (sorted by name). Throws UsageError for a listed
+/// file that does not exist or two tiles with one name.
+std::vector<TileInput> discover_tiles(const SurveyConfig& cfg);
+
+/// What a worker reports for one tile (tile.json or NAME.failed.json).
+struct TileReport {
+  std::string name;
+  bool ok = false;
+  int exit_code = 0;            ///< of the per-tile command
+  std::string message;          ///< one line, on failure
+  std::string inputs_sha256, config_sha256, tool_version;
+  std::string components_file;  ///< file name inside tiles/NAME/
+  std::string components_sha256;
+  std::int64_t rows = 0;
+  double centre_ra_deg = 0.0, centre_dec_deg = 0.0;
+  double seconds = 0.0;
+  std::string run_id;
+};
+
+/// Runs the per-tile command for one tile as a child process (this executable,
+/// `skerry extract IMAGE --out TMP`), then moves the results into tiles/NAME/ by
+/// renames (fsync of files and folders). Never throws for a tile failure: the
+/// report says what went wrong (and NAME.failed.json holds it). Never touches
+/// the state record.
+TileReport process_tile(const SurveyConfig& cfg, const TileInput& tile, const std::string& inputs_sha256,
+                        const std::string& run_id);
+
+/// Reads tiles/NAME/tile.json; nullopt when absent or unreadable.
+std::optional<TileReport> read_tile_report(const SurveyConfig& cfg, const std::string& name);
+/// Reads tiles/NAME.failed.json; nullopt when absent.
+std::optional<TileReport> read_failure_report(const SurveyConfig& cfg, const std::string& name);
+
+/// A tile as the merge takes it.
+struct MergeTile {
+  std::string name;
+  std::string components_sha256;
+  double centre_ra_deg = 0.0, centre_dec_deg = 0.0;
+};
+
+/// Fingerprint of a merge: settings, tool version and each tile's results.
+std::string merge_fingerprint(const SurveyConfig& cfg, const std::vector<MergeTile>& tiles);
+
+struct MergeSummary {
+  std::string fingerprint;
+  std::size_t tiles = 0, input_rows = 0, rows = 0, dropped_by_cell = 0, residual_duplicate_pairs = 0,
+              name_collisions = 0, partitions = 0;
+  double seconds = 0.0;
+};
+
+/// Merges the tiles' component tables into the survey catalogue (atomically),
+/// and writes the merge summary. Tiles in name order. Throws InputError /
+/// OutputError.
+MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& tiles);
+/// Path of the merged catalogue and of its summary.
+std::string catalogue_path(const SurveyConfig& cfg);
+std::string merge_summary_path(const SurveyConfig& cfg);
+std::optional<MergeSummary> read_merge_summary(const SurveyConfig& cfg);
+
+/// Appends one line to survey.log and one JSON object to survey.jsonl (each by
+/// one write(2) on an O_APPEND descriptor, then fsync).
+class SurveyLog {
+ public:
+  explicit SurveyLog(const std::string& output_root);
+  ~SurveyLog();
+  SurveyLog(const SurveyLog&) = delete;
+  SurveyLog& operator=(const SurveyLog&) = delete;
+  /// `text` is the plain line after the time stamp; `json` an object's members
+  /// already encoded (without braces), e.g. "\"event\":\"tile\",...".
+  void write(const std::string& text, const std::string& json_members);
+
+ private:
+  int plain_ = -1, json_ = -1;
+};
+
+/// UTC time stamp, ISO 8601 to the second ("2026-12-01T19:30:00Z").
+std::string utc_now();
+/// JSON string literal of `s` (with quotes).
+std::string json_str(const std::string& s);
+
+}  // namespace skerry::surveyrun
+
+namespace skerry::surveyrun {
+
+/// The state record: SQLite in the output root, opened by the controlling
+/// process only (never by workers: SQLite's locking is unreliable on network
+/// file systems, and one writer needs no locking at all). Rollback journal
+/// (not WAL, which needs shared memory on one host) and synchronous=FULL: a
+/// run killed mid-update leaves the previous state.
+class StateRecord {
+ public:
+  explicit StateRecord(const std::string& path);
+  ~StateRecord();
+  StateRecord(const StateRecord&) = delete;
+  StateRecord& operator=(const StateRecord&) = delete;
+
+  struct InputKey {
+    std::int64_t size = -1, mtime_ns = -1, inode = -1;
+    std::string sha256;
+  };
+  std::optional<InputKey> input(const std::string& path) const;
+  void set_input(const std::string& path, const InputKey& key);
+
+  struct TileState {
+    std::string name, image, status, inputs_sha256, config_sha256, tool_version, components_sha256, message;
+    double centre_ra_deg = 0.0, centre_dec_deg = 0.0, seconds = 0.0;
+    std::int64_t rows = 0;
+    std::string updated_utc;
+  };
+  std::map<std::string, TileState> tiles() const;
+  void set_tile(const TileState& t);
+
+  std::string get(const std::string& key) const;
+  void set(const std::string& key, const std::string& value);
+
+  void begin();
+  void commit();
+
+ private:
+  void exec(const std::string& sql);
+  void* db_ = nullptr;
+  std::string path_;
+};
+
+}  // namespace skerry::surveyrun
+
+namespace skerry::surveyrun {
+
+/// One pending tile handed to an engine.
+struct PendingTile {
+  TileInput tile;
+  std::string inputs_sha256;
+  std::string reason;  ///< new, content changed, configuration changed, ...
+};
+
+/// Slurm engine: one job array (a task per pending tile) and a merge job
+/// (afterok) through sbatch, polled with squeue until both have ended. Returns
+/// one report per pending tile (in order); failed or lost tasks give failure
+/// reports naming the task and its log. `merge_tiles_now` are the tiles that
+/// are already current (the merge job adds the pending ones that succeed).
+/// `on_progress(done, total)` is called while polling.
+std::vector<TileReport> run_slurm(const SurveyConfig& cfg, const std::vector<PendingTile>& pending,
+                                  const std::vector<MergeTile>& merge_tiles_now, const std::string& run_id,
+                                  void (*on_progress)(std::size_t, std::size_t, void*), void* progress_ctx,
+                                  std::string* run_dir_out);
+
+/// `skerry survey CONFIG --worker-task N --run-dir DIR`: one Slurm array task.
+int slurm_worker_task(const SurveyConfig& cfg, const std::string& run_dir, int task);
+/// `skerry survey CONFIG --merge-job --run-dir DIR`: the Slurm merge job.
+int slurm_merge_job(const SurveyConfig& cfg, const std::string& run_dir);
+
+}  // namespace skerry::surveyrun
