@@ -68,10 +68,32 @@ TEST(Injection, PointSourceNormalisedResidualsAndFluxScale) {
   }
   const auto fits = skerry::fit_islands(cutouts, {});
   ASSERT_EQ(fits.size(), truth.size());
+  // Model selection (BIC with effective independent pixels, fit_island): with no
+  // prominence cut every noise bump on a source is a candidate maximum; the
+  // information criterion must still keep isolated singles single (<= 1%), while
+  // without it every multi-maximum island would be split.
+  {
+    skerry::FitOptions o;
+    o.prominence_snr = 0.0;
+    const auto with_ic = skerry::fit_islands(cutouts, o);
+    o.use_information_criterion = false;
+    const auto without_ic = skerry::fit_islands(cutouts, o);
+    int multi_max = 0, split_ic = 0, split_no_ic = 0;
+    for (std::size_t k = 0; k < cutouts.size(); ++k) {
+      multi_max += with_ic[k].n_maxima > 1;
+      split_ic += with_ic[k].components.size() > 1;
+      split_no_ic += without_ic[k].components.size() > 1;
+    }
+    std::printf("no prominence cut: %d islands with several maxima; split %d with BIC, %d without\n",
+                multi_max, split_ic, split_no_ic);
+    EXPECT_GE(multi_max, 10);  // the criterion is exercised
+    EXPECT_EQ(split_no_ic, multi_max);
+    EXPECT_LE(split_ic, static_cast<int>(0.01 * cutouts.size()));
+  }
 
   enum { kRa, kDec, kPeak, kSint, kMaj, kMin, kNPar };
   const char* names[kNPar] = {"ra", "dec", "peak", "s_int", "maj", "min"};
-  std::vector<double> pulls[3][kNPar];
+  std::vector<double> pulls[3][kNPar], condon[3][kNPar];
   std::vector<double> ratio_bright;
   int split = 0, failed = 0;
   for (std::size_t k = 0; k < fits.size(); ++k) {
@@ -97,14 +119,27 @@ TEST(Injection, PointSourceNormalisedResidualsAndFluxScale) {
     pulls[b][kMaj].push_back((s.maj_arcsec - kBeam.maj_arcsec) / s.maj_err_arcsec);
     pulls[b][kMin].push_back((s.min_arcsec - kBeam.min_arcsec) / s.min_err_arcsec);
     if (t.snr > 20.0) ratio_bright.push_back(s.s_int_jy / t.s_int);
+    {  // Condon (1997) expected errors, for information (not the reported default)
+      skerry::SkyOptions co;
+      co.use_condon_errors = true;
+      const auto sc = skerry::measure_on_sky(c, sky, kBeam, co);
+      const Eigen::Vector2d o2 = fittest::sky_offset_arcsec(t.ra, t.dec, sc.ra_deg, sc.dec_deg);
+      condon[b][kRa].push_back(o2(0) / sc.ra_err_arcsec);
+      condon[b][kDec].push_back(o2(1) / sc.dec_err_arcsec);
+      condon[b][kPeak].push_back((sc.peak_jy_per_beam - t.s_int) / sc.peak_err_jy_per_beam);
+      condon[b][kSint].push_back((sc.s_int_jy - t.s_int) / sc.s_int_err_jy);
+      condon[b][kMaj].push_back((sc.maj_arcsec - kBeam.maj_arcsec) / sc.maj_err_arcsec);
+      condon[b][kMin].push_back((sc.min_arcsec - kBeam.min_arcsec) / sc.min_err_arcsec);
+    }
   }
   for (int b = 0; b < 3; ++b) {
     ASSERT_GE(pulls[b][kRa].size(), 1000u) << "bin " << b;
     for (int p = 0; p < kNPar; ++p) {
       const double rs = fittest::robust_std(pulls[b][p]);
-      std::printf("true SNR [%g, %g): %-5s robust std of normalised residuals %.3f (median %+.3f, n %zu)\n",
+      std::printf("true SNR [%g, %g): %-5s robust std of normalised residuals %.3f (median %+.3f, "
+                  "n %zu); with Condon's errors %.3f\n",
                   bins[b][0], bins[b][1], names[p], rs, fittest::median(pulls[b][p]),
-                  pulls[b][p].size());
+                  pulls[b][p].size(), fittest::robust_std(condon[b][p]));
       EXPECT_GE(rs, 0.9) << names[p] << " bin " << b;
       EXPECT_LE(rs, 1.1) << names[p] << " bin " << b;
     }
