@@ -250,3 +250,68 @@ TEST(Injection, CloseDoublesAreSplit) {
 }
 
 }  // namespace
+
+namespace {
+
+// Resolved Gaussians (issue requirement "deconvolved sizes recovered within their
+// errors"): intrinsic 9" x 5" at random PA, beam 12" x 8" PA 30, integrated SNR
+// log-uniform in [40, 200]; deconvolution by REF-DECONV-01 (Wild 1970). The
+// normalised residuals of the deconvolved FWHMs and of S_int have a robust std
+// within [0.85, 1.15] (N = 900: standard error ~0.03; the deconvolution is
+// nonlinear near the beam, so the window is a little wider than for the fitted
+// parameters) and the deconvolved PA lies within 3 of its errors in >= 97% of cases.
+TEST(Injection, ResolvedSourcesDeconvolvedWithinErrors) {
+  const int stamp = 48, per_side = 30, n = stamp * per_side;
+  const TanGrid sky = TanGrid::square(kRa0, kDec0, n / 2.0, n / 2.0, kPixArcsec, 25.0, true);
+  const Eigen::Matrix2d bp_centre = fittest::beam_pix(sky, kBeam, n / 2.0, n / 2.0);
+  skerry::ImageF img = skerry::sim::correlated_noise(n, n, bp_centre, kRms, 5150);
+  std::mt19937_64 rng(8080);
+  std::uniform_real_distribution<double> u(0.0, 1.0);
+  std::vector<skerry::sim::SkySource> sources;
+  std::vector<skerry::Ellipse> shapes;
+  for (int k = 0; k < per_side * per_side; ++k) {
+    const int x0 = stamp * (k % per_side), y0 = stamp * (k / per_side);
+    double ra, dec;
+    sky.pix_to_sky(x0 + stamp / 2 + u(rng) - 0.5, y0 + stamp / 2 + u(rng) - 0.5, ra, dec);
+    const skerry::Ellipse shape{9.0, 5.0, 180.0 * u(rng)};
+    shapes.push_back(shape);
+    sources.push_back(skerry::sim::make_source(ra, dec, 40.0 * std::pow(5.0, u(rng)) * kRms, shape));
+  }
+  skerry::sim::RenderOptions ro;
+  ro.beam = kBeam;
+  skerry::sim::add_sources(img, sky, sources, ro);
+  std::vector<skerry::IslandCutout> cutouts;
+  for (int k = 0; k < per_side * per_side; ++k) {
+    const int x0 = stamp * (k % per_side), y0 = stamp * (k / per_side);
+    cutouts.push_back(fittest::make_cutout(img, kRms, x0, y0, stamp, stamp, 3.0,
+                                           fittest::beam_pix(sky, kBeam, x0 + stamp / 2, y0 + stamp / 2), k));
+  }
+  const auto fits = skerry::fit_islands(cutouts, {});
+  std::vector<double> pmaj, pmin, psint;
+  int pa_ok = 0, n_ok = 0;
+  for (std::size_t k = 0; k < fits.size(); ++k) {
+    if (fits[k].components.size() != 1) continue;
+    const auto s = skerry::measure_on_sky(fits[k].components[0], sky, kBeam, {});
+    if (s.deconv_maj_upper_limit || s.deconv_min_upper_limit) continue;
+    ++n_ok;
+    pmaj.push_back((s.deconv_maj_arcsec - shapes[k].maj) / s.deconv_maj_err_arcsec);
+    pmin.push_back((s.deconv_min_arcsec - shapes[k].min) / s.deconv_min_err_arcsec);
+    psint.push_back((s.s_int_jy - sources[k].spectrum.s_ref_jy) / s.s_int_err_jy);
+    double dpa = std::fmod(s.deconv_pa_deg - shapes[k].pa_deg + 270.0, 180.0) - 90.0;
+    pa_ok += std::abs(dpa) <= 3.0 * s.deconv_pa_err_deg;
+  }
+  const double rmaj = fittest::robust_std(pmaj), rmin = fittest::robust_std(pmin),
+               rs = fittest::robust_std(psint);
+  std::printf("resolved: %d of %zu resolved on both axes; deconvolved maj robust std %.3f (median %+.3f), "
+              "min %.3f (median %+.3f), S_int %.3f (median %+.3f); PA within 3 sigma %d\n",
+              n_ok, fits.size(), rmaj, fittest::median(pmaj), rmin, fittest::median(pmin), rs,
+              fittest::median(psint), pa_ok);
+  EXPECT_GE(n_ok, static_cast<int>(0.95 * fits.size()));
+  for (double r : {rmaj, rmin, rs}) {
+    EXPECT_GE(r, 0.85);
+    EXPECT_LE(r, 1.15);
+  }
+  EXPECT_GE(pa_ok, static_cast<int>(0.97 * n_ok));
+}
+
+}  // namespace
