@@ -4,7 +4,10 @@
 // coordinates = CD (p - crpix), then the TAN projection), and Gaussian
 // rendering on such a grid.
 #include <Eigen/Dense>
+#include <algorithm>
 #include <cmath>
+#include <cstdint>
+#include <vector>
 
 #include "skerry/constants.h"
 #include "skerry/gaussian.h"
@@ -56,7 +59,7 @@ class TanSky : public PixelSky {
 inline void add_gaussian(ImageF& img, const PixelSky& wcs, double ra, double dec,
                          const Ellipse& shape, double peak) {
   const Eigen::Matrix2d ci = ellipse_to_cov(shape).inverse();
-  const double reach_arcsec = 6.0 * shape.maj;
+  const double reach_arcsec = 3.0 * shape.maj;  // 7 sigma
   double x0 = 0.0, y0 = 0.0;
   wcs.sky_to_pix(ra, dec, x0, y0);
   const auto g = local_geometry(wcs, x0, y0);
@@ -70,6 +73,51 @@ inline void add_gaussian(ImageF& img, const PixelSky& wcs, double ra, double dec
       const Eigen::Vector2d d(xi * kRadToArcsec, eta * kRadToArcsec);
       img(y, x) += static_cast<float>(peak * std::exp(-0.5 * d.dot(ci * d)));
     }
+}
+
+}  // namespace skerry::testing
+
+#include <random>
+
+#include "skerry/resolution.h"
+
+namespace skerry::testing {
+
+/// Beam-correlated noise of the given rms (CONVENTIONS.md "Noise": white noise
+/// convolved with a Gaussian of the beam's FWHMs / sqrt(2), same PA, rescaled to
+/// the target rms by its sample standard deviation).
+inline ImageF correlated_noise(long ny, long nx, const PixelSky& wcs, const Beam& beam, double rms,
+                               std::uint64_t seed) {
+  std::mt19937_64 rng(seed);
+  std::normal_distribution<float> n01;
+  ImageF w(ny, nx);
+  for (long i = 0; i < w.size(); ++i) w.data()[i] = n01(rng);
+  const auto g = local_geometry(wcs, 0.5 * (nx - 1), 0.5 * (ny - 1));
+  const Eigen::Matrix2d k = g->sky_cov_to_pixel(ellipse_to_cov(to_ellipse(beam))) * 0.5;
+  ConvolveOptions o;
+  o.method = 2;
+  o.min_valid_fraction = 0.0;  // corners renormalised, not blanked
+  ImageF c = convolve_gaussian_pixels(w, k, o);
+  const double mean = c.cast<double>().mean();
+  const double sd = std::sqrt((c.cast<double>() - mean).square().mean());
+  return ((c.cast<double>() - mean) * (rms / sd)).cast<float>();
+}
+
+/// Robust standard deviation: 1.4826 x median absolute deviation (common practice).
+inline double robust_std(std::vector<double> v) {
+  auto med = [](std::vector<double> a) {
+    std::sort(a.begin(), a.end());
+    const std::size_t n = a.size();
+    return n % 2 ? a[n / 2] : 0.5 * (a[n / 2 - 1] + a[n / 2]);
+  };
+  const double m = med(v);
+  for (double& x : v) x = std::abs(x - m);
+  return 1.4826 * med(v);
+}
+inline double median(std::vector<double> a) {
+  std::sort(a.begin(), a.end());
+  const std::size_t n = a.size();
+  return n % 2 ? a[n / 2] : 0.5 * (a[n / 2 - 1] + a[n / 2]);
 }
 
 }  // namespace skerry::testing

@@ -66,6 +66,7 @@ enum ForcedFlag : std::uint32_t {
   kForcedNotDetected = 1u << 3,   ///< below detect_snr: use the upper limit
   kForcedGroupSplit = 1u << 4,    ///< blend larger than max_group_size was split
   kForcedMasked = 1u << 5,        ///< centre in a user mask / exclusion region: no value
+  kForcedDegenerate = 1u << 6,    ///< blend members indistinguishable (singular system): no value
 };
 
 struct ForcedMeasurement {
