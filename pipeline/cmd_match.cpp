@@ -1,0 +1,787 @@
+// `skerry match A B --out DIR`: cross-match catalogues by sky separation.
+//
+// Modes (match.mode): nearest, all, one-to-one, error (error-aware), self (one
+// catalogue, duplicates and friends-of-friends groups), multi (the first
+// catalogue is the master list, every further one is matched to it).
+// Outputs (NAME = the stems of A and B joined by '_'):
+//   NAME.matches.csv (+ .fits / .vot with match.formats)   matched pairs
+//   NAME.unmatched_a.csv, NAME.unmatched_b.csv              with match.unmatched
+//   NAME.match_summary.json                                  counts, offsets, chance matches, flux ratio
+// self:  NAME.self_matches.csv (pairs) and NAME.groups.csv (one row per input row)
+// multi: NAME.multi.csv (one row per master row) and NAME.match_summary.json
+#include <erfa.h>
+#include <erfam.h>
+
+#include <algorithm>
+#include <cctype>
+#include <charconv>
+#include <cmath>
+#include <filesystem>
+#include <iostream>
+#include <nlohmann/json.hpp>
+#include <sstream>
+#include <string>
+#include <vector>
+
+#include "command.h"
+#include "errors.h"
+#include "io/atomic_file.h"
+#include "io/table_io.h"
+#include "options.h"
+#include "run_record.h"
+#include "skerry/crossmatch.h"
+#include "skerry/table.h"
+#include "version.h"
+
+namespace skerry {
+
+namespace {
+
+namespace fs = std::filesystem;
+
+std::string lower(std::string s) {
+  for (auto& c : s) c = static_cast<char>(std::tolower(static_cast<unsigned char>(c)));
+  return s;
+}
+
+std::vector<std::string> split_list(const std::string& s) {
+  std::vector<std::string> out;
+  std::string cur;
+  for (char c : s) {
+    if (c == ',') {
+      if (!cur.empty()) out.push_back(cur);
+      cur.clear();
+    } else if (c != ' ') {
+      cur += c;
+    }
+  }
+  if (!cur.empty()) out.push_back(cur);
+  return out;
+}
+
+std::string stem_of(const std::string& path) {
+  std::string f = fs::path(path).filename().string();
+  auto dot = f.rfind('.');
+  return dot == std::string::npos || dot == 0 ? f : f.substr(0, dot);
+}
+
+// ---- column discovery ------------------------------------------------------------------
+
+/// Column chosen by option, else by UCD (exact, in order), else by name
+/// (case-insensitive, in order). Empty string when none.
+const Column* find_column(const Table& t, const std::string& file, const std::string& option_value,
+                          const std::string& option_name, const std::vector<std::string>& ucds,
+                          const std::vector<std::string>& names) {
+  if (!option_value.empty()) {
+    const Column* c = t.find(option_value);
+    if (!c) throw InputError(file, "no column '" + option_value + "' (given by --" + option_name + ")");
+    return c;
+  }
+  for (const auto& u : ucds)
+    for (const auto& c : t.columns())
+      if (lower(c.ucd) == u) return &c;
+  for (const auto& n : names)
+    for (const auto& c : t.columns())
+      if (lower(c.name) == n) return &c;
+  return nullptr;
+}
+
+/// Sexagesimal "hh:mm:ss.s", "hh mm ss.s", "12h30m00.5s", "-38d36m00s" or
+/// decimal text. `hours` = RA (the first field is in hours). Returns degrees or
+/// false when the text is not a number of that form.
+bool parse_angle_text(const std::string& s, bool hours, double& deg) {
+  std::string t;
+  for (char c : s) {
+    const char l = static_cast<char>(std::tolower(static_cast<unsigned char>(c)));
+    t += (l == ':' || l == 'h' || l == 'd' || l == 'm' || l == 's' || l == '\'' || l == '"') ? ' ' : c;
+  }
+  std::istringstream in(t);
+  std::vector<std::string> parts;
+  for (std::string p; in >> p;) parts.push_back(p);
+  if (parts.empty() || parts.size() > 3) return false;
+  bool neg = false;
+  if (parts[0][0] == '-' || parts[0][0] == '+') {
+    neg = parts[0][0] == '-';
+    parts[0] = parts[0].substr(1);
+    if (parts[0].empty()) return false;
+  }
+  double v[3] = {0, 0, 0};
+  for (std::size_t i = 0; i < parts.size(); ++i) {
+    const char* b = parts[i].data();
+    const char* e = b + parts[i].size();
+    auto r = std::from_chars(b, e, v[i]);
+    if (r.ec != std::errc() || r.ptr != e || !std::isfinite(v[i]) || v[i] < 0) return false;
+    if (i > 0 && v[i] >= 60.0) return false;
+  }
+  if (parts.size() == 1) {
+    // Plain decimal: degrees (both coordinates), as in most tables.
+    deg = neg ? -v[0] : v[0];
+    return true;
+  }
+  double x = v[0] + v[1] / 60.0 + v[2] / 3600.0;
+  if (hours) x *= 15.0;
+  deg = neg ? -x : x;
+  return true;
+}
+
+/// Factor from a column's unit to degrees (angles) or arcsec (errors).
+double angle_unit_factor(const Column& c, const std::string& file, bool to_arcsec) {
+  const std::string u = lower(c.unit);
+  double deg_per_unit;
+  if (u.empty() || u == "deg" || u == "degree" || u == "degrees") deg_per_unit = to_arcsec ? 1.0 / 3600.0 : 1.0;
+  else if (u == "arcsec" || u == "\"") deg_per_unit = 1.0 / 3600.0;
+  else if (u == "arcmin" || u == "'") deg_per_unit = 1.0 / 60.0;
+  else if (u == "mas") deg_per_unit = 1.0 / 3.6e6;
+  else if (u == "rad") deg_per_unit = 180.0 / 3.14159265358979323846;
+  else if (u == "h" || u == "hour" || u == "hourangle") deg_per_unit = 15.0;
+  else throw InputError(file, "column '" + c.name + "': unit '" + c.unit + "' is not an angle unit");
+  // Errors without a unit are taken as arcsec; positions without one as degrees.
+  if (to_arcsec && u.empty()) return 1.0;
+  return to_arcsec ? deg_per_unit * 3600.0 : deg_per_unit;
+}
+
+std::vector<double> angle_values(const Column& c, const std::string& file, bool hours) {
+  std::vector<double> v(c.size());
+  switch (c.type) {
+    case ColumnType::Float64:
+    case ColumnType::Int64: {
+      const double f = angle_unit_factor(c, file, false);
+      for (std::size_t i = 0; i < v.size(); ++i)
+        v[i] = f * (c.type == ColumnType::Float64 ? c.f64[i] : static_cast<double>(c.i64[i]));
+      break;
+    }
+    case ColumnType::Text:
+      for (std::size_t i = 0; i < v.size(); ++i) {
+        const std::string& s = c.text[i];
+        if (s.find_first_not_of(" \t") == std::string::npos) {
+          v[i] = std::nan("");
+          continue;
+        }
+        if (!parse_angle_text(s, hours, v[i]))
+          throw InputError(file, "row " + std::to_string(i + 1) + ", column '" + c.name + "': '" + s.substr(0, 40) +
+                                     "' is not an angle (degrees or sexagesimal)");
+      }
+      break;
+  }
+  return v;
+}
+
+std::vector<double> numeric_values(const Column& c, const std::string& file) {
+  std::vector<double> v(c.size());
+  if (c.type == ColumnType::Text) {
+    for (std::size_t i = 0; i < v.size(); ++i) {
+      const std::string& s = c.text[i];
+      if (s.find_first_not_of(" \t") == std::string::npos) {
+        v[i] = std::nan("");
+        continue;
+      }
+      const char* b = s.data();
+      const char* e = b + s.size();
+      while (b < e && *b == ' ') ++b;
+      while (e > b && e[-1] == ' ') --e;
+      auto r = std::from_chars(b, e, v[i]);
+      if (r.ec != std::errc() || r.ptr != e)
+        throw InputError(file, "row " + std::to_string(i + 1) + ", column '" + c.name + "': '" + s.substr(0, 40) +
+                                   "' is not a number");
+    }
+  } else {
+    for (std::size_t i = 0; i < v.size(); ++i)
+      v[i] = c.type == ColumnType::Float64 ? c.f64[i] : static_cast<double>(c.i64[i]);
+  }
+  return v;
+}
+
+double flux_unit_factor(const Column& c, const std::string& file) {
+  const std::string u = lower(c.unit);
+  if (u.empty() || u == "jy" || u == "jy/beam") return 1.0;
+  if (u == "mjy" || u == "mjy/beam") return 1e-3;
+  if (u == "ujy" || u == "ujy/beam" || u == "microjy") return 1e-6;
+  throw InputError(file, "column '" + c.name + "': unit '" + c.unit + "' is not a flux density unit (Jy, mJy, uJy)");
+}
+
+struct SideOptions {
+  std::string ra, dec, ra_err, dec_err, flux, flux_err, frame;
+  double freq_hz = 0;
+};
+
+struct Catalogue {
+  std::string path;
+  Table table;
+  SkyPositions pos;
+  std::vector<double> flux, flux_err;  // [Jy], empty when none
+  std::string ra_col, dec_col, frame, flux_col;
+  double freq_hz = 0;
+  std::size_t no_position = 0;
+};
+
+Catalogue load_catalogue(const std::string& path, const SideOptions& so, const std::string& side, bool need_errors) {
+  Catalogue cat;
+  cat.path = path;
+  cat.table = read_table(path);
+  const Table& t = cat.table;
+  std::string frame = lower(so.frame);
+  if (frame != "auto" && frame != "icrs" && frame != "galactic")
+    throw UsageError("--match.frame_" + side + " = " + so.frame + " breaks 'auto, icrs or galactic'");
+  const std::vector<std::string> ra_ucd{"pos.eq.ra;meta.main", "pos.eq.ra"};
+  const std::vector<std::string> dec_ucd{"pos.eq.dec;meta.main", "pos.eq.dec"};
+  const std::vector<std::string> ra_names{"ra_deg", "ra", "raj2000", "ra_icrs", "radeg", "ra_j2000", "_raj2000", "alpha"};
+  const std::vector<std::string> dec_names{"dec_deg", "dec", "dej2000", "decj2000", "de_icrs", "dec_icrs", "dedeg", "decdeg", "dec_j2000", "_dej2000", "delta"};
+  const std::vector<std::string> l_ucd{"pos.galactic.lon;meta.main", "pos.galactic.lon"};
+  const std::vector<std::string> b_ucd{"pos.galactic.lat;meta.main", "pos.galactic.lat"};
+  const std::vector<std::string> l_names{"glon", "glon_deg", "l", "gal_lon", "lii"};
+  const std::vector<std::string> b_names{"glat", "glat_deg", "b", "gal_lat", "bii"};
+  const Column* ra = nullptr;
+  const Column* dec = nullptr;
+  auto try_eq = [&] {
+    ra = find_column(t, path, so.ra, "match.ra_" + side, ra_ucd, ra_names);
+    dec = find_column(t, path, so.dec, "match.dec_" + side, dec_ucd, dec_names);
+  };
+  auto try_gal = [&] {
+    ra = find_column(t, path, so.ra, "match.ra_" + side, l_ucd, l_names);
+    dec = find_column(t, path, so.dec, "match.dec_" + side, b_ucd, b_names);
+  };
+  if (frame == "icrs") try_eq();
+  else if (frame == "galactic") try_gal();
+  else {
+    try_eq();
+    frame = "icrs";
+    if (!ra || !dec) {
+      try_gal();
+      frame = "galactic";
+    }
+  }
+  if (!ra || !dec)
+    throw InputError(path, std::string("no ") + (!ra ? "RA (or Galactic longitude)" : "Dec (or Galactic latitude)") +
+                               " column found; name it with --match." + (!ra ? "ra_" : "dec_") + side +
+                               " (looked for UCD pos.eq.ra/pos.eq.dec and names like ra_deg, ra, RAJ2000)");
+  cat.ra_col = ra->name;
+  cat.dec_col = dec->name;
+  cat.frame = frame;
+  const bool hours = frame == "icrs";
+  std::vector<double> lon = angle_values(*ra, path, hours);
+  std::vector<double> lat = angle_values(*dec, path, false);
+  const std::size_t n = t.rows();
+  for (std::size_t i = 0; i < n; ++i) {
+    if (std::isnan(lon[i]) || std::isnan(lat[i])) {
+      ++cat.no_position;
+      continue;
+    }
+    if (!std::isfinite(lon[i]))
+      throw InputError(path, "row " + std::to_string(i + 1) + ", column '" + ra->name + "': longitude is not finite");
+    if (!(lat[i] >= -90.0 && lat[i] <= 90.0))
+      throw InputError(path, "row " + std::to_string(i + 1) + ", column '" + dec->name + "': latitude " +
+                                 std::to_string(lat[i]) + " deg lies outside [-90, 90]");
+  }
+  if (frame == "galactic") {
+    // Galactic -> ICRS with ERFA eraG2icrs (IAU SOFA; Hipparcos frame definition).
+    for (std::size_t i = 0; i < n; ++i) {
+      if (std::isnan(lon[i]) || std::isnan(lat[i])) continue;
+      double rr, dd;
+      eraG2icrs(lon[i] * ERFA_DD2R, lat[i] * ERFA_DD2R, &rr, &dd);
+      lon[i] = rr * ERFA_DR2D;
+      lat[i] = dd * ERFA_DR2D;
+    }
+  }
+  cat.pos.ra_deg = std::move(lon);
+  cat.pos.dec_deg = std::move(lat);
+
+  // Positional errors (arcsec): RA*cos(Dec) and Dec.
+  const Column* re = find_column(t, path, so.ra_err, "match.ra_err_" + side, {"stat.error;pos.eq.ra"},
+                                 {"ra_err_arcsec", "e_ra", "ra_err", "era", "sigma_ra", "e_raj2000"});
+  const Column* de = find_column(t, path, so.dec_err, "match.dec_err_" + side, {"stat.error;pos.eq.dec"},
+                                 {"dec_err_arcsec", "e_dec", "dec_err", "edec", "sigma_dec", "e_dej2000"});
+  if (need_errors) {
+    if (!re || !de)
+      throw InputError(path, std::string("error-aware matching needs positional error columns; none found for ") +
+                                 (!re ? "RA" : "Dec") + " (name it with --match." + (!re ? "ra_err_" : "dec_err_") +
+                                 side + ")");
+    const double fr = angle_unit_factor(*re, path, true), fd = angle_unit_factor(*de, path, true);
+    cat.pos.err_east_arcsec = numeric_values(*re, path);
+    cat.pos.err_north_arcsec = numeric_values(*de, path);
+    for (std::size_t i = 0; i < n; ++i) {
+      cat.pos.err_east_arcsec[i] *= fr;
+      cat.pos.err_north_arcsec[i] *= fd;
+      for (double e : {cat.pos.err_east_arcsec[i], cat.pos.err_north_arcsec[i]})
+        if (e < 0)
+          throw InputError(path, "row " + std::to_string(i + 1) + ": negative positional error");
+    }
+  }
+  // Flux density (optional).
+  const Column* fl = find_column(t, path, so.flux, "match.flux_" + side, {},
+                                 {"s_int_jy", "s_int", "flux_jy", "flux", "int_flux", "s_total", "total_flux"});
+  if (fl) {
+    const double f = flux_unit_factor(*fl, path);
+    cat.flux = numeric_values(*fl, path);
+    for (auto& v : cat.flux) v *= f;
+    cat.flux_col = fl->name;
+    const Column* fe = find_column(t, path, so.flux_err, "match.flux_err_" + side, {},
+                                   {fl->name + "_err", "s_int_err_jy", "s_int_err", "flux_err_jy", "flux_err", "e_flux"});
+    if (fe && fe != fl) {
+      const double fef = flux_unit_factor(*fe, path);
+      cat.flux_err = numeric_values(*fe, path);
+      for (auto& v : cat.flux_err) v *= fef;
+    }
+  }
+  cat.freq_hz = so.freq_hz;
+  if (!(cat.freq_hz > 0))
+    if (const std::string* m = t.get_meta("freq_hz")) {
+      double v = 0;
+      auto r = std::from_chars(m->data(), m->data() + m->size(), v);
+      if (r.ec == std::errc() && v > 0) cat.freq_hz = v;
+    }
+  return cat;
+}
+
+// ---- output tables ----------------------------------------------------------------------
+
+/// Columns of `src` to carry: all when `list` is empty, else the named ones.
+std::vector<const Column*> carried(const Table& src, const std::string& file, const std::string& list) {
+  std::vector<const Column*> out;
+  if (list.empty() || list == "*") {
+    for (const auto& c : src.columns()) out.push_back(&c);
+    return out;
+  }
+  if (list == "none") return out;
+  for (const auto& n : split_list(list)) {
+    const Column* c = src.find(n);
+    if (!c) throw InputError(file, "no column '" + n + "' to carry (--match.columns)");
+    out.push_back(c);
+  }
+  return out;
+}
+
+/// Append the rows `idx` (-1 = empty cell) of column c to `t` as "prefix + name".
+void append_column(Table& t, const Column& c, const std::string& prefix, const std::vector<std::int64_t>& idx) {
+  Column o;
+  o.name = prefix + c.name;
+  o.unit = c.unit;
+  o.ucd = c.ucd;
+  o.description = c.description;
+  o.type = c.type;
+  bool any_missing = std::any_of(idx.begin(), idx.end(), [](std::int64_t i) { return i < 0; });
+  if (c.type == ColumnType::Int64 && any_missing) o.type = ColumnType::Float64;  // room for NaN
+  for (std::int64_t i : idx) {
+    switch (o.type) {
+      case ColumnType::Float64:
+        o.f64.push_back(i < 0 ? std::nan("")
+                              : (c.type == ColumnType::Int64 ? static_cast<double>(c.i64[i]) : c.f64[i]));
+        break;
+      case ColumnType::Int64: o.i64.push_back(c.i64[i]); break;
+      case ColumnType::Text: o.text.push_back(i < 0 ? std::string() : c.text[i]); break;
+    }
+  }
+  if (t.find(o.name)) o.name += "_";  // cannot happen with distinct prefixes; keep names unique anyway
+  t.add(std::move(o));
+}
+
+void set_provenance(Table& t, const std::string& mode, double radius, const ParsedOptions& parsed) {
+  t.set_meta("tool", "skerry match");
+  t.set_meta("tool_version", SKERRY_VERSION);
+  t.set_meta("git_revision", SKERRY_GIT_REVISION);
+  t.set_meta("match_mode", mode);
+  t.set_meta("match_radius_arcsec", std::to_string(radius));
+  for (const auto& [k, v] : parsed.resolved)
+    if (k.rfind("match.", 0) == 0) t.set_meta("config." + k, v);
+}
+
+void write_formats(const Table& t, const std::string& base, const std::vector<std::string>& formats,
+                   RunRecord& rec, nlohmann::ordered_json& outputs) {
+  for (const auto& f : formats) {
+    std::string ext = f == "csv" ? ".csv" : f == "fits" ? ".fits" : ".vot";
+    write_table(t, base + ext);
+    rec.add_output(base + ext);
+    outputs.push_back(fs::path(base + ext).filename().string());
+  }
+}
+
+std::string mode_name(MatchMode m) {
+  switch (m) {
+    case MatchMode::Nearest: return "nearest";
+    case MatchMode::All: return "all";
+    case MatchMode::OneToOne: return "one-to-one";
+    case MatchMode::ErrorAware: return "error";
+  }
+  return "?";
+}
+
+nlohmann::ordered_json num(double v) {
+  return std::isfinite(v) ? nlohmann::ordered_json(v) : nlohmann::ordered_json(nullptr);
+}
+
+int run_match(const std::vector<std::string>& args) {
+  po::options_description d("match options (config-file section [match])");
+  d.add_options()
+      ("catalogues", po::value<std::vector<std::string>>()->multitoken(), "input catalogues (.csv, .fits, .vot): A B, or one (self), or master + several (multi)")
+      ("out", po::value<std::string>()->default_value("outputs/match"), "output folder")
+      ("match.mode", po::value<std::string>()->default_value("nearest"), "nearest | all | one-to-one | error | self | multi")
+      ("match.radius_arcsec", po::value<double>()->default_value(5.0), "match radius [arcsec] (error mode: the largest separation considered)")
+      ("match.completeness", po::value<double>()->default_value(0.997), "error mode: completeness p; match when d < sqrt(-2 ln(1-p))")
+      ("match.systematic_arcsec", po::value<double>()->default_value(0.0), "error mode: systematic error per coordinate added to both catalogues' [arcsec]")
+      ("match.ra_a", po::value<std::string>()->default_value(""), "RA (or Galactic longitude) column of A; empty = from UCDs or common names")
+      ("match.dec_a", po::value<std::string>()->default_value(""), "Dec (or Galactic latitude) column of A")
+      ("match.ra_b", po::value<std::string>()->default_value(""), "RA column of B (and of every further catalogue in multi mode)")
+      ("match.dec_b", po::value<std::string>()->default_value(""), "Dec column of B")
+      ("match.ra_err_a", po::value<std::string>()->default_value(""), "error of RA*cos(Dec) column of A (arcsec unless the unit says otherwise)")
+      ("match.dec_err_a", po::value<std::string>()->default_value(""), "error of Dec column of A")
+      ("match.ra_err_b", po::value<std::string>()->default_value(""), "error of RA*cos(Dec) column of B")
+      ("match.dec_err_b", po::value<std::string>()->default_value(""), "error of Dec column of B")
+      ("match.frame_a", po::value<std::string>()->default_value("auto"), "auto | icrs | galactic (Galactic is converted to ICRS)")
+      ("match.frame_b", po::value<std::string>()->default_value("auto"), "auto | icrs | galactic")
+      ("match.flux_a", po::value<std::string>()->default_value(""), "flux density column of A (Jy, mJy or uJy); empty = common names")
+      ("match.flux_b", po::value<std::string>()->default_value(""), "flux density column of B")
+      ("match.flux_err_a", po::value<std::string>()->default_value(""), "flux density error column of A")
+      ("match.flux_err_b", po::value<std::string>()->default_value(""), "flux density error column of B")
+      ("match.freq_a_hz", po::value<double>()->default_value(0.0), "frequency of A [Hz]; 0 = the table's freq_hz metadata")
+      ("match.freq_b_hz", po::value<double>()->default_value(0.0), "frequency of B [Hz]")
+      ("match.spectral_index", po::value<double>()->default_value(-0.7), "assumed alpha (S ~ nu^alpha) for the flux ratio when the frequencies differ")
+      ("match.columns_a", po::value<std::string>()->default_value("*"), "columns of A to carry (comma list, * = all, none)")
+      ("match.columns_b", po::value<std::string>()->default_value("*"), "columns of B to carry")
+      ("match.prefix_a", po::value<std::string>()->default_value("a_"), "prefix of A's carried columns")
+      ("match.prefix_b", po::value<std::string>()->default_value("b_"), "prefix of B's carried columns")
+      ("match.unmatched", po::value<bool>()->default_value(false), "also write the unmatched rows of A and of B")
+      ("match.formats", po::value<std::string>()->default_value("csv"), "table formats to write: comma list of csv, fits, vot")
+      ("match.chance_shifts", po::value<int>()->default_value(8), "shifted re-matches for the chance-match estimate (0 = none)")
+      ("match.name", po::value<std::string>()->default_value(""), "NAME of the output files; default: A_B from the input file stems");
+  ParsedOptions parsed = parse_options("match", "A B [--out DIR] [options]", d, {{"catalogues", -1}}, args);
+  if (parsed.help) return kExitOk;
+  ThreadLimit threads(parsed.vm["threads"].as<int>());
+  const auto& vm = parsed.vm;
+  auto S = [&](const char* k) { return vm[k].as<std::string>(); };
+  auto D = [&](const char* k) { return vm[k].as<double>(); };
+
+  std::vector<std::string> files;
+  if (vm.count("catalogues")) files = vm["catalogues"].as<std::vector<std::string>>();
+  const std::string mode_s = lower(S("match.mode"));
+  const bool self = mode_s == "self", multi = mode_s == "multi";
+  MatchMode mode = MatchMode::Nearest;
+  if (mode_s == "nearest") mode = MatchMode::Nearest;
+  else if (mode_s == "all") mode = MatchMode::All;
+  else if (mode_s == "one-to-one" || mode_s == "one_to_one") mode = MatchMode::OneToOne;
+  else if (mode_s == "error") mode = MatchMode::ErrorAware;
+  else if (!self && !multi)
+    throw UsageError("--match.mode = " + mode_s + " breaks 'nearest, all, one-to-one, error, self or multi'");
+  if (self && files.size() != 1) throw UsageError("match.mode self takes exactly one catalogue");
+  if (multi && files.size() < 2) throw UsageError("match.mode multi takes a master catalogue and at least one more");
+  if (!self && !multi && files.size() != 2) throw UsageError("match takes two catalogues A B (got " + std::to_string(files.size()) + ")");
+  const double radius = D("match.radius_arcsec");
+  require(radius > 0 && std::isfinite(radius), "match.radius_arcsec", std::to_string(radius), "> 0");
+  const double p = D("match.completeness");
+  require(p > 0 && p < 1, "match.completeness", std::to_string(p), "0 < p < 1");
+  require(D("match.systematic_arcsec") >= 0, "match.systematic_arcsec", std::to_string(D("match.systematic_arcsec")), ">= 0");
+  const int shifts = vm["match.chance_shifts"].as<int>();
+  require(shifts >= 0 && shifts <= 64, "match.chance_shifts", std::to_string(shifts), "0..64");
+  std::vector<std::string> formats = split_list(lower(S("match.formats")));
+  for (const auto& f : formats)
+    if (f != "csv" && f != "fits" && f != "vot")
+      throw UsageError("--match.formats = " + S("match.formats") + " breaks 'comma list of csv, fits, vot'");
+  if (formats.empty()) formats.push_back("csv");
+
+  SideOptions sa{S("match.ra_a"), S("match.dec_a"), S("match.ra_err_a"), S("match.dec_err_a"),
+                 S("match.flux_a"), S("match.flux_err_a"), S("match.frame_a"), D("match.freq_a_hz")};
+  SideOptions sb{S("match.ra_b"), S("match.dec_b"), S("match.ra_err_b"), S("match.dec_err_b"),
+                 S("match.flux_b"), S("match.flux_err_b"), S("match.frame_b"), D("match.freq_b_hz")};
+
+  const std::string out_dir = vm["out"].as<std::string>();
+  std::string name = S("match.name");
+  if (name.empty()) {
+    name = stem_of(files[0]);
+    for (std::size_t i = 1; i < files.size(); ++i) name += "_" + stem_of(files[i]);
+  }
+  if (name.find('/') != std::string::npos) throw UsageError("--match.name = " + name + " breaks 'a file name without /'");
+  const std::string base = (fs::path(out_dir) / name).string();
+
+  RunRecord rec("match");
+  rec.set_configuration(parsed.resolved, parsed.config_file);
+  rec.set_threads(threads.threads());
+  nlohmann::ordered_json js;
+  js["tool"] = "skerry match";
+  js["tool_version"] = SKERRY_VERSION;
+  js["git_revision"] = SKERRY_GIT_REVISION;
+  js["mode"] = self ? "self" : multi ? "multi" : mode_name(mode);
+  js["radius_arcsec"] = radius;
+  nlohmann::ordered_json outputs = nlohmann::ordered_json::array();
+  nlohmann::ordered_json inputs = nlohmann::ordered_json::array();
+
+  std::vector<Catalogue> cats;
+  {
+    StageTimer st(rec, "read");
+    for (std::size_t i = 0; i < files.size(); ++i) {
+      const SideOptions& so = i == 0 ? sa : sb;
+      cats.push_back(load_catalogue(files[i], so, i == 0 ? "a" : "b", mode == MatchMode::ErrorAware && !self && !multi));
+      rec.add_input(i == 0 ? "catalogue_a" : "catalogue_b", files[i]);
+      const Catalogue& c = cats.back();
+      nlohmann::ordered_json ij;
+      ij["file"] = files[i];
+      ij["sha256"] = sha256_file(files[i]);
+      ij["rows"] = c.table.rows();
+      ij["rows_without_position"] = c.no_position;
+      ij["position_columns"] = {c.ra_col, c.dec_col};
+      ij["frame"] = c.frame;
+      if (!c.flux_col.empty()) ij["flux_column"] = c.flux_col;
+      if (c.freq_hz > 0) ij["freq_hz"] = c.freq_hz;
+      inputs.push_back(ij);
+      if (c.no_position)
+        std::cerr << "skerry match: note: " << files[i] << ": " << c.no_position
+                  << " rows without a position are never matched\n";
+    }
+  }
+  js["inputs"] = inputs;
+
+  if (self) {
+    const Catalogue& c = cats[0];
+    SelfMatchResult r;
+    {
+      StageTimer st(rec, "match");
+      r = self_match(c.pos, radius);
+    }
+    Table pairs;
+    pairs.name = "self_matches";
+    std::vector<std::int64_t> ia, ib;
+    for (const auto& q : r.pairs) {
+      ia.push_back(q.a);
+      ib.push_back(q.b);
+    }
+    pairs.add_i64("row_a", "", "meta.id", "0-based row of the first member of the pair", ia);
+    pairs.add_i64("row_b", "", "meta.id", "0-based row of the second member (row_b > row_a)", ib);
+    std::vector<double> sep, pa;
+    std::vector<std::int64_t> nc, rk, gid;
+    for (const auto& q : r.pairs) {
+      sep.push_back(q.sep_arcsec);
+      pa.push_back(q.pa_deg);
+      nc.push_back(q.n_candidates);
+      rk.push_back(q.rank);
+      gid.push_back(r.group[q.a]);
+    }
+    pairs.add_f64("sep_arcsec", "arcsec", "pos.angDistance", "Great-circle separation (Vincenty)", sep);
+    pairs.add_f64("pa_deg", "deg", "pos.posAng", "Position angle of row_b seen from row_a, east of north, [0, 360)", pa);
+    pairs.add_i64("n_candidates", "", "meta.number", "Other rows within the radius of row_a", nc);
+    pairs.add_i64("rank", "", "meta.number", "Rank of row_b among row_a's neighbours (1 = closest)", rk);
+    pairs.add_i64("group_id", "", "meta.id.parent", "Friends-of-friends group (smallest row index in the group)", gid);
+    for (const Column* col : carried(c.table, c.path, S("match.columns_a"))) {
+      append_column(pairs, *col, S("match.prefix_a"), ia);
+      append_column(pairs, *col, S("match.prefix_b"), ib);
+    }
+    set_provenance(pairs, "self", radius, parsed);
+    Table groups;
+    groups.name = "groups";
+    std::vector<std::int64_t> rows(c.table.rows());
+    for (std::size_t i = 0; i < rows.size(); ++i) rows[i] = static_cast<std::int64_t>(i);
+    groups.add_i64("row", "", "meta.id", "0-based row of the input catalogue", rows);
+    groups.add_i64("group_id", "", "meta.id.parent", "Friends-of-friends group: smallest row index among rows linked by separations within the radius", r.group);
+    std::vector<std::int64_t> gs(r.group_size.begin(), r.group_size.end());
+    groups.add_i64("group_size", "", "meta.number", "Rows in the group (1 = no duplicate)", gs);
+    for (const Column* col : carried(c.table, c.path, S("match.columns_a"))) append_column(groups, *col, "", rows);
+    set_provenance(groups, "self", radius, parsed);
+    {
+      StageTimer st(rec, "write");
+      write_formats(pairs, base + ".self_matches", formats, rec, outputs);
+      write_formats(groups, base + ".groups", formats, rec, outputs);
+    }
+    std::size_t ngroups = 0, in_groups = 0;
+    for (std::size_t i = 0; i < r.group.size(); ++i) {
+      if (r.group_size[i] > 1) ++in_groups;
+      if (r.group[i] == static_cast<std::int64_t>(i) && r.group_size[i] > 1) ++ngroups;
+    }
+    js["counts"] = {{"rows", c.table.rows()}, {"rows_without_position", r.invalid}, {"pairs", r.pairs.size()},
+                    {"groups_with_several_rows", ngroups}, {"rows_in_such_groups", in_groups}};
+    js["outputs"] = outputs;
+    write_text_atomic(base + ".match_summary.json", js.dump(2) + "\n");
+    std::cout << "skerry match: " << c.table.rows() << " rows, " << r.pairs.size() << " pairs within " << radius
+              << " arcsec, " << ngroups << " groups of duplicates -> " << base << ".groups." << formats[0] << "\n";
+    return kExitOk;
+  }
+
+  if (multi) {
+    const Catalogue& m = cats[0];
+    std::vector<SkyPositions> others;
+    std::vector<FluxColumn> fluxes;
+    bool any_flux = false;
+    for (std::size_t i = 1; i < cats.size(); ++i) {
+      others.push_back(cats[i].pos);
+      fluxes.push_back({cats[i].flux, cats[i].flux_err});
+      any_flux |= !cats[i].flux.empty();
+    }
+    if (!any_flux) fluxes.clear();
+    MultiMatchResult r;
+    {
+      StageTimer st(rec, "match");
+      MultiMatchOptions mo;
+      mo.radius_arcsec = radius;
+      r = match_to_master(m.pos, others, fluxes, mo);
+    }
+    Table t;
+    t.name = "multi";
+    std::vector<std::int64_t> rows(m.table.rows());
+    for (std::size_t i = 0; i < rows.size(); ++i) rows[i] = static_cast<std::int64_t>(i);
+    t.add_i64("row", "", "meta.id", "0-based row of the master catalogue", rows);
+    for (const Column* col : carried(m.table, m.path, S("match.columns_a"))) append_column(t, *col, S("match.prefix_a"), rows);
+    std::vector<std::int64_t> ncat(r.n_catalogues.begin(), r.n_catalogues.end());
+    t.add_i64("n_catalogues", "", "meta.number", "Number of the other catalogues with a match within the radius", ncat);
+    for (std::size_t c = 0; c < others.size(); ++c) {
+      const std::string pre = "c" + std::to_string(c + 1) + "_";
+      std::vector<double> idx(r.match_index[c].size());
+      for (std::size_t i = 0; i < idx.size(); ++i)
+        idx[i] = r.match_index[c][i] < 0 ? std::nan("") : static_cast<double>(r.match_index[c][i]);
+      t.add_f64(pre + "row", "", "meta.id.cross", "0-based row of the match in " + fs::path(files[c + 1]).filename().string() + " (empty: none)", idx);
+      t.add_f64(pre + "sep_arcsec", "arcsec", "pos.angDistance", "Separation of that match", r.sep_arcsec[c]);
+      if (!cats[c + 1].flux.empty()) {
+        std::vector<double> f(idx.size(), std::nan(""));
+        for (std::size_t i = 0; i < idx.size(); ++i)
+          if (r.match_index[c][i] >= 0) f[i] = cats[c + 1].flux[r.match_index[c][i]];
+        t.add_f64(pre + "flux_jy", "Jy", "phot.flux.density", "Flux density of that match", f);
+      }
+    }
+    if (!fluxes.empty()) {
+      std::vector<std::int64_t> nf(r.n_flux.begin(), r.n_flux.end()), dof(r.chi2_dof.begin(), r.chi2_dof.end());
+      t.add_i64("n_flux", "", "meta.number", "Matches with a flux density (epochs used)", nf);
+      t.add_f64("mean_flux_jy", "Jy", "phot.flux.density;stat.mean", "Unweighted mean flux density over the matches", r.mean_flux);
+      t.add_f64("modulation_index", "", "src.var.index", "sigma_S / mean S (sample standard deviation)", r.modulation_index);
+      t.add_f64("weighted_mean_flux_jy", "Jy", "phot.flux.density;stat.mean", "Inverse-variance weighted mean flux density", r.weighted_mean_flux);
+      t.add_f64("chi2_const", "", "stat.fit.chi2", "Chi-square of the flux densities against a constant (the weighted mean)", r.chi2_const);
+      t.add_i64("chi2_dof", "", "stat.fit.dof", "Degrees of freedom of chi2_const (epochs with errors - 1)", dof);
+    }
+    set_provenance(t, "multi", radius, parsed);
+    {
+      StageTimer st(rec, "write");
+      write_formats(t, base + ".multi", formats, rec, outputs);
+    }
+    std::vector<std::size_t> hist(others.size() + 1, 0);
+    for (auto v : r.n_catalogues) ++hist[static_cast<std::size_t>(v)];
+    js["counts"] = {{"master_rows", m.table.rows()}, {"catalogues", others.size()}, {"rows_by_n_catalogues", hist}};
+    js["outputs"] = outputs;
+    write_text_atomic(base + ".match_summary.json", js.dump(2) + "\n");
+    std::cout << "skerry match: " << m.table.rows() << " master rows matched to " << others.size()
+              << " catalogues -> " << base << ".multi." << formats[0] << "\n";
+    return kExitOk;
+  }
+
+  // ---- two catalogues -------------------------------------------------------------------
+  const Catalogue& A = cats[0];
+  const Catalogue& B = cats[1];
+  MatchOptions mo;
+  mo.mode = mode;
+  mo.radius_arcsec = radius;
+  mo.completeness = p;
+  mo.systematic_arcsec = D("match.systematic_arcsec");
+  MatchResult r;
+  {
+    StageTimer st(rec, "match");
+    r = match_catalogues(A.pos, B.pos, mo);
+  }
+  Table t;
+  t.name = "matches";
+  std::vector<std::int64_t> ia, ib;
+  std::vector<double> sep, pa, dn;
+  std::vector<std::int64_t> nc, rk;
+  for (const auto& q : r.pairs) {
+    ia.push_back(q.a);
+    ib.push_back(q.b);
+    sep.push_back(q.sep_arcsec);
+    pa.push_back(q.pa_deg);
+    nc.push_back(q.n_candidates);
+    rk.push_back(q.rank);
+    dn.push_back(q.norm_sep);
+  }
+  t.add_i64("row_a", "", "meta.id", "0-based row of A", ia);
+  t.add_i64("row_b", "", "meta.id.cross", "0-based row of B", ib);
+  t.add_f64("sep_arcsec", "arcsec", "pos.angDistance", "Great-circle separation of B from A (Vincenty)", sep);
+  t.add_f64("pa_deg", "deg", "pos.posAng", "Position angle of B seen from A, east of north, [0, 360)", pa);
+  t.add_i64("n_candidates", "", "meta.number",
+            mode == MatchMode::ErrorAware ? "Rows of B within the radius with d < k" : "Rows of B within the radius of this row of A", nc);
+  t.add_i64("rank", "", "meta.number", "Rank of this B among the candidates (1 = closest)", rk);
+  if (mode == MatchMode::ErrorAware)
+    t.add_f64("norm_sep", "", "stat.value", "Normalised separation d = sqrt(D^T S^-1 D)", dn);
+  for (const Column* c : carried(A.table, A.path, S("match.columns_a"))) append_column(t, *c, S("match.prefix_a"), ia);
+  for (const Column* c : carried(B.table, B.path, S("match.columns_b"))) append_column(t, *c, S("match.prefix_b"), ib);
+  set_provenance(t, mode_name(mode), radius, parsed);
+  if (mode == MatchMode::ErrorAware) t.set_meta("match_k", std::to_string(r.k_threshold));
+
+  std::vector<char> used_a(A.table.rows(), 0), used_b(B.table.rows(), 0);
+  for (const auto& q : r.pairs) used_a[q.a] = used_b[q.b] = 1;
+  const std::size_t matched_a = static_cast<std::size_t>(std::count(used_a.begin(), used_a.end(), 1));
+  const std::size_t matched_b = static_cast<std::size_t>(std::count(used_b.begin(), used_b.end(), 1));
+  {
+    StageTimer st(rec, "write");
+    write_formats(t, base + ".matches", formats, rec, outputs);
+    if (vm["match.unmatched"].as<bool>()) {
+      for (int side = 0; side < 2; ++side) {
+        const Catalogue& C = side == 0 ? A : B;
+        const auto& used = side == 0 ? used_a : used_b;
+        Table u;
+        u.name = side == 0 ? "unmatched_a" : "unmatched_b";
+        std::vector<std::int64_t> rows;
+        for (std::size_t i = 0; i < used.size(); ++i)
+          if (!used[i]) rows.push_back(static_cast<std::int64_t>(i));
+        u.add_i64("row", "", "meta.id", "0-based row of the input catalogue", rows);
+        for (const auto& c : C.table.columns()) append_column(u, c, "", rows);
+        set_provenance(u, mode_name(mode), radius, parsed);
+        write_formats(u, base + (side == 0 ? ".unmatched_a" : ".unmatched_b"), formats, rec, outputs);
+      }
+    }
+  }
+
+  // Summary.
+  nlohmann::ordered_json counts;
+  counts["rows_a"] = A.table.rows();
+  counts["rows_b"] = B.table.rows();
+  counts["rows_a_without_position"] = r.a_invalid;
+  counts["rows_b_without_position"] = r.b_invalid;
+  counts["pairs"] = r.pairs.size();
+  counts["matched_a"] = matched_a;
+  counts["matched_b"] = matched_b;
+  counts["unmatched_a"] = A.table.rows() - matched_a;
+  counts["unmatched_b"] = B.table.rows() - matched_b;
+  js["counts"] = counts;
+  if (mode == MatchMode::ErrorAware) {
+    js["error_mode"] = {{"completeness", p}, {"k", r.k_threshold}, {"systematic_arcsec", mo.systematic_arcsec}};
+  }
+  {
+    // Offsets from the best pair of each A row (rank 1).
+    std::vector<MatchPair> best;
+    for (const auto& q : r.pairs)
+      if (q.rank == 1 || mode == MatchMode::OneToOne) best.push_back(q);
+    OffsetSummary os = offset_summary(A.pos, B.pos, best);
+    js["offset_b_minus_a"] = {{"n", os.n},
+                              {"median_ra_cosdec_arcsec", num(os.median_east_arcsec)},
+                              {"median_ra_cosdec_err_arcsec", num(os.median_east_err_arcsec)},
+                              {"median_dec_arcsec", num(os.median_north_arcsec)},
+                              {"median_dec_err_arcsec", num(os.median_north_err_arcsec)},
+                              {"method", "median of tangent-plane offsets at A; error 1.2533 x 1.4826 MAD / sqrt(n)"}};
+    if (shifts > 0 && A.table.rows() > 0 && B.table.rows() > 0) {
+      StageTimer st(rec, "chance");
+      std::vector<double> radii;
+      for (int s = 0; s < shifts; ++s) radii.push_back(6.0 + s);
+      ChanceEstimate ce = chance_matches(A.pos, B.pos, radius, radii);
+      js["chance_matches"] = {{"expected", ce.expected_chance},
+                              {"error", ce.expected_chance_err},
+                              {"per_shift", ce.per_shift},
+                              {"shift_radii", radii},
+                              {"method", "B shifted along great circles by the listed multiples of the radius at position angles 360 i/n; nearest-mode re-match; mean of the matched A rows"}};
+    }
+    if (!A.flux.empty() && !B.flux.empty()) {
+      const double alpha = D("match.spectral_index");
+      FluxRatioSummary fr = flux_ratio_summary(A.flux, B.flux, best, A.freq_hz, B.freq_hz, alpha);
+      const bool corrected = A.freq_hz > 0 && B.freq_hz > 0 && A.freq_hz != B.freq_hz;
+      js["flux_ratio_a_over_b"] = {{"n", fr.n},
+                                   {"median", num(fr.median_ratio)},
+                                   {"robust_scatter", num(fr.robust_scatter)},
+                                   {"columns", {A.flux_col, B.flux_col}},
+                                   {"spectral_index_assumed", corrected ? num(alpha) : nlohmann::ordered_json(nullptr)},
+                                   {"freq_a_hz", num(A.freq_hz)},
+                                   {"freq_b_hz", num(B.freq_hz)},
+                                   {"method", "median of S_A / (S_B (nu_A/nu_B)^alpha); scatter 1.4826 MAD"}};
+    }
+  }
+  js["outputs"] = outputs;
+  write_text_atomic(base + ".match_summary.json", js.dump(2) + "\n");
+  std::cout << "skerry match: " << A.table.rows() << " x " << B.table.rows() << " rows, " << r.pairs.size()
+            << " pairs (" << mode_name(mode) << ", " << radius << " arcsec) -> " << base << ".matches."
+            << formats[0] << "\n";
+  return kExitOk;
+}
+
+const CommandRegistrar reg{"match", "cross-match catalogues by sky separation", &run_match};
+
+}  // namespace
+
+}  // namespace skerry
