@@ -312,6 +312,14 @@ TEST(FitIsland, BadInputIsFlagged) {
   EXPECT_EQ(f.components[0].status, skerry::ComponentStatus::kMoments);
   EXPECT_TRUE(f.components[0].fit_flags & skerry::kFitMomentsFallback);
   EXPECT_NEAR(f.components[0].amplitude, 1e-3, 1e-9);
+  // An island of negative values: the only fit puts the amplitude on its bound 0,
+  // which is rejected; the moment-based measurement is reported, flagged.
+  c.mask.setConstant(skerry::kCutoutIsland);
+  for (int y = 0; y < 10; ++y)
+    for (int x = 0; x < 10; ++x) c.data(y, x) = -1e-3f * (1.0f + 0.1f * static_cast<float>((x * 7 + y * 3) % 5));
+  f = skerry::fit_island(c, {});
+  ASSERT_EQ(f.components.size(), 1u);
+  EXPECT_EQ(f.components[0].status, skerry::ComponentStatus::kMoments);
 }
 
 // Derivation check behind the sandwich covariance (CONVENTIONS "Noise"): white

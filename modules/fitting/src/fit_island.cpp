@@ -248,6 +248,7 @@ class IslandFitter {
   Region reg_;
   std::vector<int> island_px_;
   bool touches_excluded_ = false;
+  double rms_floor_ = 0.0;  // smallest rms of the fit region [Jy/beam]
   Shape beam_;
   double beam_area_pix_ = 0.0;
   double bx0_ = 0, bx1_ = 0, by0_ = 0, by1_ = 0;  // island bounding box (image pixels)
@@ -350,6 +351,8 @@ bool IslandFitter::prepare() {
       reg_.d.push_back(isl_.data(cy, cx));
       reg_.w.push_back(1.0 / static_cast<double>(isl_.rms(cy, cx)));
     }
+  rms_floor_ = INFINITY;
+  for (double w : reg_.w) rms_floor_ = std::min(rms_floor_, 1.0 / w);
   bx0_ = bx0 + isl_.x_origin - 0.5;
   bx1_ = bx1 + isl_.x_origin + 0.5;
   by0_ = by0 + isl_.y_origin - 0.5;
@@ -401,7 +404,7 @@ TrialFit IslandFitter::fit(const std::vector<Peak>& peaks, int k, bool fixed, bo
   const double smax = std::max(bx1_ - bx0_, by1_ - by0_) + 2.0 * beam_.sa;
   for (int c = 0; c < k; ++c) {
     const Peak& pk = peaks[c];
-    double A = std::max(pk.value, 1e-30), x = pk.cx + isl_.x_origin, y = pk.cy + isl_.y_origin;
+    double A = std::max(pk.value, rms_floor_), x = pk.cx + isl_.x_origin, y = pk.cy + isl_.y_origin;
     Shape sh = beam_;
     if (moment_start && k == 1) {
       x = std::clamp(mx_, bx0_, bx1_);
@@ -453,10 +456,12 @@ TrialFit IslandFitter::fit(const std::vector<Peak>& peaks, int k, bool fixed, bo
   tf.lm = lm.solve(f, p0, m);
   const LmStatus st = tf.lm.status;
   tf.usable = lm_converged(st) || st == LmStatus::kMaxIterations || st == LmStatus::kDampingOverflow;
-  if (tf.usable && k > 1) {
-    // A component that died on the amplitude bound does not justify its parameters.
+  if (tf.usable) {
+    // A component that died on the amplitude bound is rejected: with k > 1 the
+    // fit with fewer components is used, with k = 1 the island's moments.
+    // "Died" = below 1e-6 of the smallest rms of the region (numerically zero).
     for (int c = 0; c < k; ++c)
-      if (!(tf.lm.params(npc * c) > 0.0)) tf.usable = false;
+      if (!(tf.lm.params(npc * c) > 1e-6 * rms_floor_)) tf.usable = false;
   }
   const double neff = std::max(static_cast<double>(m) / beam_area_pix_, 1.0);
   tf.bic = tf.lm.chi2 / std::max(beam_area_pix_, 1.0) + n * std::log(std::max(neff, 1.0 + 1e-9));
