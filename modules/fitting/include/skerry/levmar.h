@@ -8,7 +8,8 @@
 ///
 /// Method (Levenberg 1944, Q. Appl. Math. 2, 164; Marquardt 1963, J. SIAM 11, 431;
 /// the damping scaled by diag(J^T J) as in More 1978, Lecture Notes in Math. 630):
-///   (J^T J + lambda D) delta = -J^T r,   D = diag(J^T J) (floored),
+///   (J^T J + lambda D) delta = -J^T r,   D = running maximum over the iterations
+///   of diag(J^T J) (floored at 1e-15 of its largest entry),
 /// the step is accepted when chi2 decreases, then lambda shrinks; otherwise
 /// lambda grows and the step is retried.
 ///
