@@ -91,19 +91,29 @@ inline double quantile_sorted(const float* v, std::int64_t n, double p) {
   return v[i] + (h - static_cast<double>(i)) * (static_cast<double>(v[i + 1]) - v[i]);
 }
 
-// Sample standard deviation (n - 1) of v[a..b), two passes (stable for any offset).
-inline double stddev_sorted(const float* v, std::int64_t a, std::int64_t b) {
+// Sample standard deviation (n - 1) of v[a..b) in one pass over values shifted
+// by `shift` (the current median, close to the mean, so sum_sq - sum^2 / n has
+// no cancellation); four partial sums in a fixed order (deterministic).
+inline double stddev_sorted(const float* v, std::int64_t a, std::int64_t b, double shift) {
   const std::int64_t n = b - a;
   if (n < 2) return 0.0;
-  double s = 0.0;
-  for (std::int64_t i = a; i < b; ++i) s += v[i];
-  const double mean = s / static_cast<double>(n);
-  double ss = 0.0;
-  for (std::int64_t i = a; i < b; ++i) {
-    const double d = v[i] - mean;
-    ss += d * d;
+  double s[4] = {0, 0, 0, 0}, q[4] = {0, 0, 0, 0};
+  std::int64_t i = a;
+  for (; i + 4 <= b; i += 4)
+    for (int j = 0; j < 4; ++j) {
+      const double d = v[i + j] - shift;
+      s[j] += d;
+      q[j] += d * d;
+    }
+  for (int j = 0; i < b; ++i, ++j) {
+    const double d = v[i] - shift;
+    s[j] += d;
+    q[j] += d * d;
   }
-  return std::sqrt(ss / static_cast<double>(n - 1));
+  const double sum = (s[0] + s[1]) + (s[2] + s[3]);
+  const double sq = (q[0] + q[1]) + (q[2] + q[3]);
+  const double var = (sq - sum * sum / static_cast<double>(n)) / static_cast<double>(n - 1);
+  return var > 0.0 ? std::sqrt(var) : 0.0;
 }
 
 }  // namespace
@@ -121,7 +131,7 @@ ClipResult clip_sorted(const float* v, std::int64_t n, double k, int max_iterati
   // the IQR is 0 (mostly identical values), the plain standard deviation.
   double m = median_sorted(v, 0, n);
   double s = (quantile_sorted(v, n, 0.75) - quantile_sorted(v, n, 0.25)) / 1.3489795003921634;
-  if (!(s > 0.0)) s = stddev_sorted(v, 0, n);
+  if (!(s > 0.0)) s = stddev_sorted(v, 0, n, m);
   std::int64_t a = 0, b = n;
   bool first = true;
   for (int it = 0; it < max_iterations; ++it) {
@@ -142,7 +152,7 @@ ClipResult clip_sorted(const float* v, std::int64_t n, double k, int max_iterati
     a = na;
     b = nb;
     m = median_sorted(v, a, b);
-    s = stddev_sorted(v, a, b);
+    s = stddev_sorted(v, a, b, m);
     if (s == 0.0) {  // constant kept values: nothing left to clip
       r.converged = true;
       break;

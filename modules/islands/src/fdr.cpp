@@ -91,7 +91,7 @@ double fdr_threshold(const ImageF& image, const NoiseMaps& maps, double alpha, b
       b.resize(w);
       for (int s = r.begin(); s < r.end(); ++s)
         for (int y = s * kStrip; y < std::min(h, (s + 1) * kStrip); ++y) {
-          detail::snr_row(image, maps, y, b.bg.data(), b.rms.data(), b.diff.data(), b.snr.data());
+          detail::snr_row(image, maps, y, b.bg.data(), b.rms.data(), b.snr.data());
           f(s, b, y);
         }
     });

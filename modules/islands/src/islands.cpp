@@ -57,16 +57,14 @@ IslandResult find_islands(const ImageF& image, const NoiseMaps& maps, const Isla
   auto scan = [&](int y, std::vector<detail::Run>& out) {
     detail::RowBuffers& b = buffers.local();
     b.resize(w);
-    detail::snr_row(image, maps, y, b.bg.data(), b.rms.data(), b.diff.data(), b.snr.data());
+    detail::snr_row(image, maps, y, b.bg.data(), b.rms.data(), b.snr.data());
     const float* s = b.snr.data();
-    const float* d = b.diff.data();
+    const float* bgr = b.bg.data();
+    const float* img = &image(y, 0);
     int x = 0;
-    while (x < w) {
-      // Most pixels are below the growth threshold (NaN compares false).
-      if (!(s[x] >= grow_f)) {
-        ++x;
-        continue;
-      }
+    for (;;) {
+      x = detail::next_at_or_above(s, x, w, grow_f);
+      if (x >= w) break;
       detail::Run r;
       r.y = y;
       r.x0 = x;
@@ -77,7 +75,7 @@ IslandResult find_islands(const ImageF& image, const NoiseMaps& maps, const Isla
           r.peak_snr = s[x];
           r.peak_x = x;
         }
-        r.sum += d[x];
+        r.sum += img[x] - bgr[x];
         ++x;
       }
       r.x1 = x - 1;
