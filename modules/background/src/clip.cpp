@@ -42,11 +42,12 @@ void sort_floats(float* v, std::size_t n, std::vector<std::uint32_t>& scratch) {
   scratch.resize(2 * n);
   std::uint32_t* a = scratch.data();
   std::uint32_t* b = a + n;
-  // One read pass: keys and all three histograms.
+  // One read pass for all three histograms; then three stable scatter passes
+  // (v -> a, a -> b, b -> v), computing keys on the way in and values on the
+  // way out, so no separate conversion passes.
   std::uint32_t hist[3][kBuckets] = {};
   for (std::size_t i = 0; i < n; ++i) {
     const std::uint32_t k = float_key(v[i]);
-    a[i] = k;
     ++hist[0][k & kMask];
     ++hist[1][(k >> kBits) & kMask];
     ++hist[2][k >> (2 * kBits)];
@@ -59,16 +60,18 @@ void sort_floats(float* v, std::size_t n, std::vector<std::uint32_t>& scratch) {
       sum += c;
     }
   }
-  for (int pass = 0; pass < 3; ++pass) {
-    const int shift = pass * kBits;
-    std::uint32_t* h = hist[pass];
-    for (std::size_t i = 0; i < n; ++i) {
-      const std::uint32_t k = a[i];
-      b[h[(k >> shift) & kMask]++] = k;
-    }
-    std::swap(a, b);
+  for (std::size_t i = 0; i < n; ++i) {
+    const std::uint32_t k = float_key(v[i]);
+    a[hist[0][k & kMask]++] = k;
   }
-  for (std::size_t i = 0; i < n; ++i) v[i] = key_float(a[i]);
+  for (std::size_t i = 0; i < n; ++i) {
+    const std::uint32_t k = a[i];
+    b[hist[1][(k >> kBits) & kMask]++] = k;
+  }
+  for (std::size_t i = 0; i < n; ++i) {
+    const std::uint32_t k = b[i];
+    v[hist[2][k >> (2 * kBits)]++] = key_float(k);
+  }
 }
 
 namespace {
