@@ -373,8 +373,8 @@ SkyImage read_sky_image(const std::string& path, const ImageReadOptions& opt) {
   if (scale) {
     out.bunit_scale = *scale;
   } else if (!opt.accept_any_bunit) {
-    if (!bunit)
-      throw InputError(path, "has no BUNIT keyword (expected Jy/beam; an override accepts any unit)");
+    if (!bunit || bunit->empty())
+      throw InputError(path, "has no BUNIT (expected Jy/beam; an override accepts any unit)");
     throw InputError(path, "BUNIT '" + *bunit +
                                "' is not Jy/beam (accepted: Jy/beam, mJy/beam, uJy/beam; an "
                                "override accepts any unit)");

@@ -122,69 +122,87 @@ class WcslibSky final : public PixelSky {
   void pix_to_sky_n(std::size_t n, const double* x, const double* y, double* ra,
                     double* dec) const {
     Lease lease(*this);
-    wcsprm* w = lease.get();
-    constexpr std::size_t kChunk = 2048;
-    std::vector<double> pix(2 * kChunk), img(2 * kChunk), phi(kChunk), theta(kChunk),
-        world(2 * kChunk);
-    std::vector<int> stat(kChunk);
-    for (std::size_t s = 0; s < n; s += kChunk) {
-      const std::size_t m = std::min(kChunk, n - s);
-      for (std::size_t i = 0; i < m; ++i) {
-        // The one place where 0-based pixels become FITS 1-based (Paper I: pixel
-        // coordinate 1.0 is the centre of the first pixel).
-        pix[2 * i] = x[s + i] + 1.0;
-        pix[2 * i + 1] = y[s + i] + 1.0;
-      }
-      const int status = wcsp2s(w, static_cast<int>(m), 2, pix.data(), img.data(), phi.data(),
-                                theta.data(), world.data(), stat.data());
-      for (std::size_t i = 0; i < m; ++i) {
-        const bool ok = (status == 0 || (status == 8 && stat[i] == 0)) &&
-                        std::isfinite(pix[2 * i]) && std::isfinite(pix[2 * i + 1]);
-        if (!ok || !std::isfinite(world[2 * i + lng_]) || !std::isfinite(world[2 * i + lat_])) {
-          ra[s + i] = dec[s + i] = std::numeric_limits<double>::quiet_NaN();
-          continue;
-        }
-        native_to_icrs(world[2 * i + lng_], world[2 * i + lat_], ra[s + i], dec[s + i]);
-      }
+    if (n <= kSmall) {
+      Scratch<kSmall> s;
+      p2s_chunk(lease.get(), n, x, y, ra, dec, s);
+      return;
     }
+    auto s = std::make_unique<Scratch<kChunk>>();
+    for (std::size_t i = 0; i < n; i += kChunk)
+      p2s_chunk(lease.get(), std::min(kChunk, n - i), x + i, y + i, ra + i, dec + i, *s);
   }
 
   /// ICRS -> 0-based pixels; NaN where outside the projection.
   void sky_to_pix_n(std::size_t n, const double* ra, const double* dec, double* x,
                     double* y) const {
     Lease lease(*this);
-    wcsprm* w = lease.get();
-    constexpr std::size_t kChunk = 2048;
-    std::vector<double> pix(2 * kChunk), img(2 * kChunk), phi(kChunk), theta(kChunk),
-        world(2 * kChunk);
-    std::vector<int> stat(kChunk);
-    std::vector<char> bad(kChunk);
-    for (std::size_t s = 0; s < n; s += kChunk) {
-      const std::size_t m = std::min(kChunk, n - s);
-      for (std::size_t i = 0; i < m; ++i) {
-        bad[i] = !(std::isfinite(ra[s + i]) && std::isfinite(dec[s + i]) &&
-                   std::abs(dec[s + i]) <= 90.0);
-        double lon = 0.0, lat = 0.0;
-        if (!bad[i]) icrs_to_native(ra[s + i], dec[s + i], lon, lat);
-        world[2 * i + lng_] = lon;
-        world[2 * i + lat_] = lat;
-      }
-      const int status = wcss2p(w, static_cast<int>(m), 2, world.data(), phi.data(),
-                                theta.data(), img.data(), pix.data(), stat.data());
-      for (std::size_t i = 0; i < m; ++i) {
-        const bool ok = !bad[i] && (status == 0 || (status == 9 && stat[i] == 0)) &&
-                        std::isfinite(pix[2 * i]) && std::isfinite(pix[2 * i + 1]);
-        if (!ok) {
-          x[s + i] = y[s + i] = std::numeric_limits<double>::quiet_NaN();
-          continue;
-        }
-        x[s + i] = pix[2 * i] - 1.0;  // FITS 1-based -> 0-based
-        y[s + i] = pix[2 * i + 1] - 1.0;
-      }
+    if (n <= kSmall) {
+      Scratch<kSmall> s;
+      s2p_chunk(lease.get(), n, ra, dec, x, y, s);
+      return;
     }
+    auto s = std::make_unique<Scratch<kChunk>>();
+    for (std::size_t i = 0; i < n; i += kChunk)
+      s2p_chunk(lease.get(), std::min(kChunk, n - i), ra + i, dec + i, x + i, y + i, *s);
   }
 
  private:
+  static constexpr std::size_t kSmall = 8;
+  static constexpr std::size_t kChunk = 2048;
+  template <std::size_t N>
+  struct Scratch {
+    double pix[2 * N], img[2 * N], phi[N], theta[N], world[2 * N];
+    int stat[N];
+    bool bad[N];
+  };
+
+  template <std::size_t N>
+  void p2s_chunk(wcsprm* w, std::size_t m, const double* x, const double* y, double* ra,
+                 double* dec, Scratch<N>& s) const {
+    for (std::size_t i = 0; i < m; ++i) {
+      // The one place where 0-based pixels become FITS 1-based (Paper I: pixel
+      // coordinate 1.0 is the centre of the first pixel).
+      s.bad[i] = !(std::isfinite(x[i]) && std::isfinite(y[i]));
+      s.pix[2 * i] = s.bad[i] ? 1.0 : x[i] + 1.0;
+      s.pix[2 * i + 1] = s.bad[i] ? 1.0 : y[i] + 1.0;
+    }
+    const int status = wcsp2s(w, static_cast<int>(m), 2, s.pix, s.img, s.phi, s.theta, s.world, s.stat);
+    for (std::size_t i = 0; i < m; ++i) {
+      // WCSERR_BAD_PIX (8): some pixels invalid, flagged in stat[].
+      const bool ok = !s.bad[i] && (status == 0 || (status == 8 && s.stat[i] == 0)) &&
+                      std::isfinite(s.world[2 * i + lng_]) && std::isfinite(s.world[2 * i + lat_]);
+      if (!ok) {
+        ra[i] = dec[i] = std::numeric_limits<double>::quiet_NaN();
+        continue;
+      }
+      native_to_icrs(s.world[2 * i + lng_], s.world[2 * i + lat_], ra[i], dec[i]);
+    }
+  }
+
+  template <std::size_t N>
+  void s2p_chunk(wcsprm* w, std::size_t m, const double* ra, const double* dec, double* x,
+                 double* y, Scratch<N>& s) const {
+    for (std::size_t i = 0; i < m; ++i) {
+      s.bad[i] = !(std::isfinite(ra[i]) && std::isfinite(dec[i]) && std::abs(dec[i]) <= 90.0);
+      double lon = 0.0, lat = 0.0;
+      if (!s.bad[i]) icrs_to_native(ra[i], dec[i], lon, lat);
+      s.world[2 * i + lng_] = lon;
+      s.world[2 * i + lat_] = lat;
+    }
+    const int status = wcss2p(w, static_cast<int>(m), 2, s.world, s.phi, s.theta, s.img, s.pix, s.stat);
+    for (std::size_t i = 0; i < m; ++i) {
+      // WCSERR_BAD_WORLD (9): some positions invalid, flagged in stat[].
+      const bool ok = !s.bad[i] && (status == 0 || (status == 9 && s.stat[i] == 0)) &&
+                      std::isfinite(s.pix[2 * i]) && std::isfinite(s.pix[2 * i + 1]);
+      if (!ok) {
+        x[i] = y[i] = std::numeric_limits<double>::quiet_NaN();
+        continue;
+      }
+      x[i] = s.pix[2 * i] - 1.0;  // FITS 1-based -> 0-based
+      y[i] = s.pix[2 * i + 1] - 1.0;
+    }
+  }
+
   // WCSLIB's wcsp2s/wcss2p write scratch state into the wcsprm (and may call
   // wcsset), so each call leases a private copy from a pool; copies are made on
   // demand (one per concurrently converting thread) and reused.
@@ -320,6 +338,10 @@ std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
     // WCSHDR_all: accept the common non-standard forms too (CROTAn, EPOCH,
     // RADECSYS, VSOURCE, ...); ctrl = 0: rejected cards are not reported.
     int status = wcspih(text.data(), nkeyrec, WCSHDR_all, 0, &nreject, &nwcs, &all);
+    if (status == 0 && (nwcs < 1 || all == nullptr)) {
+      if (all) wcsvfree(&nwcs, &all);
+      throw std::invalid_argument("no celestial WCS (no WCS keywords in the header)");
+    }
     if (status != 0 || nwcs < 1 || all == nullptr) {
       if (all) wcsvfree(&nwcs, &all);
       throw std::invalid_argument(std::string("WCSLIB could not parse the header") +
@@ -542,6 +564,10 @@ std::string header_for_grid(const GridSpec& g) {
     h += fits_card("PC1_2", fits_real(-ratio * std::sin(r)));
     h += fits_card("PC2_1", fits_real(std::sin(r) / ratio));
     h += fits_card("PC2_2", fits_real(std::cos(r)));
+  }
+  for (const auto& [m, v] : g.pv2) {
+    if (m < 0 || m > 99) throw std::invalid_argument("PV2_m index out of 0..99");
+    h += fits_card("PV2_" + std::to_string(m), fits_real(v));
   }
   h += fits_card("CUNIT1", fits_string("deg"));
   h += fits_card("CUNIT2", fits_string("deg"));

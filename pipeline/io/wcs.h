@@ -14,6 +14,8 @@
 #include <cstddef>
 #include <memory>
 #include <string>
+#include <utility>
+#include <vector>
 
 #include "skerry/image.h"
 #include "skerry/sky.h"
@@ -47,6 +49,9 @@ struct GridSpec {
   double crpix1 = 0.0, crpix2 = 0.0;          ///< reference pixel, FITS 1-based
   double cdelt1_deg = 0.0, cdelt2_deg = 0.0;  ///< pixel steps (cdelt1 < 0: east left)
   double rotation_deg = 0.0;                  ///< PC rotation (CROTA2 sense)
+  /// Projection parameters PV2_m as (m, value), e.g. {{1, 45.0}} for a conic's
+  /// theta_a or AZP's mu; most projections need none.
+  std::vector<std::pair<int, double>> pv2;
   Beam beam;                                  ///< written as BMAJ/BMIN/BPA when valid
   /// Observing frequency [Hz]; written as the keyword FREQ (in Hz) when > 0. A
   /// 2-D image gets no degenerate spectral axis; read_sky_image reads FREQ back.
