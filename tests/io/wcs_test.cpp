@@ -240,8 +240,8 @@ INSTANTIATE_TEST_SUITE_P(
         // near the poles (the field contains the pole)
         ZenCase{"ZEA", Zen::ZEA, 0, 45.0, -89.6, 0}, ZenCase{"AZP", Zen::AZP, 1.5, 300.0, 89.7, 40},
         ZenCase{"SIN", Zen::SIN, 0, 120.0, 89.9, -60}, ZenCase{"TAN", Zen::TAN, 0, 10.0, -89.95, 5}),
-    [](const ::testing::TestParamInfo<ZenCase>& info) {
-      return std::string(info.param.code) + "_" + std::to_string(info.index);
+    [](const ::testing::TestParamInfo<ZenCase>& p) {
+      return std::string(p.param.code) + "_" + std::to_string(p.index);
     });
 
 TEST(WcsSin, GeneralisedSinWithPvTerms) {
