@@ -92,9 +92,17 @@ std::string fixed(double v, int digits) {
 
 std::string stage_ini(const SurveyConfig& cfg) {
   std::ostringstream s;
-  s << "# [extract] settings of survey " << cfg.name << " (written by skerry survey from "
-    << fs::path(cfg.config_path).filename().string() << ")\n[extract]\n";
-  for (const auto& [k, v] : cfg.extract) s << k << " = " << v << "\n";
+  s << "# Stage settings of survey " << cfg.name << " for skerry extract (written by skerry survey from "
+    << fs::path(cfg.config_path).filename().string() << ")\n";
+  std::string section;
+  for (const auto& [k, v] : cfg.extract) {  // sorted by "section.key"
+    const std::string sec = k.substr(0, k.find('.'));
+    if (sec != section) {
+      s << "[" << sec << "]\n";
+      section = sec;
+    }
+    s << k.substr(k.find('.') + 1) << " = " << v << "\n";
+  }
   return s.str();
 }
 
@@ -279,6 +287,7 @@ int run_survey(const std::vector<std::string>& args) {
 
   std::mutex mu;
   std::size_t n_ok = 0, n_failed = 0;
+  std::string usage_error;  // a tile run refused the stage settings: a bad configuration
   auto record = [&](const TileReport& r, const PendingTile* p) {
     std::lock_guard g(mu);
     StateRecord::TileState s;
@@ -299,6 +308,11 @@ int run_survey(const std::vector<std::string>& args) {
     db.set_tile(s);
     db.commit();
     (r.ok ? n_ok : n_failed)++;
+    if (!r.ok && r.exit_code == kExitUsage && usage_error.empty()) {
+      usage_error = r.message;
+      const std::string prefix = "skerry extract: error: ";
+      if (usage_error.rfind(prefix, 0) == 0) usage_error = usage_error.substr(prefix.size());
+    }
     const std::string reason = p ? p->reason : "unreadable";
     if (r.ok) {
       log.write("tile " + r.name + " ok " + fixed(r.seconds, 2) + " s components=" + std::to_string(r.rows) + " (" +
@@ -357,6 +371,13 @@ int run_survey(const std::vector<std::string>& args) {
       }
     }
     prog.finish();
+  }
+
+  if (!usage_error.empty()) {
+    log.write("run " + run_id + " end exit=2: skerry extract refused the stage settings: " + usage_error,
+              "\"event\":\"run_end\",\"run\":" + json_str(run_id) + ",\"exit_code\":2,\"message\":" +
+                  json_str(usage_error));
+    throw UsageError(cfg.config_path + ": skerry extract refused the stage settings: " + usage_error);
   }
 
   // ---- Merge (locally, unless the Slurm merge job did it) -----------------------------

@@ -91,13 +91,14 @@ SurveyConfig load_survey_config(const std::string& path) {
     for (const auto& o : parsed.options) {
       if (!o.unregistered) continue;
       const std::string& key = o.string_key;
-      if (key.rfind("extract.", 0) == 0 && key.size() > 8) {
-        const std::string k = key.substr(8);
-        if (cfg.extract.count(k)) throw UsageError(path + ": option 'extract." + k + "' given twice");
-        cfg.extract[k] = o.value.empty() ? "" : o.value.front();
-      } else {
-        throw UsageError(path + ": unknown option '" + key + "' (sections: [survey], [extract], [slurm])");
-      }
+      const auto dot = key.find('.');
+      const std::string section = dot == std::string::npos ? "" : key.substr(0, dot);
+      if (section.empty() || section == "survey" || section == "slurm" || dot + 1 >= key.size())
+        throw UsageError(path + ": unknown option '" + key + "'");
+      // Every other section ([image], [noise], [detect], [fit], [output], ...) is a
+      // stage setting of `skerry extract`, passed through; extract checks it.
+      if (cfg.extract.count(key)) throw UsageError(path + ": option '" + key + "' given twice");
+      cfg.extract[key] = o.value.empty() ? "" : o.value.front();
     }
     po::store(parsed, vm);
     po::notify(vm);
@@ -123,6 +124,13 @@ SurveyConfig load_survey_config(const std::string& path) {
   need(cfg.slurm.max_parallel >= 0, "slurm.max_parallel", std::to_string(cfg.slurm.max_parallel), ">= 0");
   need(cfg.slurm.poll_seconds > 0.0 && cfg.slurm.poll_seconds <= 600.0, "slurm.poll_seconds",
        std::to_string(cfg.slurm.poll_seconds), "0 < poll_seconds <= 600");
+  if (auto f = cfg.extract.find("output.formats"); f != cfg.extract.end()) {
+    const auto fm = split_list(f->second);
+    need(std::find(fm.begin(), fm.end(), "csv") != fm.end(), "output.formats", f->second,
+         "a list holding csv (the survey merges the tiles' NAME.components.csv)");
+  }
+  need(!cfg.extract.count("output.name"), "output.name", cfg.extract.count("output.name") ? cfg.extract["output.name"] : "",
+       "being unset (a tile's outputs are named after its image)");
   cfg.tile_patterns = split_list(tiles);
   cfg.output_root = absolute_from(cfg.base_dir, output);
   cfg.catalogue = catalogue;
@@ -141,7 +149,7 @@ SurveyConfig load_survey_config(const std::string& path) {
   // What changes a tile's results: the per-tile command and its settings.
   std::ostringstream h;
   h << "skerry-survey-tile-v1\ncommand=extract\n";
-  for (const auto& [k, v] : cfg.extract) h << "extract." << k << "=" << v << "\n";
+  for (const auto& [k, v] : cfg.extract) h << k << "=" << v << "\n";
   const std::string ht = h.str();
   cfg.config_sha256 = sha256_hex(ht.data(), ht.size());
   // The merge settings that change the catalogue (not the partition order).

@@ -50,7 +50,9 @@ struct SurveyConfig {
   int threads_per_tile = 1;
   survey::MergeOptions merge;
   std::string ra_column = "ra_deg", dec_column = "dec_deg";
-  /// [extract] settings, key (without the section) -> value, passed through.
+  /// Stage settings of `skerry extract`: every "section.key" of the file outside
+  /// [survey] and [slurm] ([image], [noise], [detect], [fit], [output], ...),
+  /// passed through to each tile run as its --config file (extract checks them).
   std::map<std::string, std::string> extract;
   SlurmSettings slurm;
   /// Hash of everything that changes a tile's results: the stage settings.

@@ -1,0 +1,43 @@
+#pragma once
+// Helpers of the survey pipeline tests: run the skerry executable, build a small
+// simulated survey (one simulated field of the invented Lanternfish Field cut
+// into overlapping tiles), read files.
+#include <string>
+#include <vector>
+
+namespace skerry::testing {
+
+struct RunResult {
+  int code = -1;
+  std::string out, err;
+  double seconds = 0.0;
+};
+
+/// Runs SKERRY_BINARY with `args`; stdout and stderr captured.
+RunResult run_skerry(const std::vector<std::string>& args);
+/// Starts SKERRY_BINARY in the background; returns its PID (stdout/stderr to files in `log_dir`).
+int start_skerry(const std::vector<std::string>& args, const std::string& log_dir);
+/// Waits for a PID started by start_skerry; returns its exit code (128 + signal).
+int wait_skerry(int pid);
+
+/// A fresh empty folder under the test temporary root.
+std::string fresh_dir(const std::string& name);
+
+/// Simulated field (skerry simulate, one band, 640 x 640 pixels of 1.5 arcsec)
+/// cut into a 2 x 2 grid of 384-pixel tiles overlapping by 128 pixels
+/// (192 arcsec, 32 beams). Built once per test program; returns the folder
+/// holding tile_00.fits ... tile_11.fits.
+const std::string& survey_tiles();
+
+/// Copies the tiles into `dir`/tiles and writes `dir`/survey.ini with `extra`
+/// lines appended (INI text). Returns the configuration path.
+std::string make_survey(const std::string& dir, const std::string& extra = "");
+
+std::string read_file(const std::string& path);
+void write_file(const std::string& path, const std::string& content);
+
+/// Events of the JSON-lines log (`survey.jsonl`) with "event" == `event`, of the
+/// last run only (after its run_start), as raw JSON text per line.
+std::vector<std::string> last_run_events(const std::string& out_dir, const std::string& event);
+
+}  // namespace skerry::testing
