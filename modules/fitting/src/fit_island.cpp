@@ -485,8 +485,9 @@ void IslandFitter::covariances(const Eigen::MatrixXd& Jw, const BoolVec& fixed,
 void IslandFitter::unpack(const TrialFit& tf, IslandFit& out) {
   const int k = tf.k, npc = tf.fixed_shape ? 3 : 6;
   const Eigen::VectorXd& p = tf.lm.params;
-  // Parameters at a bound carry no covariance (their rows are zero).
-  BoolVec fixed = tf.lm.at_bound;
+  // Parameters on a bound keep their (curvature-based) covariance: the flags say
+  // they are on a bound. Only a direction with no information is held fixed.
+  BoolVec fixed = BoolVec::Constant(p.size(), false);
   // A theta whose Jacobian column vanishes (circular component) is held fixed for
   // the covariance; its variance is reported as NaN.
   std::vector<int> degenerate_theta;

@@ -85,7 +85,7 @@ struct LmResult {
   int evaluations = 0;         ///< residual evaluations
   Eigen::MatrixXd jacobian;    ///< J at params (m x n)
   Eigen::VectorXd residuals;   ///< r at params (m)
-  /// Parameters on a bound at the end (their covariance rows are set to zero).
+  /// Parameters on a bound at the end (pass as `fixed` to lm_covariance to exclude them).
   Eigen::Matrix<bool, Eigen::Dynamic, 1> at_bound;
 };
 
