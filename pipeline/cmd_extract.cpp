@@ -26,6 +26,7 @@
 #include <chrono>
 #include <cmath>
 #include <cstdio>
+#include <cstring>
 #include <filesystem>
 #include <iostream>
 #include <sstream>
@@ -36,6 +37,7 @@
 #include "io/atomic_file.h"
 #include "io/fits_image.h"
 #include "io/table_io.h"
+#include "io/wcs.h"
 #include "options.h"
 #include "progress.h"
 #include "run_record.h"
@@ -385,6 +387,40 @@ std::optional<Geometry> geometry_at(const SkyImage& img, double x, double y) {
   return g;
 }
 
+
+/// BPA in a header is measured from the north of the image's own frame (FITS
+/// beam keywords, REF-FITS-03; common practice). Catalogue angles are east of
+/// ICRS north, so for a Galactic image the beam is turned by the ICRS position
+/// angle of Galactic north at the image centre. That direction is found in the
+/// pixel frame by reading the same header with the longitude/latitude axes
+/// taken as a plain (RA, Dec) frame (the native +latitude direction), then its
+/// ICRS PA comes from the real WCS. The rotation varies across a field by the
+/// convergence of the two frames' meridians (negligible over one image at
+/// radio resolutions; common practice to use one beam per image).
+Beam beam_in_icrs(const SkyImage& sky) {
+  if (sky.frame != "GALACTIC") return sky.beam;
+  std::string h = sky.wcs_header;
+  for (auto [from, to] : {std::pair<const char*, const char*>{"'GLON-", "'RA---"}, {"'GLAT-", "'DEC--"}}) {
+    for (std::size_t pos = h.find(from); pos != std::string::npos; pos = h.find(from, pos + 1))
+      h.replace(pos, std::strlen(from), to);
+  }
+  const double cx = 0.5 * (static_cast<double>(sky.pixels.cols()) - 1.0);
+  const double cy = 0.5 * (static_cast<double>(sky.pixels.rows()) - 1.0);
+  std::shared_ptr<const PixelSky> native;
+  try {
+    native = wcs_from_header(h);
+  } catch (const std::exception& e) {
+    throw InputError(sky.path, std::string("cannot turn the Galactic beam PA into ICRS: ") + e.what());
+  }
+  const auto ln = local_geometry(*native, cx, cy);
+  const auto li = local_geometry(*sky.wcs, cx, cy);
+  if (!ln || !li) throw InputError(sky.path, "cannot turn the Galactic beam PA into ICRS at the image centre");
+  const Eigen::Vector2d north_pix = ln->jac_arcsec_per_pix.inverse() * Eigen::Vector2d(0.0, 1.0);
+  Beam b = sky.beam;
+  b.pa_deg = wrap_pa_180(b.pa_deg + li->pa_of_pixel_direction_deg(north_pix(0), north_pix(1)));
+  return b;
+}
+
 ImageF read_map(const std::string& path, const SkyImage& like, const char* what) {
   ImageReadOptions o;
   o.accept_any_bunit = true;
@@ -481,6 +517,7 @@ int run_extract(const std::vector<std::string>& args) {
   SkyImage sky = read_sky_image(cfg.image, cfg.read);
   if (!sky.beam.valid())
     throw InputError(cfg.image, "restoring beam is degenerate (BMAJ/BMIN must be positive, BMIN <= BMAJ)");
+  if (!cfg.read.beam_override) sky.beam = beam_in_icrs(sky);
   const long nx = sky.pixels.cols(), ny = sky.pixels.rows();
   {
     bool any = false;

@@ -57,7 +57,11 @@ ParsedOptions parse_options(const std::string& command, const std::string& usage
 
   ParsedOptions out;
   try {
-    po::store(po::command_line_parser(args).options(all).positional(pos).run(), out.vm);
+    // No abbreviations: a misspelt or shortened option is an error naming it.
+    po::store(po::command_line_parser(args).options(all).positional(pos)
+                  .style(po::command_line_style::default_style & ~po::command_line_style::allow_guessing)
+                  .run(),
+              out.vm);
     if (out.vm.count("help")) {
       std::cout << "usage: skerry " << command << " " << usage_line << "\n\n" << all << "\n";
       out.help = true;

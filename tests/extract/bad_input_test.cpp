@@ -140,7 +140,9 @@ TEST(BadInput, IslandOfNansIsFlagged) {
       found = true;
       EXPECT_NE(flags & kFlagNearBlank, 0) << "component next to NaNs must be flagged near_blank";
     }
-    if (std::hypot(x - 0.25 * 255, y - 0.25 * 255) < 3.0) EXPECT_EQ(flags & kFlagNearBlank, 0);
+    if (std::hypot(x - 0.25 * 255, y - 0.25 * 255) < 3.0) {
+      EXPECT_EQ(flags & kFlagNearBlank, 0);
+    }
   }
   EXPECT_TRUE(found) << "the source beside the NaN island was not measured";
 }

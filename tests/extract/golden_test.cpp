@@ -104,7 +104,9 @@ TEST_P(GoldenNoiseless, RecoversTruthExactly) {
     EXPECT_NEAR(col(comps, "s_peak_jy_per_beam", i) / t.s_peak, 1.0, 1e-5);
     EXPECT_NEAR(col(comps, "maj_arcsec", i), t.maj, 1e-3);
     EXPECT_NEAR(col(comps, "min_arcsec", i), t.min, 1e-3);
-    if (t.maj - t.min > 0.1) EXPECT_NEAR(pa_diff(col(comps, "pa_deg", i), t.pa), 0.0, 1e-3);
+    if (t.maj - t.min > 0.1) {
+      EXPECT_NEAR(pa_diff(col(comps, "pa_deg", i), t.pa), 0.0, 1e-3);
+    }
     if (t.int_maj > 0.0) {
       // Deconvolution (Wild 1970; REF-DECONV-01): the intrinsic shape comes back.
       EXPECT_NEAR(col(comps, "dc_maj_arcsec", i), t.int_maj, 1e-3);
@@ -124,7 +126,7 @@ INSTANTIATE_TEST_SUITE_P(Golden, GoldenNoiseless,
                                            GoldenCase{"pole_zea_noiseless", 1e-5},
                                            GoldenCase{"bands_1400MHz_noiseless", 1e-5},
                                            GoldenCase{"bands_3000MHz_noiseless", 1e-5}),
-                         [](const auto& info) { return std::string(info.param.name); });
+                         [](const auto& param_info) { return std::string(param_info.param.name); });
 
 // Source: the noisy golden image (beam-correlated noise of rms 1e-4 Jy/beam
 // added to the same sky). Each normalised residual (measured - true) / error

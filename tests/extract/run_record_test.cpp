@@ -4,6 +4,7 @@
 #include <nlohmann/json.hpp>
 
 #include "extract_helpers.h"
+#include "errors.h"
 #include "run_record.h"
 
 namespace skerry::test {
