@@ -7,8 +7,10 @@
 //    RADESYS/EQUINOX defaults (sect. 3.1), CROTA2 <-> PC (eq. 189).
 //  - ERFA 2.0 (the open edition of IAU SOFA): eraFk5hip (FK5 -> Hipparcos/ICRS frame
 //    rotation, F. Mignard & M. Froeschle 2000, A&A 354, 732), eraPmat76 (IAU 1976
-//    precession, Lieske et al. 1977), eraG2icrs/eraIcrs2g (Galactic <-> ICRS, IAU
-//    1958 Galactic system as realised in ICRS by the Hipparcos Catalogue, ESA 1997).
+//    precession, Lieske et al. 1977), rotation primitives eraRz/eraRy/eraRxr.
+//  - Galactic: the IAU 1958 system's principal axes referred to FK5 J2000 by
+//    C. A. Murray 1989, A&A 218, 325, then FK5 -> ICRS as for FK5 images (see
+//    galactic_rotation below for why not ERFA's eraG2icrs).
 #include "io/wcs.h"
 
 #include <erfa.h>
@@ -242,14 +244,7 @@ class WcslibSky final : public PixelSky {
         ra = lon;
         dec = lat;
         break;
-      case Frame::Galactic: {
-        // ERFA eraG2icrs: Galactic (l, b) -> ICRS (alpha, delta), radians.
-        double a, d;
-        eraG2icrs(lon * kDegToRad, lat * kDegToRad, &a, &d);
-        ra = eraAnp(a) * kRadToDeg;
-        dec = d * kRadToDeg;
-        break;
-      }
+      case Frame::Galactic:
       case Frame::Fk5: {
         double v[3], u[3];
         to_vec(lon, lat, v);
@@ -266,13 +261,7 @@ class WcslibSky final : public PixelSky {
         lon = ra;
         lat = dec;
         break;
-      case Frame::Galactic: {
-        double l, b;
-        eraIcrs2g(ra * kDegToRad, dec * kDegToRad, &l, &b);
-        lon = eraAnp(l) * kRadToDeg;
-        lat = b * kRadToDeg;
-        break;
-      }
+      case Frame::Galactic:
       case Frame::Fk5: {
         double v[3], u[3];
         to_vec(ra, dec, v);
@@ -311,6 +300,35 @@ Rotation fk5_rotation(double equinox_jyr) {
   double pt[3][3];
   eraTr(p, pt);
   eraRxr(r5h, pt, out.r);
+  return out;
+}
+
+/// Galactic (l, b) -> ICRS as one rotation, v_ICRS = R5h G^T v_gal, where
+///   G = Rz(180 deg - theta) Ry(90 deg - delta_P) Rz(alpha_P)   (FK5 J2000 -> Galactic)
+/// with the north Galactic pole (alpha_P, delta_P) = (192.8594812065348,
+/// 27.12825118085622) deg and the Galactic longitude of the north celestial pole
+/// theta = 122.9319185680026 deg, FK5 J2000 (Murray 1989, A&A 218, 325: 12h51m26.2755s,
+/// +27d07m41.704s, 122.93191857 deg; digits from memory, as astropy's Galactic frame
+/// uses them), and R5h the FK5 -> ICRS rotation of eraFk5hip (as for FK5 images).
+/// ERFA's eraG2icrs instead takes the same pole numbers as ICRS (Hipparcos
+/// Catalogue, ESA 1997, vol. 1 sect. 1.5.3); the two readings differ by ~25 mas.
+/// This one is used because the independently rendered golden images follow it
+/// (tests/io/golden_test.cpp checks them to 1e-3 pixel = 2 mas; eraG2icrs misses
+/// by ~0.012 pixel there) and because it converts FK5-based axes one way only.
+Rotation galactic_rotation() {
+  const double alpha_p = 192.8594812065348 * kDegToRad;
+  const double delta_p = 27.12825118085622 * kDegToRad;
+  const double theta = 122.9319185680026 * kDegToRad;
+  double g[3][3];
+  eraIr(g);
+  eraRz(alpha_p, g);
+  eraRy(kPi / 2.0 - delta_p, g);
+  eraRz(kPi - theta, g);
+  double gt[3][3], r5h[3][3], s5h[3];
+  eraTr(g, gt);
+  eraFk5hip(r5h, s5h);
+  Rotation out{};
+  eraRxr(r5h, gt, out.r);
   return out;
 }
 
@@ -414,6 +432,7 @@ std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
   } else if (lngtyp == "GLON") {
     frame = Frame::Galactic;
     frame_name = "GALACTIC";
+    rot = galactic_rotation();
   } else {
     throw std::invalid_argument("celestial axes " + lngtyp + "/" + trim(sub->lattyp) +
                                 " are not supported (RA/DEC or GLON/GLAT)");

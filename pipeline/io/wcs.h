@@ -8,9 +8,10 @@
 ///  - Frames (FITS WCS Paper II, Calabretta & Greisen 2002, sect. 3.1): RADESYS
 ///    names the frame; without it, ICRS when there is no EQUINOX, FK4 when
 ///    EQUINOX < 1984 (refused), else FK5. FK5 (any equinox: IAU 1976 precession to
-///    J2000, then ERFA eraFk5hip's frame rotation) and Galactic (ERFA
-///    eraG2icrs/eraIcrs2g) are converted to ICRS; FK4, GAPPT, ecliptic and other
-///    frames are refused with a one-line reason.
+///    J2000, then ERFA eraFk5hip's frame rotation) and Galactic (Murray 1989's
+///    axes referred to FK5 J2000, then the same FK5 -> ICRS rotation; ~25 mas from
+///    ERFA eraG2icrs's Hipparcos reading, see wcs.cpp) are converted to ICRS; FK4,
+///    GAPPT, ecliptic and other frames are refused with a one-line reason.
 #include <cstddef>
 #include <memory>
 #include <string>

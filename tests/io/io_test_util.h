@@ -285,4 +285,36 @@ inline double sep_deg(double a1, double d1, double a2, double d2) {
 
 inline constexpr double kMas = 1.0 / 3.6e6;  ///< one milliarcsecond [deg]
 
+/// Galactic (l, b) -> FK5 J2000 by the spherical-trigonometry formulas (e.g. the
+/// Explanatory Supplement to the Astronomical Almanac, Galactic coordinates; from
+/// memory) with the pole of Murray 1989 (A&A 218, 325):
+///   sin d = sin b sin dP + cos b cos dP cos(theta - l)
+///   cos d sin(a - aP) = cos b sin(theta - l)
+///   cos d cos(a - aP) = sin b cos dP - cos b sin dP cos(theta - l)
+/// then FK5 -> ICRS with ERFA eraFk52h (zero proper motion). Degrees in and out.
+inline void galactic_to_icrs_reference(double l, double b, double& ra, double& dec) {
+  const double aP = 192.8594812065348 * kD2R, dP = 27.12825118085622 * kD2R,
+               theta = 122.9319185680026 * kD2R;
+  const double lr = l * kD2R, br = b * kD2R;
+  const double sd = std::sin(br) * std::sin(dP) + std::cos(br) * std::cos(dP) * std::cos(theta - lr);
+  const double y = std::cos(br) * std::sin(theta - lr);
+  const double x = std::sin(br) * std::cos(dP) - std::cos(br) * std::sin(dP) * std::cos(theta - lr);
+  const double a5 = aP + std::atan2(y, x), d5 = std::asin(sd);
+  double ah, dh, x1, x2, x3, x4;
+  eraFk52h(a5, d5, 0, 0, 0, 0, &ah, &dh, &x1, &x2, &x3, &x4);
+  ra = eraAnp(ah) * kR2D;
+  dec = dh * kR2D;
+}
+
+/// PA (east of north) [deg] of the direction from point c towards point `up`, the
+/// mean of ERFA eraPas towards `up` and (+180 deg) towards `down`, the points a
+/// small step either side: the first-order error of one-sided steps cancels.
+inline double central_pa_deg(double rc, double dc, double ru, double du, double rd, double dd) {
+  const double p1 = eraPas(rc * kD2R, dc * kD2R, ru * kD2R, du * kD2R);
+  const double p2 = eraPas(rc * kD2R, dc * kD2R, rd * kD2R, dd * kD2R) + 3.14159265358979323846;
+  return eraAnp(std::atan2(std::sin(p1) + std::sin(p2), std::cos(p1) + std::cos(p2))) * kR2D;
+}
+
+
+
 }  // namespace skerry::iotest
