@@ -187,6 +187,14 @@ TEST(Islands, EdgeCasesGiveNoIslands) {
   // rms = 0 makes every pixel blank (never foreground), however bright.
   r = find_islands(flat, NoiseMaps::constant(30, 20, 0.0f, 0.0f), {});
   EXPECT_TRUE(r.islands.empty());
+  // An image without pixels: empty labels, no islands.
+  const ImageF none(0, 5);
+  r = find_islands(none, NoiseMaps::constant(5, 0, 0.0f, 1.0f), {});
+  EXPECT_TRUE(r.islands.empty());
+  EXPECT_EQ(r.labels.size(), 0);
+  IslandOptions fdr;
+  fdr.peak_threshold = PeakThreshold::fdr;
+  EXPECT_TRUE(find_islands(none, NoiseMaps::constant(5, 0, 0.0f, 1.0f), fdr).islands.empty());
   // Wrong map size and bad options are refused.
   EXPECT_THROW(find_islands(flat, NoiseMaps::constant(29, 20, 0.0f, 1.0f), {}), std::invalid_argument);
   EXPECT_THROW(find_islands(flat, NoiseMaps{}, {}), std::invalid_argument);

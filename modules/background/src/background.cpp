@@ -237,7 +237,7 @@ BackgroundResult estimate_background(const ImageF& image, const BackgroundOption
 MaskU8 grow_mask(const LabelsI32& labels, int margin_pixels) {
   if (margin_pixels < 0) throw std::invalid_argument("grow_mask: margin_pixels must be >= 0");
   const int w = static_cast<int>(labels.cols()), h = static_cast<int>(labels.rows());
-  const int r = margin_pixels;
+  const int r = std::min(margin_pixels, std::max(w, h));  // a larger margin changes nothing
   // Separable square dilation (Chebyshev distance <= r), exact and independent
   // of the partition: along x row by row (each run of labelled pixels widened
   // by r), then along y as the OR of the rows y - r .. y + r, skipping rows

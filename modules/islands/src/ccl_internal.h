@@ -178,6 +178,7 @@ inline void paint_labels(const Components& c, int width, int height, int strip_r
   tbb::parallel_for(tbb::blocked_range<int>(0, nstrips, 1), [&](const tbb::blocked_range<int>& r) {
     for (int s = r.begin(); s < r.end(); ++s) {
       const int y0 = s * strip_rows, y1 = std::min(height, y0 + strip_rows);
+      if (width == 0) continue;
       for (int y = y0; y < y1; ++y) std::fill_n(&labels(y, 0), width, 0);
       for (std::int64_t i = c.strip_first[s]; i < c.strip_first[s + 1]; ++i) {
         const std::int32_t l = c.label[i];

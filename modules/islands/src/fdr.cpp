@@ -78,6 +78,10 @@ double fdr_threshold(const ImageF& image, const NoiseMaps& maps, double alpha, b
   const int w = static_cast<int>(image.cols()), h = static_cast<int>(image.rows());
   if (maps.empty() || maps.width() != w || maps.height() != h)
     throw std::invalid_argument("fdr: background/rms maps missing or of a different size than the image");
+  if (w == 0 || h == 0) {
+    if (result) *result = FdrResult{};
+    return std::numeric_limits<double>::infinity();
+  }
   // Only p <= alpha / c can satisfy p_(i) <= i alpha / (c N) (i <= N), so only
   // pixels with snr >= z_min, p(z_min) >= alpha / c, are candidates. c needs N,
   // and N is the number of non-blank pixels: count them first.

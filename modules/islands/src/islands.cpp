@@ -41,6 +41,13 @@ IslandResult find_islands(const ImageF& image, const NoiseMaps& maps, const Isla
   if (maps.empty() || maps.width() != w || maps.height() != h)
     throw std::invalid_argument("islands: background/rms maps missing or of a different size than the image");
   IslandResult res;
+  if (w == 0 || h == 0) {
+    res.labels.resize(h, w);
+    res.peak_snr_used = options.peak_threshold == PeakThreshold::fdr ? std::numeric_limits<double>::infinity()
+                                                                      : options.peak_snr;
+    res.grow_snr_used = std::min(options.grow_snr, res.peak_snr_used);
+    return res;
+  }
   if (options.peak_threshold == PeakThreshold::fdr) {
     FdrResult fr;
     res.peak_snr_used = fdr_threshold(image, maps, options.fdr_alpha, options.fdr_arbitrary_dependence, &fr);

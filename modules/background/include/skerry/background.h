@@ -104,7 +104,7 @@ struct BackgroundOptions {
   /// step_beams is 0 too (the default: boxes tile the image).
   int step_pixels = 0;
   double step_beams = 0.0;
-  double clip_sigma = 3.0;       ///< k of the sigma clipping (>= 1.5)
+  double clip_sigma = 3.0;       ///< k of the sigma clipping (>= 2; below ~1.8 iterated clipping collapses)
   int max_clip_iterations = 50;  ///< iteration cap (the kept set usually settles in < 10)
   /// A box needs at least this fraction of its area as finite unmasked pixels
   /// and at least min_valid_pixels of them; otherwise it is filled from neighbours.
@@ -170,7 +170,7 @@ ClipResult sigma_clip(std::vector<float>& values, double k, int max_iterations =
 /// Correction factor 1/s* for iterated clipping at k: s* is the non-zero fixed
 /// point of s^2 = 1 - 2 k s phi(k s) / (2 Phi(k s) - 1) reached from s = 1
 /// (REF-ROBUST-03). k = 3 gives 1.015386985053. Throws std::invalid_argument
-/// for k < 1.5 (the iteration then collapses towards 0).
+/// for k < 2 (below ~1.8 the iteration collapses towards 0; 2 gives 1.378).
 double clipped_sigma_correction(double k);
 /// Correction for a single clip at the true sigma: 1 / sqrt(1 - 2 k phi(k) / (2 Phi(k) - 1)).
 double clipped_sigma_correction_single(double k);

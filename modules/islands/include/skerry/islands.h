@@ -64,7 +64,7 @@ struct Island {
   /// beam area in pixels for a flux density in Jy (REF-GAUSS-04).
   double sum_minus_background = 0.0;
   bool touches_edge = false;     ///< a pixel lies on the first/last row or column
-  bool touches_blank = false;    ///< a pixel is 8-adjacent to a blank pixel
+  bool touches_blank = false;    ///< a pixel is 8-adjacent to a NaN (no data) image pixel
 };
 
 struct IslandResult {
