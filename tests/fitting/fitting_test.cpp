@@ -448,3 +448,44 @@ TEST(FitIsland, ExtendedNonGaussianIsland) {
 }
 
 }  // namespace
+
+namespace {
+
+// REF-SINT-01 worked example: S_peak = 2.5 mJy/beam, fitted 8" x 5" (PA 45), beam
+// 6" x 4": S_int = 4.166666666666667 mJy (rel 1e-15 for the formula), and the pixel
+// sum of the rendered component over the beam area in pixels (REF-GAUSS-04, 1"
+// pixels, 201 x 201) gives 4.166666666666665 mJy (rel 1e-12). The shape here goes
+// sky -> pixel -> sky through the WCS's local Jacobian, which is formed from
+// differences of ICRS degrees (rounding ~1e-10 relative over half a pixel), so the
+// tolerances are rel 1e-9.
+TEST(RenderComponents, PixelSumMatchesIntegratedFlux) {
+  const Beam beam{6.0, 4.0, 0.0};
+  const TanGrid sky = TanGrid::square(kRa0, kDec0, 100, 100, 1.0);
+  // Pixel-frame component of 8" x 5" at PA 45 on this grid (east = -x, north = +y).
+  const auto geo = skerry::local_geometry(sky, 100, 100);
+  const Eigen::Matrix2d Cpix = geo->sky_cov_to_pixel(skerry::ellipse_to_cov({8.0, 5.0, 45.0}));
+  PixelComponent c;
+  c.amplitude = 2.5e-3;
+  c.x = 100.0;
+  c.y = 100.0;
+  const double a = Cpix(0, 0), d = Cpix(1, 1), b = Cpix(0, 1);
+  const double mean = 0.5 * (a + d), half = std::hypot(0.5 * (a - d), b);
+  c.sigma_major_pix = std::sqrt(mean + half);
+  c.sigma_minor_pix = std::sqrt(mean - half);
+  c.theta_rad = 0.5 * std::atan2(2 * b, a - d);
+  c.local_rms = 1e-4;
+  c.cov.setZero();
+  const SkyComponent s = skerry::measure_on_sky(c, sky, beam, {});
+  EXPECT_NEAR(s.s_int_jy, 4.166666666666667e-3, 1e-9 * 4.17e-3);
+  EXPECT_NEAR(s.maj_arcsec, 8.0, 1e-9);
+  EXPECT_NEAR(s.min_arcsec, 5.0, 1e-9);
+  EXPECT_NEAR(s.pa_deg, 45.0, 1e-7);
+  skerry::ImageD model = skerry::ImageD::Zero(201, 201);
+  skerry::render_components({c}, model, 40.0);
+  const double n_beam = skerry::kGaussAreaFactor * 6.0 * 4.0;  // beam area in 1" pixels
+  EXPECT_NEAR(model.sum() / n_beam, 4.166666666666665e-3, 1e-9 * 4.17e-3);
+  EXPECT_DOUBLE_EQ(model(100, 100), 2.5e-3);
+  EXPECT_DOUBLE_EQ(model(97, 103), skerry::component_value(c, 103, 97));
+}
+
+}  // namespace
