@@ -91,7 +91,16 @@ struct FitOptions {
   /// Noise correlation truncation [beam sigmas].
   double correlation_cutoff_sigma = 4.0;
   ErrorModel error_model = ErrorModel::kSandwich;
-  LmOptions lm{100, 1e-9, 1e-10, 1e-10, 1e-3, 10.0, 0.1, 1e12};
+  /// Solver settings for island fits: tolerances far below the parameter errors
+  /// (a step of 1e-9 of |p| is ~1e-5 pixel for centres near x = 8000).
+  LmOptions lm{.max_iterations = 100,
+               .step_rel_tol = 1e-9,
+               .chi2_rel_tol = 1e-10,
+               .gradient_tol = 1e-10,
+               .initial_lambda = 1e-3,
+               .lambda_up = 10.0,
+               .lambda_down = 0.1,
+               .max_lambda = 1e12};
 };
 
 /// Parameter order in PixelComponent::cov.
