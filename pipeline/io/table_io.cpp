@@ -318,7 +318,12 @@ Table read_fits_table(const std::string& path) {
       if (nr) fits_read_col_str(f.get(), n, 1, 1, nrows, nul, p.data(), &anynul, &status);
       check("column '" + c.name + "': cannot read");
       c.text.reserve(nr);
-      for (auto& b : buf) c.text.emplace_back(b.c_str());
+      // Trailing blanks are padding in FITS character fields (FITS Standard 4.0, sec. 7.3.3.1).
+      for (auto& b : buf) {
+        std::string v = b.c_str();
+        while (!v.empty() && v.back() == ' ') v.pop_back();
+        c.text.push_back(std::move(v));
+      }
     } else if (at == TFLOAT || at == TDOUBLE || at == TCOMPLEX || at == TDBLCOMPLEX) {
       if (at == TCOMPLEX || at == TDBLCOMPLEX) {
         skipped += (skipped.empty() ? "" : ",") + c.name;

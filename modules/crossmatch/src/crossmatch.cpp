@@ -186,8 +186,15 @@ void check_errors(const SkyPositions& c, const char* which) {
 }
 
 /// Candidates of every A row, computed block by block.
-/// fn(i, candidates) is called once per valid A row, from several threads, with
-/// candidates sorted by cand_less; it must only write to slots owned by row i.
+/// fn(block, i, candidates) is called once per valid A row, from several
+/// threads; `block` numbers the fixed work block (rows in cell-key order), so
+/// fn may write to slots owned by row i or by the block.
+std::size_t n_blocks(const SkyPositions& a) {
+  std::size_t m = 0;
+  for (std::size_t i = 0; i < a.size(); ++i) m += valid_position(a.ra_deg[i], a.dec_deg[i]) ? 1 : 0;
+  return (m + kBlock - 1) / kBlock;
+}
+
 template <class Fn>
 void for_each_row(const SkyPositions& a, const SkyIndex& idx, double radius_arcsec, const Fn& fn) {
   const double c = chord_bound(radius_arcsec);
@@ -215,7 +222,7 @@ void for_each_row(const SkyPositions& a, const SkyIndex& idx, double radius_arcs
       idx.query(to_vec(a.ra_deg[i], a.dec_deg[i]), r2, c, hits);
       cands.clear();
       for (std::size_t h : hits) cands.push_back({idx.row(h), 0.0, 0.0});
-      fn(i, cands);
+      fn(blk, i, cands);
     }
   });
 }
@@ -255,10 +262,9 @@ MatchResult match_catalogues(const SkyPositions& a, const SkyPositions& b, const
   const bool one_per_row = opt.mode == MatchMode::Nearest || err_mode;
   std::vector<MatchPair> best;
   if (one_per_row) best.assign(na, MatchPair{});
-  const std::size_t nblocks = (na + kBlock - 1) / kBlock;
-  std::vector<std::vector<MatchPair>> block_pairs(one_per_row ? 0 : nblocks);
+  std::vector<std::vector<MatchPair>> block_pairs(one_per_row ? 0 : n_blocks(a));
 
-  for_each_row(a, idx, radius, [&](std::size_t i, std::vector<Cand>& cands) {
+  for_each_row(a, idx, radius, [&](std::size_t blk, std::size_t i, std::vector<Cand>& cands) {
     const double ra = a.ra_deg[i], dec = a.dec_deg[i];
     // Exact separation (Vincenty, REF-SEP-01) decides membership.
     std::size_t m = 0;
@@ -304,7 +310,7 @@ MatchResult match_catalogues(const SkyPositions& a, const SkyPositions& b, const
     if (one_per_row) {
       best[i] = make(cands[0], 0);
     } else {
-      auto& out = block_pairs[i / kBlock];
+      auto& out = block_pairs[blk];
       for (std::size_t r = 0; r < m; ++r) out.push_back(make(cands[r], r));
     }
   });
@@ -321,6 +327,10 @@ MatchResult match_catalogues(const SkyPositions& a, const SkyPositions& b, const
     res.pairs.insert(res.pairs.end(), v.begin(), v.end());
     std::vector<MatchPair>().swap(v);
   }
+  // Blocks hold rows in cell-key order: sort by (a, rank), a total order.
+  tbb::parallel_sort(res.pairs.begin(), res.pairs.end(), [](const MatchPair& x, const MatchPair& y) {
+    return x.a != y.a ? x.a < y.a : x.rank < y.rank;
+  });
   if (opt.mode == MatchMode::All) return res;
 
   // One-to-one: global order (separation, A, B), greedy acceptance.
