@@ -166,17 +166,19 @@ struct IslandFit {
 /// Decompose and fit one island.
 ///
 /// Steps: (1) significant local maxima of the island (8-neighbour maxima with
-/// prominence >= prominence_snr local rms, at most max_components, highest first);
-/// (2) initial guesses: each maximum's height and position, beam shape (the
-/// brightest gets the island's second moments when it is alone); (3) bounded
-/// weighted Levenberg-Marquardt with an analytic Jacobian; (4) for k > 1, fits
-/// with k-1, ..., 1 components (dropping the least prominent maximum) are compared
-/// by BIC_eff = chi2 / Omega_beam_pix + n_par ln(N_pix / Omega_beam_pix), the
-/// Bayesian information criterion (Schwarz 1978, Ann. Stat. 6, 461) with the
+/// prominence >= prominence_snr local rms; most prominent first, at most
+/// max_components); (2) initial guesses: each maximum's height and pixel, the
+/// beam's shape (a single component that does not converge is restarted from the
+/// island's moments); (3) bounded weighted Levenberg-Marquardt with the analytic
+/// Jacobian; (4) for k > 1, fits with k-1, ..., 1 components (dropping the least
+/// prominent maxima) are compared by
+///   BIC_eff = chi2 / Omega_beam_pix + n_par ln(N_pix / Omega_beam_pix),
+/// the Bayesian information criterion (Schwarz 1978, Ann. Stat. 6, 461) with the
 /// number of effectively independent pixels N_pix / Omega_beam_pix (CONVENTIONS
 /// "Noise") and chi2 scaled to it; the lowest wins; (5) covariance per
-/// error_model. A failed fit (no convergence from any start) yields one
-/// moment-based component with status kMoments.
+/// error_model. A fit is unusable on numerical failure or when a component's
+/// amplitude dies on its bound; with no usable fit the island gets one
+/// moment-based component (status kMoments, flag kFitMomentsFallback).
 IslandFit fit_island(const IslandCutout& island, const FitOptions& options);
 
 /// Fit many islands in parallel (oneTBB); each island is independent, so the
