@@ -643,8 +643,12 @@ IslandFit IslandFitter::run() {
 
   // (2)-(4) fits with kmax, kmax-1, ..., 1 components; keep the lowest BIC_eff.
   TrialFit best;
+  LmStatus last_status = LmStatus::kNotRun;
+  int last_iterations = 0;
   for (int k = kmax; k >= 1; --k) {
     TrialFit tf = fit(peaks, k, fixed, false);
+    last_status = tf.lm.status;
+    last_iterations = tf.lm.iterations;
     if (k == 1 && !fixed && !lm_converged(tf.lm.status)) {
       TrialFit alt = fit(peaks, 1, fixed, true);  // restart from the island moments
       if (lm_converged(alt.lm.status) || (alt.usable && alt.lm.chi2 < tf.lm.chi2)) tf = alt;
@@ -656,7 +660,8 @@ IslandFit IslandFitter::run() {
   if (!best.usable) {
     out.components.push_back(moments_component());
     out.reduced_chi2 = NAN;
-    out.lm_status = best.lm.status;
+    out.lm_status = last_status;  // of the last (single-component) attempt
+    out.lm_iterations = last_iterations;
     return out;
   }
   unpack(best, out);
