@@ -16,7 +16,13 @@ namespace {
 constexpr double kBoundarySlack = 1e-7;
 }  // namespace
 
-std::string designation(const std::string& prefix, double ra_deg, double dec_deg) {
+namespace {
+struct Parts {
+  long long t;   ///< RA in tenths of a second of time, [0, 864000)
+  long long a;   ///< |Dec| in whole arcseconds, [0, 324000]
+  bool negative; ///< Dec < 0
+};
+Parts parts_of(double ra_deg, double dec_deg) {
   if (!std::isfinite(ra_deg) || !std::isfinite(dec_deg) || std::fabs(dec_deg) > 90.0)
     throw std::invalid_argument("designation: position (" + std::to_string(ra_deg) + ", " +
                                 std::to_string(dec_deg) + ") deg is not a valid sky position");
@@ -24,15 +30,25 @@ std::string designation(const std::string& prefix, double ra_deg, double dec_deg
   if (ra < 0.0) ra += 360.0;  // may give exactly 360.0 for tiny negative inputs; wrapped below
   // RA in tenths of a second of time: 24 h = 360 deg = 864000 tenths, so 1 deg = 2400.
   long long t = static_cast<long long>(std::floor(ra * 2400.0 + kBoundarySlack));
-  if (t >= 864000) t -= 864000;  // RA 23h59m59.99s... that truncates to 24h exactly wraps to 0h
-  const long long h = t / 36000, m = (t / 600) % 60, s = (t / 10) % 60, ds = t % 10;
+  if (t >= 864000) t -= 864000;  // a value that truncates to 24h 00m 00.0s is 0h
   // |Dec| in whole arcseconds, truncated.
   const long long a = static_cast<long long>(std::floor(std::fabs(dec_deg) * 3600.0 + kBoundarySlack));
-  const long long d = a / 3600, am = (a / 60) % 60, as = a % 60;
-  const char sign = dec_deg < 0.0 ? '-' : '+';
+  return {t, a, dec_deg < 0.0};
+}
+}  // namespace
+
+std::int64_t designation_key(double ra_deg, double dec_deg) {
+  const Parts p = parts_of(ra_deg, dec_deg);
+  return (p.t * 2 + (p.negative ? 1 : 0)) * 324001 + p.a;
+}
+
+std::string designation(const std::string& prefix, double ra_deg, double dec_deg) {
+  const Parts p = parts_of(ra_deg, dec_deg);
+  const long long h = p.t / 36000, m = (p.t / 600) % 60, s = (p.t / 10) % 60, ds = p.t % 10;
+  const long long d = p.a / 3600, am = (p.a / 60) % 60, as = p.a % 60;
   char buf[96];
-  std::snprintf(buf, sizeof buf, " J%02lld%02lld%02lld.%lld%c%02lld%02lld%02lld", h, m, s, ds, sign, d,
-                am, as);
+  std::snprintf(buf, sizeof buf, " J%02lld%02lld%02lld.%lld%c%02lld%02lld%02lld", h, m, s, ds,
+                p.negative ? '-' : '+', d, am, as);
   return prefix + buf;
 }
 

@@ -12,6 +12,7 @@
 #include <map>
 #include <stdexcept>
 #include <tuple>
+#include <unordered_map>
 
 #include "skerry/constants.h"
 #include "skerry/sky.h"
@@ -107,22 +108,35 @@ double margin_arcsec(const MergeOptions& o) {
 }
 }  // namespace
 
-std::vector<std::int64_t> partitions_of(double ra_deg, double dec_deg, const MergeOptions& o) {
+namespace {
+/// The margin is assigned per "fine" pixel at order partition_order + 3 (64 fine
+/// pixels per partition): every component of fine pixel F goes to each partition
+/// that overlaps the disc about F's centre with radius maxrad(F) + margin, which
+/// holds the margin disc of every point of F. Conservative (never misses a
+/// partition, adds a few) and one disc query per fine pixel, not per component.
+int fine_order(const MergeOptions& o) { return std::min(kSortOrder, o.partition_order + 3); }
+
+std::vector<std::int64_t> partitions_of_fine(std::int64_t fine, const MergeOptions& o) {
   const T_Healpix_Base<int64> base(o.partition_order, NEST);
-  const pointing p = to_pointing(ra_deg, dec_deg);
+  const T_Healpix_Base<int64> fb(fine_order(o), NEST);
+  const double radius = fb.max_pixrad() + margin_arcsec(o) * kArcsecToRad;
   rangeset<int64> rs;
-  // fact: the overlap test runs at N_side * fact (a power of 2 for NESTED); 64
-  // keeps false positives to a sliver next to each pixel at 3 us per query.
-  const int fact = static_cast<int>(std::min<std::int64_t>(64, std::int64_t{1} << (kSortOrder - o.partition_order)));
-  base.query_disc_inclusive(p, margin_arcsec(o) * kArcsecToRad, rs, fact);
+  // fact: the overlap test runs at N_side * fact (a power of 2 for NESTED).
+  const int fact = static_cast<int>(std::min<std::int64_t>(8, std::int64_t{1} << (kSortOrder - o.partition_order)));
+  base.query_disc_inclusive(fb.pix2ang(fine), radius, rs, fact);
   std::vector<std::int64_t> out;
   rs.toVector(out);
-  // The home pixel is defined from the order-29 key, so that it is exactly the
-  // prefix of the catalogue sort key (never a different pixel from rounding).
-  out.push_back(sky_sort_key(ra_deg, dec_deg) >> (2 * (kSortOrder - o.partition_order)));
+  out.push_back(fine >> (2 * (fine_order(o) - o.partition_order)));  // the home partition, always
   std::sort(out.begin(), out.end());
   out.erase(std::unique(out.begin(), out.end()), out.end());
   return out;
+}
+}  // namespace
+
+std::vector<std::int64_t> partitions_of(double ra_deg, double dec_deg, const MergeOptions& o) {
+  // The home pixel is defined from the order-29 key, so that it is exactly the
+  // prefix of the catalogue sort key (never a different pixel from rounding).
+  return partitions_of_fine(sky_sort_key(ra_deg, dec_deg) >> (2 * (kSortOrder - fine_order(o))), o);
 }
 
 PartitionResult merge_partition(const PartitionInput& input, const std::vector<SkyPoint>& centres,
@@ -166,7 +180,9 @@ PartitionResult merge_partition(const PartitionInput& input, const std::vector<S
       dct[i] = ang(unit(centres[i].ra_deg, centres[i].dec_deg));
       d0 = std::min(d0, dct[i]);
     }
-    const double limit = d0 + 2.0 * r_max + 1e-9;  // slack: conservative (keeps extra candidates)
+    // + 2 match radii: the candidates also hold every tile within 2 r of being
+    // nearest, which the boundary test below needs.
+    const double limit = d0 + 2.0 * r_max + 2.0 * o.match_radius_arcsec * kArcsecToRad + 1e-9;
     for (std::size_t i = 0; i < centres.size(); ++i)
       if (dct[i] <= limit) cand.push_back(i);
   } else {
@@ -175,19 +191,30 @@ PartitionResult merge_partition(const PartitionInput& input, const std::vector<S
   std::vector<Vec3> cand_v;
   for (auto i : cand) cand_v.push_back(unit(centres[i].ra_deg, centres[i].dec_deg));
 
-  std::vector<char> kept(m.size(), 0), home(m.size(), 0);
+  // near_edge: the second-nearest tile centre is within 2 match radii of the
+  // nearest one's distance. Two kept components of different tiles A and B
+  // closer than r are both near an edge: d(a, cB) <= d(b, cB) + r <= d(b, cA) + r
+  // <= d(a, cA) + 2r (triangle inequality, b in B's cell). Only they enter the
+  // self-match below.
+  const double two_r = 2.0 * o.match_radius_arcsec * kArcsecToRad;
+  auto angle_of_chord2 = [](double c2) { return 2.0 * std::asin(std::min(1.0, 0.5 * std::sqrt(c2))); };
+  std::vector<char> kept(m.size(), 0), home(m.size(), 0), near_edge(m.size(), 0);
   for (std::size_t k = 0; k < m.size(); ++k) {
     home[k] = (m[k].key >> shift) == input.pixel;
     std::size_t best = 0;
-    double best_c2 = chord2(m[k].v, cand_v[0]);
+    double best_c2 = chord2(m[k].v, cand_v[0]), second_c2 = 1e300;
     for (std::size_t j = 1; j < cand.size(); ++j) {
       const double c2 = chord2(m[k].v, cand_v[j]);
       if (c2 < best_c2) {
+        second_c2 = best_c2;
         best_c2 = c2;
         best = j;
+      } else if (c2 < second_c2) {
+        second_c2 = c2;
       }
     }
     kept[k] = static_cast<std::size_t>(m[k].c.tile) == cand[best];
+    near_edge[k] = second_c2 < 1e300 && angle_of_chord2(second_c2) - angle_of_chord2(best_c2) <= two_r + 1e-12;
     if (home[k]) {
       ++res.home_rows;
       if (!kept[k]) ++res.dropped_by_cell;
@@ -195,46 +222,76 @@ PartitionResult merge_partition(const PartitionInput& input, const std::vector<S
   }
 
   // ---- Self-match check of the kept components -------------------------------
-  // Pairs from different tiles closer than the match radius. Sweep in Dec: a pair
-  // closer than r differs by less than r in Dec. A pair is counted by the
-  // partition that is home to its earlier member (catalogue order), so that each
-  // pair is counted exactly once over all partitions.
+  // Pairs from different tiles closer than the match radius, found through a
+  // grid of cubes in 3-D unit-vector space with the side h of the radius' chord:
+  // two points closer than the radius lie in the same or adjacent cubes (no
+  // special cases at RA 0/360 or the poles). A pair is counted by the partition
+  // that is home to its earlier member (catalogue order), so that each pair is
+  // counted exactly once over all partitions.
   {
-    std::vector<std::size_t> idx;
-    for (std::size_t k = 0; k < m.size(); ++k)
-      if (kept[k]) idx.push_back(k);
-    std::sort(idx.begin(), idx.end(), [&](std::size_t a, std::size_t b) {
-      return std::tie(m[a].c.dec_deg, a) < std::tie(m[b].c.dec_deg, b);
-    });
-    const double r_deg = o.match_radius_arcsec / 3600.0;
     const double r_c2 = chord2_of_angle(o.match_radius_arcsec * kArcsecToRad);
-    for (std::size_t i = 0; i < idx.size(); ++i) {
-      for (std::size_t j = i + 1; j < idx.size(); ++j) {
-        const std::size_t a = idx[i], b = idx[j];
-        if (m[b].c.dec_deg - m[a].c.dec_deg > r_deg) break;
-        if (m[a].c.tile == m[b].c.tile) continue;
-        if (chord2(m[a].v, m[b].v) > r_c2) continue;
-        const std::size_t first = std::min(a, b);  // m is in catalogue order
-        if (home[first]) ++res.residual_duplicate_pairs;
+    // Cube side L = 2 x chord (>= 2e-6 so that indices fit 21 bits): a ball of
+    // radius <= L/2 about p meets at most two cubes per axis, the one holding p
+    // and the neighbour on the side of the half p lies in: 8 cubes to search.
+    const double L = std::max(2.0 * std::sqrt(r_c2), 2e-6);
+    auto key = [](std::int64_t x, std::int64_t y, std::int64_t z) {
+      const std::int64_t off = std::int64_t{1} << 20;
+      return static_cast<std::uint64_t>(x + off) << 42 | static_cast<std::uint64_t>(y + off) << 21 |
+             static_cast<std::uint64_t>(z + off);
+    };
+    std::unordered_map<std::uint64_t, std::vector<std::uint32_t>> grid;
+    grid.reserve(2 * m.size());
+    for (std::size_t k = 0; k < m.size(); ++k) {
+      if (!kept[k] || !near_edge[k]) continue;
+      const auto cx = static_cast<std::int64_t>(std::floor(m[k].v.x / L));
+      const auto cy = static_cast<std::int64_t>(std::floor(m[k].v.y / L));
+      const auto cz = static_cast<std::int64_t>(std::floor(m[k].v.z / L));
+      grid[key(cx, cy, cz)].push_back(static_cast<std::uint32_t>(k));
+    }
+    for (std::size_t a = 0; a < m.size(); ++a) {
+      if (!kept[a] || !home[a] || !near_edge[a]) continue;
+      const double fx = m[a].v.x / L, fy = m[a].v.y / L, fz = m[a].v.z / L;
+      const auto cx = static_cast<std::int64_t>(std::floor(fx));
+      const auto cy = static_cast<std::int64_t>(std::floor(fy));
+      const auto cz = static_cast<std::int64_t>(std::floor(fz));
+      const std::int64_t sx = fx - static_cast<double>(cx) < 0.5 ? -1 : 1;
+      const std::int64_t sy = fy - static_cast<double>(cy) < 0.5 ? -1 : 1;
+      const std::int64_t sz = fz - static_cast<double>(cz) < 0.5 ? -1 : 1;
+      for (int q = 0; q < 8; ++q) {
+        auto it = grid.find(key(cx + ((q & 1) ? sx : 0), cy + ((q & 2) ? sy : 0), cz + ((q & 4) ? sz : 0)));
+        if (it == grid.end()) continue;
+        for (const std::uint32_t b : it->second) {
+          if (b <= a) continue;  // each pair once, from its earlier member a (m is in catalogue order)
+          if (m[a].c.tile == m[b].c.tile) continue;
+          if (chord2(m[a].v, m[b].v) > r_c2) continue;
+          ++res.residual_duplicate_pairs;
+        }
       }
     }
   }
 
   // ---- Designations and collision suffixes -----------------------------------
-  std::vector<std::string> names(m.size());
-  std::map<std::string, std::vector<std::size_t>> by_name;  // members in catalogue order
-  for (std::size_t k = 0; k < m.size(); ++k) {
-    if (!kept[k]) continue;
-    names[k] = designation(o.designation_prefix, m[k].c.ra_deg, m[k].c.dec_deg);
-    by_name[names[k]].push_back(k);
+  // Components share a designation exactly when they share its integer key:
+  // sort (key, catalogue index) pairs; a run of equal keys is one designation,
+  // its members in catalogue order.
+  std::vector<std::pair<std::int64_t, std::uint32_t>> dk;
+  dk.reserve(m.size());
+  for (std::size_t k = 0; k < m.size(); ++k)
+    if (kept[k]) dk.emplace_back(designation_key(m[k].c.ra_deg, m[k].c.dec_deg), static_cast<std::uint32_t>(k));
+  std::sort(dk.begin(), dk.end());
+  std::vector<std::int64_t> rank(m.size(), -1);  // -1: the designation is unique
+  for (std::size_t b = 0; b < dk.size();) {
+    std::size_t e = b;
+    while (e < dk.size() && dk[e].first == dk[b].first) ++e;
+    if (e - b > 1)
+      for (std::size_t q = b; q < e; ++q) rank[dk[q].second] = static_cast<std::int64_t>(q - b);
+    b = e;
   }
   for (std::size_t k = 0; k < m.size(); ++k) {
     if (!kept[k] || !home[k]) continue;
-    const auto& group = by_name[names[k]];
-    std::string name = names[k];
-    if (group.size() > 1) {
-      const auto rank = static_cast<std::size_t>(std::find(group.begin(), group.end(), k) - group.begin());
-      name += collision_suffix(rank);
+    std::string name = designation(o.designation_prefix, m[k].c.ra_deg, m[k].c.dec_deg);
+    if (rank[k] >= 0) {
+      name += collision_suffix(static_cast<std::size_t>(rank[k]));
       ++res.name_collisions;
     }
     res.kept.push_back(m[k].c);
@@ -249,19 +306,28 @@ MergeResult merge_components(const std::vector<TileComponent>& comps, const std:
   MergeResult out;
   out.input_rows = comps.size();
   if (comps.empty()) return out;
-  // Scatter: (partition pixel, component index) pairs, unique, sorted.
-  std::vector<std::vector<std::int64_t>> parts(comps.size());
+  // Scatter: (partition pixel, component index) pairs, unique, sorted. One disc
+  // query per distinct fine pixel (partitions_of_fine).
+  const int fshift = 2 * (kSortOrder - fine_order(o));
+  std::vector<std::int64_t> fine(comps.size());
   oneapi::tbb::parallel_for(std::size_t{0}, comps.size(), [&](std::size_t i) {
-    parts[i] = partitions_of(comps[i].ra_deg, comps[i].dec_deg, o);
+    fine[i] = sky_sort_key(comps[i].ra_deg, comps[i].dec_deg) >> fshift;
+  });
+  std::vector<std::int64_t> distinct = fine;
+  oneapi::tbb::parallel_sort(distinct.begin(), distinct.end());
+  distinct.erase(std::unique(distinct.begin(), distinct.end()), distinct.end());
+  std::vector<std::vector<std::int64_t>> parts(distinct.size());
+  oneapi::tbb::parallel_for(std::size_t{0}, distinct.size(), [&](std::size_t i) {
+    parts[i] = partitions_of_fine(distinct[i], o);
   });
   std::vector<std::pair<std::int64_t, std::size_t>> pairs;
-  std::size_t total = 0;
-  for (const auto& p : parts) total += p.size();
-  pairs.reserve(total);
-  for (std::size_t i = 0; i < comps.size(); ++i)
-    for (auto px : parts[i]) pairs.emplace_back(px, i);
+  pairs.reserve(comps.size() * 2);
+  for (std::size_t i = 0; i < comps.size(); ++i) {
+    const auto f = static_cast<std::size_t>(std::lower_bound(distinct.begin(), distinct.end(), fine[i]) - distinct.begin());
+    for (auto px : parts[f]) pairs.emplace_back(px, i);
+  }
   parts.clear();
-  parts.shrink_to_fit();
+  fine.clear();
   oneapi::tbb::parallel_sort(pairs.begin(), pairs.end());  // keys unique: deterministic
 
   std::vector<std::pair<std::size_t, std::size_t>> ranges;  // [begin, end) per partition

@@ -49,6 +49,11 @@ std::size_t nearest_tile(const std::vector<SkyPoint>& centres, const SkyPoint& p
 /// gives 132500.0, not 132459.9. Requires finite values and |Dec| <= 90.
 std::string designation(const std::string& prefix, double ra_deg, double dec_deg);
 
+/// An integer that two positions share exactly when their designations (with
+/// one prefix) are equal: (t * 2 + [Dec < 0]) * 324001 + |Dec| arcsec, with t
+/// the RA in truncated tenths of a second of time.
+std::int64_t designation_key(double ra_deg, double dec_deg);
+
 /// Collision suffix for rank `rank` (0-based) among components that share one
 /// designation, in catalogue order: a, b, ..., z, aa, ab, ... A designation
 /// held by a single component gets no suffix.
