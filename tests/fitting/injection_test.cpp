@@ -91,6 +91,33 @@ TEST(Injection, PointSourceNormalisedResidualsAndFluxScale) {
     EXPECT_LE(split_ic, static_cast<int>(0.01 * cutouts.size()));
   }
 
+  // Shape fixed to the beam (the mode for unresolved sources): position and peak
+  // errors describe the scatter too (same window and reasoning as below).
+  {
+    skerry::FitOptions o;
+    o.fix_shape_to_beam = true;
+    const auto fixed_fits = skerry::fit_islands(cutouts, o);
+    std::vector<double> fp[3][3];
+    for (std::size_t k = 0; k < fixed_fits.size(); ++k) {
+      if (fixed_fits[k].components.size() != 1) continue;
+      const skerry::SkyComponent s = skerry::measure_on_sky(fixed_fits[k].components[0], sky, kBeam, {});
+      const Eigen::Vector2d off = fittest::sky_offset_arcsec(truth[k].ra, truth[k].dec, s.ra_deg, s.dec_deg);
+      const int b = static_cast<int>(k % 3);
+      fp[b][0].push_back(off(0) / s.ra_err_arcsec);
+      fp[b][1].push_back(off(1) / s.dec_err_arcsec);
+      fp[b][2].push_back((s.peak_jy_per_beam - truth[k].s_int) / s.peak_err_jy_per_beam);
+    }
+    for (int b = 0; b < 3; ++b)
+      for (int p = 0; p < 3; ++p) {
+        ASSERT_GE(fp[b][p].size(), 1000u);
+        const double rs = fittest::robust_std(fp[b][p]);
+        std::printf("shape fixed, true SNR [%g, %g): %s robust std %.3f\n", bins[b][0], bins[b][1],
+                    p == 0 ? "ra" : p == 1 ? "dec" : "peak", rs);
+        EXPECT_GE(rs, 0.9);
+        EXPECT_LE(rs, 1.1);
+      }
+  }
+
   enum { kRa, kDec, kPeak, kSint, kMaj, kMin, kNPar };
   const char* names[kNPar] = {"ra", "dec", "peak", "s_int", "maj", "min"};
   std::vector<double> pulls[3][kNPar], condon[3][kNPar];
