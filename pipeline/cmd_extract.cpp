@@ -28,6 +28,7 @@
 #include <cstdio>
 #include <cstring>
 #include <filesystem>
+#include <future>
 #include <iostream>
 #include <sstream>
 
@@ -371,12 +372,12 @@ struct Geometry {
   double beam_maj_pix = 0.0;      ///< major FWHM [pix]
 };
 
-std::optional<Geometry> geometry_at(const SkyImage& img, double x, double y) {
+std::optional<Geometry> geometry_at(const SkyImage& img, const Beam& beam, double x, double y) {
   auto lg = local_geometry(*img.wcs, x, y);
   if (!lg) return std::nullopt;
   Geometry g;
   g.local = *lg;
-  g.beam_cov_pix = lg->sky_cov_to_pixel(ellipse_to_cov(to_ellipse(img.beam)));
+  g.beam_cov_pix = lg->sky_cov_to_pixel(ellipse_to_cov(to_ellipse(beam)));
   const double det = g.beam_cov_pix.determinant();
   if (!(det > 0.0) || !std::isfinite(det)) return std::nullopt;
   g.beam_area_pix = 2.0 * kPi * std::sqrt(det);
@@ -390,36 +391,43 @@ std::optional<Geometry> geometry_at(const SkyImage& img, double x, double y) {
 
 /// BPA in a header is measured from the north of the image's own frame (FITS
 /// beam keywords, REF-FITS-03; common practice). Catalogue angles are east of
-/// ICRS north, so for a Galactic image the beam is turned by the ICRS position
-/// angle of Galactic north at the image centre. That direction is found in the
-/// pixel frame by reading the same header with the longitude/latitude axes
-/// taken as a plain (RA, Dec) frame (the native +latitude direction), then its
-/// ICRS PA comes from the real WCS. The rotation varies across a field by the
-/// convergence of the two frames' meridians (negligible over one image at
-/// radio resolutions; common practice to use one beam per image).
-Beam beam_in_icrs(const SkyImage& sky) {
-  if (sky.frame != "GALACTIC") return sky.beam;
-  std::string h = sky.wcs_header;
-  for (auto [from, to] : {std::pair<const char*, const char*>{"'GLON-", "'RA---"}, {"'GLAT-", "'DEC--"}}) {
-    for (std::size_t pos = h.find(from); pos != std::string::npos; pos = h.find(from, pos + 1))
-      h.replace(pos, std::strlen(from), to);
+/// ICRS north, so for a Galactic image the beam is turned, at each position, by
+/// the ICRS position angle of Galactic north there. That direction is found in
+/// the pixel frame by reading the same header with the longitude/latitude axes
+/// taken as a plain (RA, Dec) frame (the native +latitude direction); its ICRS
+/// PA comes from the real WCS. Other frames: the beam as read.
+class SkyBeam {
+ public:
+  SkyBeam(const SkyImage& sky, bool header_beam) : sky_(sky), beam_(sky.beam) {
+    if (!header_beam || sky.frame != "GALACTIC") return;
+    std::string h = sky.wcs_header;
+    for (auto [from, to] : {std::pair<const char*, const char*>{"'GLON-", "'RA---"}, {"'GLAT-", "'DEC--"}}) {
+      for (std::size_t pos = h.find(from); pos != std::string::npos; pos = h.find(from, pos + 1))
+        h.replace(pos, std::strlen(from), to);
+    }
+    try {
+      native_ = wcs_from_header(h);
+    } catch (const std::exception& e) {
+      throw InputError(sky.path, std::string("cannot turn the Galactic beam PA into ICRS: ") + e.what());
+    }
   }
-  const double cx = 0.5 * (static_cast<double>(sky.pixels.cols()) - 1.0);
-  const double cy = 0.5 * (static_cast<double>(sky.pixels.rows()) - 1.0);
-  std::shared_ptr<const PixelSky> native;
-  try {
-    native = wcs_from_header(h);
-  } catch (const std::exception& e) {
-    throw InputError(sky.path, std::string("cannot turn the Galactic beam PA into ICRS: ") + e.what());
+  /// The beam with its PA east of ICRS north at 0-based pixel (x, y).
+  std::optional<Beam> at(double x, double y) const {
+    if (!native_) return beam_;
+    const auto ln = local_geometry(*native_, x, y);
+    const auto li = local_geometry(*sky_.wcs, x, y);
+    if (!ln || !li) return std::nullopt;
+    const Eigen::Vector2d north_pix = ln->jac_arcsec_per_pix.inverse() * Eigen::Vector2d(0.0, 1.0);
+    Beam b = beam_;
+    b.pa_deg = wrap_pa_180(b.pa_deg + li->pa_of_pixel_direction_deg(north_pix(0), north_pix(1)));
+    return b;
   }
-  const auto ln = local_geometry(*native, cx, cy);
-  const auto li = local_geometry(*sky.wcs, cx, cy);
-  if (!ln || !li) throw InputError(sky.path, "cannot turn the Galactic beam PA into ICRS at the image centre");
-  const Eigen::Vector2d north_pix = ln->jac_arcsec_per_pix.inverse() * Eigen::Vector2d(0.0, 1.0);
-  Beam b = sky.beam;
-  b.pa_deg = wrap_pa_180(b.pa_deg + li->pa_of_pixel_direction_deg(north_pix(0), north_pix(1)));
-  return b;
-}
+
+ private:
+  const SkyImage& sky_;
+  Beam beam_;
+  std::shared_ptr<const PixelSky> native_;
+};
 
 ImageF read_map(const std::string& path, const SkyImage& like, const char* what) {
   ImageReadOptions o;
@@ -513,24 +521,30 @@ int run_extract(const std::vector<std::string>& args) {
   record.set_threads(threads.threads());
 
   // ---- read ------------------------------------------------------------------
+  // The image's SHA-256 (run record, table meta) is computed in a background
+  // thread while the image is read and measured.
+  std::future<std::string> image_sha = std::async(std::launch::async, [&] {
+    std::error_code ec;
+    return fs::is_regular_file(cfg.image, ec) ? sha256_file(cfg.image) : std::string();
+  });
   StageTimer t_read(record, "read");
   SkyImage sky = read_sky_image(cfg.image, cfg.read);
   if (!sky.beam.valid())
     throw InputError(cfg.image, "restoring beam is degenerate (BMAJ/BMIN must be positive, BMIN <= BMAJ)");
-  if (!cfg.read.beam_override) sky.beam = beam_in_icrs(sky);
+  const SkyBeam sky_beam(sky, !cfg.read.beam_override.has_value());
   const long nx = sky.pixels.cols(), ny = sky.pixels.rows();
+  if (const auto b = sky_beam.at(0.5 * (nx - 1), 0.5 * (ny - 1))) sky.beam = *b;  // the image's beam at its centre
   {
     bool any = false;
     for (long i = 0; i < sky.pixels.size() && !any; ++i) any = std::isfinite(sky.pixels.data()[i]);
     if (!any) throw NoDataError(cfg.image, "every pixel is blank (NaN or BLANK)");
   }
-  const auto centre_geom = geometry_at(sky, 0.5 * (nx - 1), 0.5 * (ny - 1));
+  const auto centre_geom = geometry_at(sky, sky.beam, 0.5 * (nx - 1), 0.5 * (ny - 1));
   if (!centre_geom)
     throw InputError(cfg.image, "the image centre has no sky position or the beam has no extent in pixels");
   if (centre_geom->beam_fwhm_pix < 1.0)
     throw InputError(cfg.image, "restoring beam spans " + std::to_string(centre_geom->beam_fwhm_pix) +
                                     " pixels (FWHM): the image is undersampled (need >= 1 pixel per beam)");
-  record.add_input("image", cfg.image);
   ImageF pb;
   if (!cfg.primary_beam.empty()) {
     pb = read_primary_beam(cfg.primary_beam, sky);
@@ -617,11 +631,13 @@ int run_extract(const std::vector<std::string>& args) {
   StageTimer t_cut(record, "cutouts");
   std::vector<IslandCutout> cutouts(n_isl);
   std::vector<Geometry> island_geom(n_isl);
+  std::vector<Beam> island_beam(n_isl, sky.beam);
   std::vector<double> island_flux_err(n_isl, NAN), island_mean_rms(n_isl, NAN);
   oneapi::tbb::parallel_for(oneapi::tbb::blocked_range<std::size_t>(0, n_isl, 8), [&](const auto& range) {
     for (std::size_t k = range.begin(); k != range.end(); ++k) {
       const Island& is = isl.islands[k];
-      auto g = geometry_at(sky, is.peak_x, is.peak_y);
+      if (const auto b = sky_beam.at(is.peak_x, is.peak_y)) island_beam[k] = *b;
+      auto g = geometry_at(sky, island_beam[k], is.peak_x, is.peak_y);
       island_geom[k] = g ? *g : *centre_geom;
       const Geometry& gg = island_geom[k];
       // Margin: free pixels within fit.margin_beam_sigma beam sigmas, plus one.
@@ -719,7 +735,7 @@ int run_extract(const std::vector<std::string>& args) {
             flags |= kFlagBelowPbCut;
           }
         }
-        const SkyComponent sc = measure_on_sky(pc, *sky.wcs, sky.beam, cfg.sky, std::isfinite(pbv) ? pbv : 1.0);
+        const SkyComponent sc = measure_on_sky(pc, *sky.wcs, island_beam[k], cfg.sky, std::isfinite(pbv) ? pbv : 1.0);
         r.ra_deg = nan_if(!sc.valid, sc.ra_deg);
         r.dec_deg = nan_if(!sc.valid, sc.dec_deg);
         r.ra_err_arcsec = sc.ra_err_arcsec;
@@ -842,12 +858,13 @@ int run_extract(const std::vector<std::string>& args) {
 
   // ---- write ------------------------------------------------------------------------------
   StageTimer t_write(record, "write");
+  const std::string image_sha256 = record.add_input("image", cfg.image, image_sha.get());
   Provenance meta = {
       {"tool", "skerry extract"},
       {"version", SKERRY_VERSION},
       {"git_revision", SKERRY_GIT_REVISION},
       {"input_image", fs::path(cfg.image).filename().string()},
-      {"input_image_sha256", sha256_file(cfg.image)},
+      {"input_image_sha256", image_sha256},
       {"image_frame", sky.frame},
       {"beam_maj_arcsec", std::to_string(sky.beam.maj_arcsec)},
       {"beam_min_arcsec", std::to_string(sky.beam.min_arcsec)},

@@ -140,15 +140,17 @@ void RunRecord::set_configuration(const std::map<std::string, std::string>& reso
   config_file_ = config_file;
 }
 
-void RunRecord::add_input(const std::string& role, const std::string& path) {
+std::string RunRecord::add_input(const std::string& role, const std::string& path,
+                                 const std::string& sha256) {
   Input in;
   in.role = role;
   in.path = path;
   std::error_code ec;
   in.bytes = std::filesystem::file_size(path, ec);
   if (ec) throw InputError(path, "cannot read file size: " + ec.message());
-  in.sha256 = sha256_file(path);
-  inputs_.push_back(std::move(in));
+  in.sha256 = sha256.empty() ? sha256_file(path) : sha256;
+  inputs_.push_back(in);
+  return in.sha256;
 }
 
 void RunRecord::add_output(const std::string& path) { outputs_.push_back(path); }

@@ -23,8 +23,9 @@ class RunRecord {
 
   void set_configuration(const std::map<std::string, std::string>& resolved,
                          const std::string& config_file);
-  /// Records the file's size and SHA-256 under `role` ("image", "primary_beam", ...).
-  void add_input(const std::string& role, const std::string& path);
+  /// Records the file's size and SHA-256 under `role` ("image", "primary_beam", ...);
+  /// returns the SHA-256. `sha256` may be given when already computed.
+  std::string add_input(const std::string& role, const std::string& path, const std::string& sha256 = "");
   void add_output(const std::string& path);
   void set_count(const std::string& key, std::int64_t value);
   void set_value(const std::string& key, const std::string& value);
