@@ -76,6 +76,8 @@ class NodeGrid {
     });
   }
   std::size_t mx() const { return nodes_x_.size(); }
+  const std::vector<long>& nodes_x() const { return nodes_x_; }
+  const std::vector<long>& nodes_y() const { return nodes_y_; }
   std::size_t my() const { return nodes_y_.size(); }
   double node_xi(std::size_t i, std::size_t j) const { return xi_[j * mx() + i]; }
   double node_eta(std::size_t i, std::size_t j) const { return eta_[j * mx() + i]; }
@@ -120,15 +122,17 @@ class NodeGrid {
   std::vector<char> ok_;
 };
 
-/// Great-circle distance r from tangent-plane radius rho = tan r (TAN about the
-/// pointing centre): r = atan(rho), by its series rho - rho^3/3 + rho^5/5 where
-/// rho < 0.05 (truncation < rho^7/7 < 1.2e-10 rho) and by atan beyond.
-double radius_from_tan(double rho) {
-  if (rho < 0.05) {
-    const double r2 = rho * rho;
-    return rho * (1.0 - r2 / 3.0 + r2 * r2 / 5.0);
+/// Squared great-circle distance r^2 from the squared tangent-plane radius
+/// rho^2, rho = tan r (TAN about the pointing centre): r = atan(rho) by its series
+/// rho (1 - rho^2/3 + rho^4/5) where rho < 0.05 (truncation < rho^7/7, relative
+/// < 1.2e-10) and by atan beyond.
+double radius2_from_tan2(double rho2) {
+  if (rho2 < 0.0025) {
+    const double f = 1.0 - rho2 / 3.0 + rho2 * rho2 / 5.0;
+    return rho2 * f * f;
   }
-  return std::atan(rho);
+  const double r = std::atan(std::sqrt(rho2));
+  return r * r;
 }
 
 }  // namespace
@@ -166,8 +170,7 @@ BandImage simulate_band(const SkyModel& model, const PixelSky& sky, const BandOp
       pb = 1.0;
       return true;
     }
-    const double r = radius_from_tan(std::hypot(xi, eta));
-    pb = std::exp(-4.0 * kLn2 * r * r / (pb_fwhm_rad * pb_fwhm_rad));
+    pb = std::exp(-4.0 * kLn2 * radius2_from_tan2(xi * xi + eta * eta) / (pb_fwhm_rad * pb_fwhm_rad));
     return true;
   };
 
@@ -200,29 +203,57 @@ BandImage simulate_band(const SkyModel& model, const PixelSky& sky, const BandOp
   if (has_pb) out.primary_beam = ImageF::Zero(ny, nx);
   if (o.keep_model) out.model = ImageF::Zero(ny, nx);
 
-  // Per pixel: pb, noise scaling, background, blanks.
+  // Per pixel: pb, noise scaling, background, blanks. Each row first interpolates
+  // the node values along y (the same bilinear interpolant as pb_at), then along x.
   const float nan = std::numeric_limits<float>::quiet_NaN();
+  const double pb_k = has_pb ? 4.0 * kLn2 / (pb_fwhm_rad * pb_fwhm_rad) : 0.0;
   tbb::parallel_for(tbb::blocked_range<long>(0, ny, 8), [&](const tbb::blocked_range<long>& r) {
+    const std::size_t mx = nodes.mx();
+    std::vector<double> rxi(mx), reta(mx), rbg(mx);
+    std::vector<char> rok(mx);
     for (long y = r.begin(); y != r.end(); ++y) {
-      for (long x = 0; x < nx; ++x) {
+      std::size_t j;
+      double ty;
+      NodeGrid::locate(nodes.nodes_y(), static_cast<double>(y), j, ty);
+      const std::size_t j1 = std::min(j + 1, nodes.my() - 1);
+      for (std::size_t i = 0; i < mx; ++i) {
+        rok[i] = nodes.node_ok(i, j) && nodes.node_ok(i, j1);
+        rxi[i] = (1 - ty) * nodes.node_xi(i, j) + ty * nodes.node_xi(i, j1);
+        reta[i] = (1 - ty) * nodes.node_eta(i, j) + ty * nodes.node_eta(i, j1);
+        if (has_bg) rbg[i] = (1 - ty) * bg_nodes[j * mx + i] + ty * bg_nodes[j1 * mx + i];
+      }
+      const bool border_row = y < o.blank_border_pix || y >= ny - o.blank_border_pix;
+      float* img = out.image.data() + static_cast<std::size_t>(y) * nx;
+      const std::vector<long>& nxs = nodes.nodes_x();
+      const std::size_t ncell = mx > 1 ? mx - 1 : 1;
+      for (std::size_t i = 0; i < ncell; ++i) {
+        const std::size_t i1 = std::min(i + 1, mx - 1);
+        const long xa = nxs[i], xb = mx > 1 ? nxs[i1] : nxs[i];
+        const long x_end = (i + 1 == ncell) ? nx : xb;  // the last cell includes its right node
+        const double inv = xb > xa ? 1.0 / static_cast<double>(xb - xa) : 0.0;
+      for (long x = xa; x < x_end; ++x) {
+        const double tx = static_cast<double>(x - xa) * inv;
+        const bool ok = rok[i] && rok[i1];
         double pb = 1.0;
-        const bool ok = pb_at(static_cast<double>(x), static_cast<double>(y), pb);
-        float& px = out.image(y, x);
+        if (has_pb && ok) {
+          const double xi = (1 - tx) * rxi[i] + tx * rxi[i1];
+          const double eta = (1 - tx) * reta[i] + tx * reta[i1];
+          pb = std::exp(-pb_k * radius2_from_tan2(xi * xi + eta * eta));
+        }
+        float& px = img[x];
         if (has_pb) out.primary_beam(y, x) = ok ? static_cast<float>(pb) : nan;
         if (ok && o.pb_corrected && has_pb) px = static_cast<float>(px / pb);
         if (has_bg) {
-          double b = 0.0;
-          nodes.interpolate(static_cast<double>(x), static_cast<double>(y),
-                            [&](std::size_t i, std::size_t j) { return bg_nodes[j * nodes.mx() + i]; }, b);
-          px += static_cast<float>(b);
-          if (o.keep_background) out.background(y, x) = static_cast<float>(b);
+          const double bgv = (1 - tx) * rbg[i] + tx * rbg[i1];
+          px += static_cast<float>(bgv);
+          if (o.keep_background) out.background(y, x) = static_cast<float>(bgv);
         }
-        const bool border = x < o.blank_border_pix || y < o.blank_border_pix ||
-                            x >= nx - o.blank_border_pix || y >= ny - o.blank_border_pix;
+        const bool border = border_row || x < o.blank_border_pix || x >= nx - o.blank_border_pix;
         if (!ok || border || (has_pb && pb < o.blank_below_pb)) {
           px = nan;
           if (o.keep_model) out.model(y, x) = nan;
         }
+      }
       }
     }
   });

@@ -117,6 +117,12 @@ ImageF correlated_noise(long nx, long ny, const Eigen::Matrix2d& c, double rms,
   const double c00 = c(0, 0), c01 = 0.5 * (c(0, 1) + c(1, 0)), c11 = c(1, 1);
   const double pi2 = kPi * kPi;
   std::vector<double> power(static_cast<std::size_t>(nkx), 0.0);  // sum of H^2, full-grid weights
+  std::vector<double> hy(static_cast<std::size_t>(ny));
+  for (long ky = 0; ky < ny; ++ky) {
+    const long iy = ky <= ny / 2 ? ky : ky - ny;
+    const double fy = static_cast<double>(iy) / static_cast<double>(ny);
+    hy[static_cast<std::size_t>(ky)] = std::exp(-pi2 * fy * fy * c11);
+  }
 
   // Pass 1: draw each spectrum column and transform it along y.
   tbb::parallel_for(tbb::blocked_range<long>(0, nkx, 8), [&](const tbb::blocked_range<long>& r) {
@@ -127,17 +133,30 @@ ImageF correlated_noise(long nx, long ny, const Eigen::Matrix2d& c, double rms,
       const double weight = edge ? 1.0 : 2.0;  // modes kx and -kx of the full grid
       const double fx = static_cast<double>(kx) / static_cast<double>(nx);
       fftwf_complex* col = S + static_cast<std::size_t>(kx) * pitch;
+      // H = exp(-pi^2 (fx^2 c00 + 2 fx fy c01 + fy^2 c11)) factorised as
+      //   hx * hy(iy) * r^iy,  hx = exp(-pi^2 fx^2 c00), hy = exp(-pi^2 fy^2 c11),
+      //   r = exp(-2 pi^2 fx c01 / ny)
+      // with r^iy by repeated multiplication (relative rounding < ny * 1.1e-16).
+      const double hx = std::exp(-pi2 * fx * fx * c00);
+      const double r_pos = std::exp(-2.0 * pi2 * fx * c01 / static_cast<double>(ny));
+      double cross = 1.0;  // r^iy
+      // The factors stay finite only while |pi^2 fx c01| is moderate (huge beams
+      // with a large cross term): otherwise one exp per mode.
+      const bool factorised = std::abs(pi2 * fx * c01) < 200.0;
       double p = 0.0;
       for (long ky = 0; ky < ny; ++ky) {
         const long iy = ky <= ny / 2 ? ky : ky - ny;
+        // iy = 0, 1, ..., ny/2, then -(ny - ny/2 - 1), ..., -1: restart at the jump.
+        if (ky == ny / 2 + 1) cross = std::pow(r_pos, static_cast<double>(iy));
         const double fy = static_cast<double>(iy) / static_cast<double>(ny);
-        const double q = fx * fx * c00 + 2.0 * fx * fy * c01 + fy * fy * c11;
-        const double h = std::exp(-pi2 * q);
+        const double h = factorised ? hx * hy[static_cast<std::size_t>(ky)] * cross
+                                    : std::exp(-pi2 * (fx * fx * c00 + 2.0 * fx * fy * c01 + fy * fy * c11));
         double g1, g2;
         rng.normal_pair(g1, g2);
         col[ky][0] = static_cast<float>(amp * h * g1);
         col[ky][1] = static_cast<float>(amp * h * g2);
         p += weight * h * h;
+        cross *= r_pos;
       }
       power[static_cast<std::size_t>(kx)] = p;
       fftwf_execute_dft(col_plan->get(), col, col);

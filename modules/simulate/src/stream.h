@@ -7,9 +7,10 @@
 /// that paper's reference code, from memory). Keys are hashed with the same
 /// finaliser, so streams of neighbouring indices are unrelated. The result does
 /// not depend on which thread draws a stream, only on its key.
-/// Normal deviates by the Box-Muller transform (Box & Muller 1958, Ann. Math.
-/// Stat. 29, 610), written here so that the numbers do not depend on the standard
-/// library's distribution implementations.
+/// Normal deviates by Marsaglia's polar form of the Box-Muller transform (Marsaglia
+/// & Bray 1964, SIAM Review 6, 260; Box & Muller 1958, Ann. Math. Stat. 29, 610),
+/// written here so that the numbers do not depend on the standard library's
+/// distribution implementations.
 #include <cmath>
 #include <cstdint>
 
@@ -48,12 +49,18 @@ class Stream {
   double uniform() { return static_cast<double>(next() >> 11) * 0x1.0p-53; }
   /// Uniform in (0, 1].
   double uniform_open0() { return static_cast<double>((next() >> 11) + 1) * 0x1.0p-53; }
-  /// Two independent standard normal deviates (Box-Muller).
+  /// Two independent standard normal deviates (polar method: (u, v) uniform in
+  /// the unit disc, s = u^2 + v^2, then u, v times sqrt(-2 ln s / s)).
   void normal_pair(double& g1, double& g2) {
-    const double r = std::sqrt(-2.0 * std::log(uniform_open0()));
-    const double t = 2.0 * kPi * uniform();
-    g1 = r * std::cos(t);
-    g2 = r * std::sin(t);
+    for (;;) {
+      const double u = 2.0 * uniform() - 1.0, v = 2.0 * uniform() - 1.0;
+      const double s = u * u + v * v;
+      if (s >= 1.0 || s == 0.0) continue;
+      const double f = std::sqrt(-2.0 * std::log(s) / s);
+      g1 = u * f;
+      g2 = v * f;
+      return;
+    }
   }
   double normal() {
     double a, b;
