@@ -18,7 +18,7 @@ const std::vector<FlagInfo>& flag_table() {
       {kFlagNearBright, "near_bright",
        "a component catalogue.bright_ratio times brighter lies within catalogue.bright_radius_beams (possible artefact)"},
       {kFlagFitFailed, "fit_failed",
-       "Gaussian fit failed or was rejected; values are moment-based measurements"},
+       "Gaussian fit did not converge (values: best parameters found) or failed (values: island moments)"},
       {kFlagUnresolved, "unresolved", "not resolved: the deconvolved size is an upper limit"},
       {kFlagBelowPbCut, "below_pb_cut", "primary-beam response at the centre below image.pb_cut"},
       {kFlagFewerComponents, "fewer_components",

@@ -61,7 +61,7 @@ namespace skerry {
 inline constexpr std::uint32_t kFlagNearEdge = 1u << 0;        ///< centre within edge_margin_beams of the image edge (island: touches the edge)
 inline constexpr std::uint32_t kFlagNearBlank = 1u << 1;       ///< a blank (NaN) pixel within blank_margin_beams of the centre (island: touches a blank pixel)
 inline constexpr std::uint32_t kFlagNearBright = 1u << 2;      ///< a component bright_ratio times brighter (peak) lies within bright_radius_beams: possible artefact
-inline constexpr std::uint32_t kFlagFitFailed = 1u << 3;       ///< Gaussian fit failed or was rejected; values are moment-based measurements
+inline constexpr std::uint32_t kFlagFitFailed = 1u << 3;       ///< fit did not converge (best parameters kept) or failed (moment-based values)
 inline constexpr std::uint32_t kFlagUnresolved = 1u << 4;      ///< not resolved: deconvolved size is an upper limit
 inline constexpr std::uint32_t kFlagBelowPbCut = 1u << 5;      ///< primary-beam response at the centre below the settable cut
 inline constexpr std::uint32_t kFlagFewerComponents = 1u << 6; ///< the island's peaks were fitted with fewer components (the larger model was not justified)
