@@ -162,7 +162,8 @@ t0 = time.perf_counter()
 fmt = {'format': 'ascii.csv'} if ext == '.csv' else {}
 a = Table.read(d + '/a' + ext, **fmt); b = Table.read(d + '/b' + ext, **fmt)
 t_read = time.perf_counter() - t0
-ca = SkyCoord(a['ra_deg'] * u.deg, a['dec_deg'] * u.deg); cb = SkyCoord(b['ra_deg'] * u.deg, b['dec_deg'] * u.deg)
+import numpy as np
+ca = SkyCoord(np.asarray(a['ra_deg']) * u.deg, np.asarray(a['dec_deg']) * u.deg); cb = SkyCoord(np.asarray(b['ra_deg']) * u.deg, np.asarray(b['dec_deg']) * u.deg)
 idx, d2d, _ = ca.match_to_catalog_sky(cb)
 n = int((d2d.arcsec <= 5.0).sum())
 t = time.perf_counter() - t0

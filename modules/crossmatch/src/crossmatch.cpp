@@ -99,6 +99,7 @@ class SkyIndex {
       row_[k] = kr[k].second;
     });
     for (std::size_t k = 0; k < m; ++k) pts_[static_cast<std::size_t>(pos_of_row[static_cast<std::size_t>(rows[k])])] = v[k];
+    build_columns();
   }
 
   std::size_t invalid() const { return invalid_; }
@@ -128,11 +129,15 @@ class SkyIndex {
     const auto M = static_cast<std::uint64_t>(cells_);
     for (std::int64_t ix = lo[0]; ix <= hi[0]; ++ix)
       for (std::int64_t iy = lo[1]; iy <= hi[1]; ++iy) {
-        const std::uint64_t base = (static_cast<std::uint64_t>(ix) * M + static_cast<std::uint64_t>(iy)) * M;
+        const std::uint64_t col = static_cast<std::uint64_t>(ix) * M + static_cast<std::uint64_t>(iy);
+        std::size_t b = 0, e = 0;
+        if (!column_range(col, b, e)) continue;
+        const std::uint64_t base = col * M;
         const std::uint64_t k0 = base + static_cast<std::uint64_t>(lo[2]);
         const std::uint64_t k1 = base + static_cast<std::uint64_t>(hi[2]);
-        auto it = std::lower_bound(keys_.begin(), keys_.end(), k0);
-        for (auto k = static_cast<std::size_t>(it - keys_.begin()); k < keys_.size() && keys_[k] <= k1; ++k) {
+        auto it = std::lower_bound(keys_.begin() + static_cast<std::ptrdiff_t>(b),
+                                   keys_.begin() + static_cast<std::ptrdiff_t>(e), k0);
+        for (auto k = static_cast<std::size_t>(it - keys_.begin()); k < e && keys_[k] <= k1; ++k) {
           const Vec3& p = pts_[k];
           const double dx = p[0] - q[0], dy = p[1] - q[1], dz = p[2] - q[2];
           if (dx * dx + dy * dy + dz * dz <= r2) out.push_back(k);
@@ -142,6 +147,54 @@ class SkyIndex {
   std::int64_t row(std::size_t k) const { return row_[k]; }
 
  private:
+  /// Open-addressing hash of the occupied (ix, iy) columns -> their range of
+  /// sorted points, so a query needs no search over the whole catalogue.
+  struct Slot {
+    std::uint64_t col = ~std::uint64_t{0};
+    std::size_t begin = 0, end = 0;
+  };
+  static std::uint64_t mix(std::uint64_t x) {  // splitmix64 finaliser (Steele et al. 2014)
+    x ^= x >> 30;
+    x *= 0xbf58476d1ce4e5b9ULL;
+    x ^= x >> 27;
+    x *= 0x94d049bb133111ebULL;
+    return x ^ (x >> 31);
+  }
+  void build_columns() {
+    const auto M = static_cast<std::uint64_t>(cells_);
+    std::size_t ncol = 0;
+    for (std::size_t k = 0; k < keys_.size(); ++k)
+      if (k == 0 || keys_[k] / M != keys_[k - 1] / M) ++ncol;
+    std::size_t cap = 16;
+    while (cap < 2 * ncol) cap *= 2;
+    slots_.assign(cap, Slot{});
+    mask_ = cap - 1;
+    for (std::size_t k = 0; k < keys_.size();) {
+      const std::uint64_t col = keys_[k] / M;
+      std::size_t e = k;
+      while (e < keys_.size() && keys_[e] / M == col) ++e;
+      std::size_t h = mix(col) & mask_;
+      while (slots_[h].col != ~std::uint64_t{0}) h = (h + 1) & mask_;
+      slots_[h] = {col, k, e};
+      k = e;
+    }
+  }
+  bool column_range(std::uint64_t col, std::size_t& b, std::size_t& e) const {
+    std::size_t h = mix(col) & mask_;
+    while (true) {
+      const Slot& s = slots_[h];
+      if (s.col == col) {
+        b = s.begin;
+        e = s.end;
+        return true;
+      }
+      if (s.col == ~std::uint64_t{0}) return false;
+      h = (h + 1) & mask_;
+    }
+  }
+  std::vector<Slot> slots_;
+  std::size_t mask_ = 0;
+
   std::vector<std::uint64_t> keys_;
   std::vector<Vec3> pts_;
   std::vector<std::int64_t> row_;
