@@ -75,6 +75,17 @@ WcsPtr new_blank_wcs() {
   return w;
 }
 
+/// Frees the error records WCSLIB attaches to a wcsprm and its parts. WCSLIB 7.12
+/// replaces an old message without freeing it, so records are cleared after every
+/// conversion that reported invalid points (found with LeakSanitizer).
+void clear_wcs_errors(wcsprm* w) {
+  wcserr_clear(&w->err);
+  wcserr_clear(&w->lin.err);
+  wcserr_clear(&w->cel.err);
+  wcserr_clear(&w->cel.prj.err);
+  wcserr_clear(&w->spc.err);
+}
+
 std::string wcs_error_text(const wcsprm* w, int status, const char* what) {
   std::string msg = what;
   if (w && w->err && w->err->msg[0]) {
@@ -169,6 +180,7 @@ class WcslibSky final : public PixelSky {
       s.pix[2 * i + 1] = s.bad[i] ? 1.0 : y[i] + 1.0;
     }
     const int status = wcsp2s(w, static_cast<int>(m), 2, s.pix, s.img, s.phi, s.theta, s.world, s.stat);
+    if (status != 0) clear_wcs_errors(w);
     for (std::size_t i = 0; i < m; ++i) {
       // WCSERR_BAD_PIX (8): some pixels invalid, flagged in stat[].
       const bool ok = !s.bad[i] && (status == 0 || (status == 8 && s.stat[i] == 0)) &&
@@ -192,6 +204,7 @@ class WcslibSky final : public PixelSky {
       s.world[2 * i + lat_] = lat;
     }
     const int status = wcss2p(w, static_cast<int>(m), 2, s.world, s.phi, s.theta, s.img, s.pix, s.stat);
+    if (status != 0) clear_wcs_errors(w);
     for (std::size_t i = 0; i < m; ++i) {
       // WCSERR_BAD_WORLD (9): some positions invalid, flagged in stat[].
       const bool ok = !s.bad[i] && (status == 0 || (status == 9 && s.stat[i] == 0)) &&
@@ -388,8 +401,16 @@ std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
     if (status != 0) throw std::invalid_argument("WCSLIB could not select the celestial axes 1 and 2");
 
     // Translate AIPS-style NCP/GLS and unit spellings (WCSLIB's celfix, unitfix).
-    celfix(sub.get());
+    // celfix runs wcsset itself (whose error record WCSLIB 7.12 can leak), so only
+    // where there is something to translate.
+    auto ends_with = [](const std::string& a, const char* b) {
+      const std::size_t n = std::strlen(b);
+      return a.size() >= n && a.compare(a.size() - n, n, b) == 0;
+    };
+    if (ends_with(ct1, "NCP") || ends_with(ct1, "GLS") || ends_with(ct2, "NCP") || ends_with(ct2, "GLS"))
+      celfix(sub.get());
     unitfix(0, sub.get());
+    clear_wcs_errors(sub.get());
     status = wcsset(sub.get());
     if (status != 0)
       throw std::invalid_argument(wcs_error_text(sub.get(), status, "invalid celestial WCS"));

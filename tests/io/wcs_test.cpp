@@ -577,6 +577,13 @@ TEST(WcsErrors, NoCelestialAxes) {
   expect_throw(header({{"NAXIS", "3"}, {"NAXIS1", "10"}, {"NAXIS2", "10"}, {"NAXIS3", "10"},
                        {"CTYPE1", "'RA---SIN'"}, {"CTYPE2", "'FREQ'"}, {"CTYPE3", "'DEC--SIN'"}}),
                "celestial");
+  // A singular linear transform and an unknown projection code: WCSLIB's reason.
+  expect_throw(header({{"NAXIS", "2"}, {"CTYPE1", "'RA---SIN'"}, {"CTYPE2", "'DEC--SIN'"},
+                       {"CDELT1", "0.0"}, {"CDELT2", "0.001"}}),
+               "invalid celestial WCS");
+  expect_throw(header({{"NAXIS", "2"}, {"CTYPE1", "'RA---QQQ'"}, {"CTYPE2", "'DEC--QQQ'"},
+                       {"CDELT1", "-0.001"}, {"CDELT2", "0.001"}}),
+               "invalid celestial WCS");
   expect_throw("SIMPLE  = T", "80-character");
   expect_throw("", "80-character");
 }
