@@ -196,8 +196,13 @@ struct BandImage {
   std::vector<BandSource> sources;  ///< one per sky source, in id order (outside ones flagged)
 };
 
-/// Render `model` on the grid of `sky` for one band. Throws std::invalid_argument
-/// naming the bad option.
+/// Render `model` on the grid of `sky` for one band. The noise correlation uses the
+/// beam's pixel-frame shape at the grid centre for the whole grid (a flat-sky
+/// approximation); sources use the local Jacobian at their own centres. pb and the
+/// background are exact on nodes every 16 pixels and bilinear in between (pb
+/// relative error < 1e-6 for fields of a few degrees). Sources whose centre lies
+/// off the grid still add their wings (flagged kSimOutsideImage). Throws
+/// std::invalid_argument naming the bad option.
 BandImage simulate_band(const SkyModel& model, const PixelSky& sky, const BandOptions& options,
                         std::uint64_t seed);
 
