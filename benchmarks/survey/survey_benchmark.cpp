@@ -54,6 +54,7 @@ int run(const std::vector<std::string>& args, const std::string& log) {
   std::vector<char*> argv;
   for (auto& a : full) argv.push_back(a.data());
   argv.push_back(nullptr);
+  std::fflush(stdout);  // else the child inherits and re-prints buffered output
   pid_t pid = fork();
   if (pid == 0) {
     FILE* f = std::freopen(log.c_str(), "a", stdout);
