@@ -23,6 +23,7 @@
 
 #include <cmath>
 #include <cstring>
+#include <filesystem>
 #include <fstream>
 #include <memory>
 #include <sstream>
@@ -284,6 +285,19 @@ Table read_fits_table(const std::string& path) {
   fits_get_num_cols(f.get(), &ncols, &status);
   fits_get_num_rowsll(f.get(), &nrows, &status);
   check("cannot read the table size");
+  {
+    // A header may claim more rows than the file holds: refuse before allocating.
+    LONGLONG naxis1 = 0;
+    int st = 0;
+    fits_read_key(f.get(), TLONGLONG, "NAXIS1", &naxis1, nullptr, &st);
+    fits_clear_errmsg();
+    std::error_code ec;
+    const auto fsize = std::filesystem::file_size(path, ec);
+    if (!ec && naxis1 > 0 && nrows > 0 &&
+        (static_cast<long double>(naxis1) * static_cast<long double>(nrows) > static_cast<long double>(fsize)))
+      throw InputError(path, "the table header claims " + std::to_string(nrows) + " rows of " +
+                                 std::to_string(naxis1) + " bytes, more than the file holds (truncated file?)");
+  }
   Table t;
   t.name = read_str_key(f.get(), "EXTNAME");
   std::string skipped;

@@ -207,6 +207,20 @@ TEST(VOTable, ClearErrors) {
             std::string::npos);
 }
 
+TEST(VOTable, NestedFieldsDoNotConfuseTheReader) {
+  // Malformed nesting (a FIELD inside a FIELD, many of them, each with a
+  // DESCRIPTION after the inner one) must give a table or a clean error.
+  std::string s = "<VOTABLE><RESOURCE><TABLE>";
+  for (int i = 0; i < 200; ++i) s += "<FIELD name=\"f" + std::to_string(i) + "\" datatype=\"double\">";
+  for (int i = 0; i < 200; ++i) s += "<DESCRIPTION>d</DESCRIPTION></FIELD>";
+  s += "<DATA><TABLEDATA><TR>";
+  for (int i = 0; i < 200; ++i) s += "<TD>1</TD>";
+  s += "</TR></TABLEDATA></DATA></TABLE></RESOURCE></VOTABLE>";
+  Table t = parse_votable(s);
+  EXPECT_EQ(t.ncols(), 200u);
+  EXPECT_EQ(t.rows(), 1u);
+}
+
 TEST(Codecs, NeverCrashOnArbitraryBytes) {
   // Mutated valid documents and random bytes: every outcome is a table or a
   // TableParseError (one line). Fixed seed; 3000 cases per codec.

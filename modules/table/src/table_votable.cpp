@@ -5,6 +5,7 @@
 // CDATA, processing instructions and a DOCTYPE without internal subset. It is
 // iterative (no recursion), so deep nesting cannot overflow the stack.
 #include <cmath>
+#include <climits>
 #include <cstdint>
 #include <string>
 #include <string_view>
@@ -279,7 +280,8 @@ Table parse_votable(std::string_view text) {
   std::string td_text;
   std::string desc_text;
   bool in_field_desc = false;
-  FieldDef* cur_field = nullptr;
+  // Index (not pointer) of the FIELD being read: fields may reallocate.
+  std::size_t cur_field = SIZE_MAX;
 
   auto start_data = [&]() {
     if (cols.size() == fields.size() && !cols.empty()) return;
@@ -478,10 +480,10 @@ Table parse_votable(std::string_view text) {
                tag_line);
         in_tr = false;
       } else if (name == "DESCRIPTION" && in_field_desc) {
-        if (cur_field) cur_field->description = std::string(trim(desc_text));
+        if (cur_field < fields.size()) fields[cur_field].description = std::string(trim(desc_text));
         in_field_desc = false;
       } else if (name == "FIELD") {
-        cur_field = nullptr;
+        cur_field = SIZE_MAX;
       } else if (name == "TABLE" && in_table && stack.size() == table_depth) {
         in_table = false;
         table_done = true;
@@ -527,14 +529,14 @@ Table parse_votable(std::string_view text) {
         if (const std::string* v = attr_value(attrs, "ID")) f.name = *v;
       if (fields.size() >= 100000) fail("too many FIELDs", tag_line);
       fields.push_back(std::move(f));
-      cur_field = self_close ? nullptr : &fields.back();
-    } else if (name == "DESCRIPTION" && cur_field && stack.size() >= 2 && stack[stack.size() - 2] == "FIELD") {
+      cur_field = self_close ? SIZE_MAX : fields.size() - 1;
+    } else if (name == "DESCRIPTION" && cur_field < fields.size() && stack.size() >= 2 && stack[stack.size() - 2] == "FIELD") {
       in_field_desc = !self_close;
       desc_text.clear();
-    } else if (name == "VALUES" && cur_field) {
+    } else if (name == "VALUES" && cur_field < fields.size()) {
       if (const std::string* v = attr_value(attrs, "null")) {
-        cur_field->null_value = *v;
-        cur_field->has_null = true;
+        fields[cur_field].null_value = *v;
+        fields[cur_field].has_null = true;
       }
     } else if ((name == "INFO" || name == "PARAM") && !in_data) {
       const std::string* k = attr_value(attrs, "name");
