@@ -3,7 +3,8 @@
 // forms of Calabretta & Greisen 2002 (A&A 395, 1077, "Paper II") written out in
 // io_test_util.h, ERFA's frame rotations (eraFk52h, eraG2icrs, eraPrec76), the
 // Galactic pole of Murray 1989 with textbook spherical trigonometry, and the
-// worked table REF-FITS-04 (WCSLIB 7.12 via astropy; cited in tests/data/README).
+// worked table REF-FITS-04 of the project references (Greisen & Calabretta 2002,
+// Calabretta & Greisen 2002; values from WCSLIB 7.12 through astropy, TAN also by hand).
 #include <erfa.h>
 #include <gtest/gtest.h>
 
