@@ -146,3 +146,26 @@ TEST(CorrelatedNoise, RejectsBadInput) {
 }
 
 }  // namespace
+
+namespace {
+
+// The pixel-frame beam covariance through a PixelSky (local Jacobian) agrees with
+// the flat-grid form for both parities, and with the direct construction
+// C_pix = 1/(8 ln 2) R diag(M^2, m^2) R^T, the major axis pointing to pixel
+// direction (-sin PA, cos PA) when east is -x and (sin PA, cos PA) when east is +x
+// (CONVENTIONS.md "Angles on the sky").
+TEST(BeamCovariance, ParityAndRotationInThePixelFrame) {
+  const Beam beam{8.0, 4.0, 30.0};
+  for (bool east_right : {false, true}) {
+    const TanGrid grid = TanGrid::square(201.25, -38.6, 50.0, 50.0, 2.0, 0.0, east_right);
+    const Eigen::Matrix2d a = beam_cov_pix(beam, grid, 50.0, 50.0);
+    const Eigen::Matrix2d b = beam_cov_pix_flat(beam, 2.0, !east_right);
+    EXPECT_LT((a - b).cwiseAbs().maxCoeff(), 1e-9);
+    const double pa = 30.0 * kDegToRad, s = east_right ? 1.0 : -1.0;
+    const Eigen::Vector2d u(s * std::sin(pa), std::cos(pa)), v(std::cos(pa), -s * std::sin(pa));
+    const Eigen::Matrix2d c = (16.0 * u * u.transpose() + 4.0 * v * v.transpose()) / (8.0 * kLn2);
+    EXPECT_LT((b - c).cwiseAbs().maxCoeff(), 1e-12) << east_right;
+  }
+}
+
+}  // namespace
