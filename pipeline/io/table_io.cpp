@@ -248,7 +248,21 @@ void write_fits_table(const Table& t, const std::string& path) {
     }
     check("cannot write column data");
   }
+  // Checksums (FITS Standard 4.0 Appendix J / Seaman et al. checksum convention,
+  // REF-FITS-02). CFITSIO's fits_write_chksum puts the current time into the
+  // comments of DATASUM and CHECKSUM, so two runs would differ in bytes; the
+  // comments are made fixed and CHECKSUM is recomputed over the final header
+  // (set to '0000000000000000', sum, store the ones' complement encoded).
   fits_write_chksum(f.get(), &status);
+  fits_modify_comment(f.get(), "DATASUM", "data unit checksum", &status);
+  fits_modify_key_str(f.get(), "CHECKSUM", "0000000000000000", "HDU checksum", &status);
+  {
+    unsigned long datasum = 0, hdusum = 0;
+    char ascii[17] = {0};
+    fits_get_chksum(f.get(), &datasum, &hdusum, &status);
+    fits_encode_chksum(hdusum, 1, ascii);
+    fits_modify_key_str(f.get(), "CHECKSUM", ascii, "HDU checksum", &status);
+  }
   check("cannot write checksums");
   fits_close_file(f.release(), &status);
   if (status) throw OutputError(path, "cannot close FITS file: " + fits_status_text(status));
