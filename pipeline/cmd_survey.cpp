@@ -127,7 +127,7 @@ int run_survey(const std::vector<std::string>& args) {
   po::options_description d("survey");
   // clang-format off
   d.add_options()
-    ("survey-file", po::value<std::string>(), "the survey description (INI: [survey], [extract], [slurm])")
+    ("survey-file", po::value<std::string>(), "the survey description (INI: [survey], extract's stage sections, [slurm])")
     ("force", po::bool_switch(), "reprocess every tile (with --only: those tiles)")
     ("only", po::value<std::vector<std::string>>()->composing(), "process only this tile (by name; repeatable); it is reprocessed even when current")
     ("engine", po::value<std::string>(), "local or slurm (overrides survey.engine)")
@@ -168,8 +168,16 @@ int run_survey(const std::vector<std::string>& args) {
   fs::create_directories(cfg.output_root, ec);
   if (ec) throw OutputError(cfg.output_root, "cannot create the output folder: " + ec.message());
   RunLock lock((fs::path(cfg.output_root) / "survey.lock").string());
-  remove_stale_temporaries(cfg);
   StateRecord db((fs::path(cfg.output_root) / "survey.sqlite").string());
+  // A controller killed during a Slurm run leaves its jobs running: wait for
+  // them (exit busy) rather than race them on the same tiles.
+  if (const std::string prev = db.get("slurm_run_dir"); !prev.empty()) {
+    const std::string active = slurm_jobs_active(prev);
+    if (!active.empty())
+      throw ExitError(kExitBusy, "busy: Slurm jobs " + active + " of an earlier run (" + prev + ") are still active");
+    db.set("slurm_run_dir", "");
+  }
+  remove_stale_temporaries(cfg);
   SurveyLog log(cfg.output_root);
   const std::string run_id = run_id_now();
 
@@ -234,7 +242,13 @@ int run_survey(const std::vector<std::string>& args) {
     else if (s->second.inputs_sha256 != inputs_sha[i]) reason = "content changed";
     else if (s->second.config_sha256 != cfg.config_sha256) reason = "configuration changed";
     else if (s->second.tool_version != tool_version()) reason = "tool version changed";
-    else if (!fs::exists(fs::path(cfg.output_root) / "tiles" / t.name / "tile.json", ec)) reason = "results missing";
+    else {
+      // The results on disk must be the ones recorded (a file deleted by hand,
+      // or replaced by a task of an earlier, killed run, is reprocessed).
+      const auto rep = read_tile_report(cfg, t.name);
+      if (!rep || !rep->ok) reason = "results missing";
+      else if (rep->components_sha256 != s->second.components_sha256) reason = "results differ from the record";
+    }
     if (reason.empty()) continue;
     if (!unreadable[i].empty()) {
       TileReport r;
@@ -352,7 +366,9 @@ int run_survey(const std::vector<std::string>& args) {
     } else {
       ProgressCtx pc{&prog};
       std::string run_dir;
+      db.set("slurm_run_dir", (fs::path(cfg.output_root) / "slurm" / run_id).string());
       auto reports = run_slurm(cfg, pending, merge_list(), run_id, &slurm_progress, &pc, &run_dir);
+      db.set("slurm_run_dir", "");
       for (std::size_t i = 0; i < reports.size(); ++i) record(reports[i], &pending[i]);
       // Accept the merge job's catalogue only if it merged exactly what we would.
       auto ms = read_merge_summary(cfg);

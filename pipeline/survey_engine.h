@@ -218,6 +218,10 @@ std::vector<TileReport> run_slurm(const SurveyConfig& cfg, const std::vector<Pen
                                   void (*on_progress)(std::size_t, std::size_t, void*), void* progress_ctx,
                                   std::string* run_dir_out);
 
+/// The jobs of a Slurm run folder (its jobs.json) that squeue still shows
+/// active, as "ID,ID"; "" when none (or no jobs.json, or no squeue).
+std::string slurm_jobs_active(const std::string& run_dir);
+
 /// `skerry survey CONFIG --worker-task N --run-dir DIR`: one Slurm array task.
 int slurm_worker_task(const SurveyConfig& cfg, const std::string& run_dir, int task);
 /// `skerry survey CONFIG --merge-job --run-dir DIR`: the Slurm merge job.

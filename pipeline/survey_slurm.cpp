@@ -210,6 +210,27 @@ std::vector<TileReport> run_slurm(const SurveyConfig& cfg, const std::vector<Pen
   return reports;
 }
 
+std::string slurm_jobs_active(const std::string& run_dir) {
+  std::ifstream in(fs::path(run_dir) / "jobs.json");
+  if (!in) return "";
+  std::string ids;
+  try {
+    json j = json::parse(in);
+    ids = j.at("array_job").get<std::string>() + "," + j.at("merge_job").get<std::string>();
+  } catch (const std::exception&) {
+    return "";
+  }
+  std::string out, err;
+  if (capture({"squeue", "-h", "-r", "--states=all", "-j", ids, "-o", "%i|%T"}, out, err) != 0) return "";
+  std::istringstream ls(out);
+  std::string line;
+  while (std::getline(ls, line)) {
+    const auto bar = line.find('|');
+    if (bar != std::string::npos && active_state(line.substr(bar + 1))) return ids;
+  }
+  return "";
+}
+
 int slurm_worker_task(const SurveyConfig& cfg, const std::string& run_dir, int task) {
   std::ifstream in(fs::path(run_dir) / "tasks.json");
   if (!in) throw InputError((fs::path(run_dir) / "tasks.json").string(), "cannot open the task list");

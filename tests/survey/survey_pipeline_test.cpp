@@ -514,4 +514,25 @@ TEST(SurveyPipeline, SlurmEngineMatchesLocal) {
   r = run_skerry({"survey", cfg, "--engine", "slurm"});
   EXPECT_EQ(r.code, 0) << r.err;
   EXPECT_EQ(read_file(ds + kCatalogue), read_file(dl + kCatalogue));
+  // A controller killed (-9) while its jobs run: the next run exits busy until
+  // they have ended, then completes the work.
+  const int pid = start_skerry({"survey", cfg, "--engine", "slurm", "--force"}, ds);
+  bool submitted = false;
+  for (int i = 0; i < 3000 && !submitted; ++i) {
+    for (const auto& run : fs::directory_iterator(ds + "/out/slurm"))
+      submitted |= fs::exists(run.path() / "jobs.json") && run.path().filename().string().find(std::to_string(pid)) != std::string::npos;
+    if (!submitted) std::this_thread::sleep_for(std::chrono::milliseconds(5));
+  }
+  ASSERT_TRUE(submitted);
+  ::kill(pid, SIGKILL);
+  wait_skerry(pid);
+  r = run_skerry({"survey", cfg, "--engine", "slurm"});
+  EXPECT_EQ(r.code, 7) << r.err;
+  EXPECT_NE(r.err.find("of an earlier run"), std::string::npos) << r.err;
+  for (int i = 0; i < 600 && r.code == 7; ++i) {
+    std::this_thread::sleep_for(std::chrono::milliseconds(200));
+    r = run_skerry({"survey", cfg, "--engine", "slurm"});
+  }
+  EXPECT_TRUE(r.code == 0 || r.code == 5) << r.err;
+  EXPECT_EQ(read_file(ds + kCatalogue), read_file(dl + kCatalogue));
 }
