@@ -211,45 +211,54 @@ std::vector<ForcedMeasurement> forced_measure_masked(const ImageF& image, const 
     for (std::size_t gi = r.begin(); gi != r.end(); ++gi) {
       const std::vector<long>& mem = groups[gi];
       const int m = static_cast<int>(mem.size());
-      long bx0 = nx, bx1 = -1, by0 = ny, by1 = -1;
-      for (long k : mem) {
-        bx0 = std::min(bx0, prep[k].x0);
-        bx1 = std::max(bx1, prep[k].x1);
-        by0 = std::min(by0, prep[k].y0);
-        by1 = std::max(by1, prep[k].y1);
-      }
       Eigen::MatrixXd A = Eigen::MatrixXd::Zero(m, m);
       Eigen::VectorXd b = Eigen::VectorXd::Zero(m);
       gv.assign(static_cast<std::size_t>(m), 0.0);
       qv.assign(static_cast<std::size_t>(m), 0.0);
       std::vector<char> touched_gap(static_cast<std::size_t>(m), 0);
       const double R2 = R * R;
-      for (long y = by0; y <= by1; ++y)
-        for (long x = bx0; x <= bx1; ++x) {
-          // Pixels: the union of the members' footprints; on them every template
-          // is evaluated in full (not truncated), so the model is exact there.
-          bool inside_any = false;
-          for (int k = 0; k < m; ++k) {
-            const Prep& p = prep[mem[k]];
-            const double dx = x - p.x, dy = y - p.y;
-            const double q = p.ci(0, 0) * dx * dx + 2.0 * p.ci(0, 1) * dx * dy + p.ci(1, 1) * dy * dy;
-            gv[k] = std::exp(-0.5 * q);
-            qv[k] = q;
-            if (q <= R2) inside_any = true;
+      // Pixels: the union of the members' footprints (q <= R^2), each visited
+      // once (by the first member whose footprint holds it). On them every
+      // template is evaluated out to 2R (exp(-2 R^2) ~ 1.5e-8 for R = 3: exact
+      // for the model in practice), so a long blend chain costs its members'
+      // footprints, not its bounding box.
+      auto qof = [&](int k, long x, long y) {
+        const Prep& p = prep[mem[k]];
+        const double dx = x - p.x, dy = y - p.y;
+        return p.ci(0, 0) * dx * dx + 2.0 * p.ci(0, 1) * dx * dy + p.ci(1, 1) * dy * dy;
+      };
+      auto in_box = [&](int k, long x, long y) {
+        const Prep& p = prep[mem[k]];
+        return x >= p.x0 && x <= p.x1 && y >= p.y0 && y <= p.y1;
+      };
+      const double R2x4 = 4.0 * R2;
+      for (int k0 = 0; k0 < m; ++k0) {
+        const Prep& pk0 = prep[mem[k0]];
+        for (long y = pk0.y0; y <= pk0.y1; ++y)
+          for (long x = pk0.x0; x <= pk0.x1; ++x) {
+            if (qof(k0, x, y) > R2) continue;
+            bool seen = false;
+            for (int j = 0; j < k0 && !seen; ++j) seen = in_box(j, x, y) && qof(j, x, y) <= R2;
+            if (seen) continue;
+            for (int k = 0; k < m; ++k) {
+              const double q = qof(k, x, y);
+              qv[k] = q;
+              gv[k] = q <= R2x4 ? std::exp(-0.5 * q) : 0.0;
+            }
+            if (!usable(y, x)) {
+              for (int k = 0; k < m; ++k)
+                if (qv[k] <= R2) touched_gap[k] = 1;
+              continue;
+            }
+            const double w = 1.0 / (rms_at(y, x) * rms_at(y, x));
+            const double v = image(y, x);
+            for (int k = 0; k < m; ++k) {
+              if (gv[k] == 0.0) continue;
+              b(k) += w * gv[k] * v;
+              for (int l = 0; l <= k; ++l) A(k, l) += w * gv[k] * gv[l];
+            }
           }
-          if (!inside_any) continue;
-          if (!usable(y, x)) {
-            for (int k = 0; k < m; ++k)
-              if (qv[k] <= R2) touched_gap[k] = 1;
-            continue;
-          }
-          const double w = 1.0 / (rms_at(y, x) * rms_at(y, x));
-          const double v = image(y, x);
-          for (int k = 0; k < m; ++k) {
-            b(k) += w * gv[k] * v;
-            for (int l = 0; l <= k; ++l) A(k, l) += w * gv[k] * gv[l];
-          }
-        }
+      }
       for (int k = 0; k < m; ++k)
         for (int l = 0; l < k; ++l) A(l, k) = A(k, l);
       Eigen::LDLT<Eigen::MatrixXd> ldlt(A);
