@@ -157,12 +157,14 @@ int run_demo(const std::vector<std::string>& args) {
                      run.string(), "--threads", threads, "--match.mode", "one-to-one",
                      "--match.freq_a_hz", "1.4e9", "--match.flux_b", "s_1000mhz_jy",
                      "--match.flux_err_b", "s_1000mhz_err_jy"});
+  // The spectra are measured for the 1.4 GHz catalogue's components (forced in every band).
   run_step("bands", {(images / "lanternfish_900MHz.fits").string(), img,
                      (images / "lanternfish_3000MHz.fits").string(), "--out", run.string(), "--threads",
-                     threads, "--output.name", "lanternfish"});
+                     threads, "--output.name", "lanternfish",
+                     "--catalogue", (run / "lanternfish_1400MHz.components.csv").string()});
   if (p.vm["demo.completeness"].as<bool>() && find_command("completeness"))
     run_step("completeness", {img, "--out", run.string(), "--threads", threads});
-  if (find_command("report")) run_step("report", {run.string()});
+  if (find_command("report")) run_step("report", {run.string(), "--report.name", "lanternfish_1400MHz"});
 
   const double secs = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
   std::cout << "\nskerry demo: done in " << std::round(secs * 10) / 10 << " s.\n"
