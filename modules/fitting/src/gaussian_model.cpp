@@ -1,6 +1,7 @@
 // Pixel-frame elliptical Gaussian: value, analytic gradient, rendering.
 #include <algorithm>
 #include <cmath>
+#include <cstring>
 
 #include "fitting_internal.h"
 #include "skerry/fitting.h"
@@ -24,10 +25,23 @@ Eigen::Matrix<double, 6, 1> component_gradient(const double p[6], double x, doub
 }
 
 double component_value(const PixelComponent& c, double x, double y) {
+  // Callers render one component over many pixels: the evaluator's constants
+  // (cos, sin, inverse squared sigmas) are kept per thread for the last
+  // parameters seen and rebuilt when any of them differs bit for bit, so the
+  // values are exactly those of a fresh evaluator.
+  struct Cache {
+    double p[6];
+    fitting_detail::GaussEval ev;
+  };
+  static const double kNone[6] = {NAN, NAN, NAN, NAN, NAN, NAN};
+  thread_local Cache cache{{NAN, NAN, NAN, NAN, NAN, NAN}, fitting_detail::GaussEval(kNone)};
   const double p[6] = {c.amplitude, c.x, c.y, c.sigma_major_pix, c.sigma_minor_pix, c.theta_rad};
-  fitting_detail::GaussEval ev(p);
+  if (std::memcmp(p, cache.p, sizeof p) != 0) {
+    cache.ev = fitting_detail::GaussEval(p);
+    std::memcpy(cache.p, p, sizeof p);
+  }
   double val;
-  ev.eval(x, y, val, nullptr);
+  cache.ev.eval(x, y, val, nullptr);
   return val;
 }
 
