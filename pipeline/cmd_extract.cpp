@@ -522,13 +522,15 @@ int run_extract(const std::vector<std::string>& args) {
 
   // ---- read ------------------------------------------------------------------
   // The image's SHA-256 (run record, table meta) is computed in a background
-  // thread while the image is read and measured.
+  // thread while the image is measured. It starts only once the reader has
+  // accepted the file: a refused file (e.g. a header claiming terabytes) must
+  // fail at once, not after the future's destructor waited for a full hash.
+  StageTimer t_read(record, "read");
+  SkyImage sky = read_sky_image(cfg.image, cfg.read);
   std::future<std::string> image_sha = std::async(std::launch::async, [&] {
     std::error_code ec;
     return fs::is_regular_file(cfg.image, ec) ? sha256_file(cfg.image) : std::string();
   });
-  StageTimer t_read(record, "read");
-  SkyImage sky = read_sky_image(cfg.image, cfg.read);
   if (!sky.beam.valid())
     throw InputError(cfg.image, "restoring beam is degenerate (BMAJ/BMIN must be positive, BMIN <= BMAJ)");
   const SkyBeam sky_beam(sky, !cfg.read.beam_override.has_value());
