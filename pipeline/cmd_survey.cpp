@@ -90,12 +90,12 @@ std::string fixed(double v, int digits) {
   return s.str();
 }
 
-std::string stage_ini(const SurveyConfig& cfg) {
+std::string stage_ini(const SurveyConfig& cfg, const std::map<std::string, std::string>& kv, const std::string& cmd) {
   std::ostringstream s;
-  s << "# Stage settings of survey " << cfg.name << " for skerry extract (written by skerry survey from "
+  s << "# Stage settings of survey " << cfg.name << " for skerry " << cmd << " (written by skerry survey from "
     << fs::path(cfg.config_path).filename().string() << ")\n";
   std::string section;
-  for (const auto& [k, v] : cfg.extract) {  // sorted by "section.key"
+  for (const auto& [k, v] : kv) {  // sorted by "section.key"
     const std::string sec = k.substr(0, k.find('.'));
     if (sec != section) {
       s << "[" << sec << "]\n";
@@ -198,32 +198,46 @@ int run_survey(const std::vector<std::string>& args) {
   std::vector<std::string> unreadable(tiles.size());
   bool began = false;
   for (std::size_t i = 0; i < tiles.size(); ++i) {
-    struct stat st {};
-    if (::stat(tiles[i].image.c_str(), &st) != 0) {
-      unreadable[i] = tiles[i].image + ": " + std::strerror(errno);
-      continue;
+    // Every band file of the tile is an input (just the image for one band).
+    const std::vector<std::string> files = tile_band_files(cfg, tiles[i]);
+    std::vector<std::string> shas;
+    for (const auto& file : files) {
+      struct stat st {};
+      if (::stat(file.c_str(), &st) != 0) {
+        unreadable[i] = file + ": " + std::strerror(errno) + (files.size() > 1 ? " (a band file of tile " + tiles[i].name + ")" : "");
+        break;
+      }
+      StateRecord::InputKey k;
+      k.size = static_cast<std::int64_t>(st.st_size);
+      k.mtime_ns = static_cast<std::int64_t>(st.st_mtim.tv_sec) * 1000000000LL + st.st_mtim.tv_nsec;
+      k.inode = static_cast<std::int64_t>(st.st_ino);
+      auto old = db.input(file);
+      if (old && old->size == k.size && old->mtime_ns == k.mtime_ns && old->inode == k.inode) {
+        shas.push_back(old->sha256);
+        continue;
+      }
+      try {
+        k.sha256 = sha256_file(file);
+      } catch (const std::exception& e) {
+        unreadable[i] = e.what();
+        break;
+      }
+      shas.push_back(k.sha256);
+      if (!began) {
+        db.begin();
+        began = true;
+      }
+      db.set_input(file, k);  // a touch updates the quick key; the hash decides
     }
-    StateRecord::InputKey k;
-    k.size = static_cast<std::int64_t>(st.st_size);
-    k.mtime_ns = static_cast<std::int64_t>(st.st_mtim.tv_sec) * 1000000000LL + st.st_mtim.tv_nsec;
-    k.inode = static_cast<std::int64_t>(st.st_ino);
-    auto old = db.input(tiles[i].image);
-    if (old && old->size == k.size && old->mtime_ns == k.mtime_ns && old->inode == k.inode) {
-      inputs_sha[i] = old->sha256;
-      continue;
+    if (!unreadable[i].empty()) continue;
+    if (shas.size() == 1) {
+      inputs_sha[i] = shas[0];
+    } else {
+      // Multi-band: hash of "SUFFIX SHA" per band, in the configured order.
+      std::string text;
+      for (std::size_t b = 0; b < shas.size(); ++b) text += cfg.bands[b] + " " + shas[b] + "\n";
+      inputs_sha[i] = sha256_hex(text.data(), text.size());
     }
-    try {
-      k.sha256 = sha256_file(tiles[i].image);
-    } catch (const std::exception& e) {
-      unreadable[i] = e.what();
-      continue;
-    }
-    inputs_sha[i] = k.sha256;
-    if (!began) {
-      db.begin();
-      began = true;
-    }
-    db.set_input(tiles[i].image, k);  // a touch updates the quick key; the hash decides
   }
   if (began) db.commit();
 
@@ -284,15 +298,18 @@ int run_survey(const std::vector<std::string>& args) {
     }
   }
 
-  // The [extract] settings every tile run reads (rewritten only when they change).
-  if (!cfg.extract.empty()) {
-    const std::string ini = stage_ini(cfg);
-    const std::string p = (fs::path(cfg.output_root) / "stage" / "extract.ini").string();
+  // The stage settings every tile run reads (rewritten only when they change).
+  auto put_stage = [&](const std::map<std::string, std::string>& kv, const std::string& file, const std::string& cmd) {
+    if (kv.empty()) return;
+    const std::string ini = stage_ini(cfg, kv, cmd);
+    const std::string p = (fs::path(cfg.output_root) / "stage" / file).string();
     std::ifstream in(p);
     std::ostringstream cur;
     cur << in.rdbuf();
     if (!in || cur.str() != ini) write_text_atomic(p, ini);
-  }
+  };
+  put_stage(cfg.extract, "extract.ini", "extract");
+  put_stage(cfg.bands_stage, "bands.ini", "bands");
 
   log.write("run " + run_id + " start engine=" + cfg.engine + " tiles=" + std::to_string(tiles.size()) +
                 " pending=" + std::to_string(pending.size()),
@@ -324,8 +341,8 @@ int run_survey(const std::vector<std::string>& args) {
     (r.ok ? n_ok : n_failed)++;
     if (!r.ok && r.exit_code == kExitUsage && usage_error.empty()) {
       usage_error = r.message;
-      const std::string prefix = "skerry extract: error: ";
-      if (usage_error.rfind(prefix, 0) == 0) usage_error = usage_error.substr(prefix.size());
+      for (const std::string prefix : {"skerry extract: error: ", "skerry bands: error: "})
+        if (usage_error.rfind(prefix, 0) == 0) usage_error = usage_error.substr(prefix.size());
     }
     const std::string reason = p ? p->reason : "unreadable";
     if (r.ok) {

@@ -53,7 +53,7 @@ SurveyConfig load_survey_config(const std::string& path) {
   cfg.config_path = abs.lexically_normal().string();
   cfg.base_dir = abs.parent_path().lexically_normal().string();
 
-  std::string tiles, output, catalogue, engine, prefix;
+  std::string tiles, output, catalogue, engine, prefix, bands, detection_band;
   int workers = 2, tpt = 1, order = 4;
   double radius = 5.0, margin = 3.0;
   po::options_description d("survey configuration");
@@ -63,6 +63,8 @@ SurveyConfig load_survey_config(const std::string& path) {
     ("survey.tiles", po::value<std::string>(&tiles), "tile images: globs or files, comma-separated, relative to this file")
     ("survey.output", po::value<std::string>(&output), "output root folder, relative to this file")
     ("survey.catalogue", po::value<std::string>(&catalogue)->default_value("survey.components.csv"), "merged catalogue file name in the output root (.csv, .fits or .vot)")
+    ("survey.bands", po::value<std::string>(&bands)->default_value(""), "multi-band tiles: file-stem suffix of each band, comma-separated (e.g. _0900MHz,_1400MHz,_3000MHz); empty = one band")
+    ("survey.detection_band", po::value<std::string>(&detection_band)->default_value(""), "suffix of the band whose extract catalogue gives a tile's components (default: the first of survey.bands)")
     ("survey.engine", po::value<std::string>(&engine)->default_value("local"), "local or slurm")
     ("survey.workers", po::value<int>(&workers)->default_value(2), "tiles processed at once by the local engine")
     ("survey.threads_per_tile", po::value<int>(&tpt)->default_value(1), "--threads of each tile run")
@@ -97,8 +99,10 @@ SurveyConfig load_survey_config(const std::string& path) {
         throw UsageError(path + ": unknown option '" + key + "'");
       // Every other section ([image], [noise], [detect], [fit], [output], ...) is a
       // stage setting of `skerry extract`, passed through; extract checks it.
-      if (cfg.extract.count(key)) throw UsageError(path + ": option '" + key + "' given twice");
-      cfg.extract[key] = o.value.empty() ? "" : o.value.front();
+      // [bands], [forced] and [maps] are stage settings of `skerry bands`.
+      auto& dest = (section == "bands" || section == "forced" || section == "maps") ? cfg.bands_stage : cfg.extract;
+      if (dest.count(key)) throw UsageError(path + ": option '" + key + "' given twice");
+      dest[key] = o.value.empty() ? "" : o.value.front();
     }
     po::store(parsed, vm);
     po::notify(vm);
@@ -131,6 +135,24 @@ SurveyConfig load_survey_config(const std::string& path) {
   }
   need(!cfg.extract.count("output.name"), "output.name", cfg.extract.count("output.name") ? cfg.extract["output.name"] : "",
        "being unset (a tile's outputs are named after its image)");
+  cfg.bands = split_list(bands);
+  {
+    std::set<std::string> seen;
+    for (const auto& b : cfg.bands)
+      need(seen.insert(b).second, "survey.bands", bands, "distinct suffixes");
+  }
+  need(cfg.bands.size() != 1, "survey.bands", bands, "two or more suffixes (or none for single-band tiles)");
+  if (!detection_band.empty()) {
+    auto it = std::find(cfg.bands.begin(), cfg.bands.end(), detection_band);
+    need(it != cfg.bands.end(), "survey.detection_band", detection_band, "one of survey.bands");
+    cfg.detection_band = static_cast<std::size_t>(it - cfg.bands.begin());
+  }
+  if (cfg.bands.empty() && !cfg.bands_stage.empty())
+    need(false, cfg.bands_stage.begin()->first, cfg.bands_stage.begin()->second,
+         "survey.bands being set (bands/forced/maps settings apply to multi-band tiles)");
+  for (const char* k : {"bands.freq_mhz", "output.name"})
+    need(!cfg.bands_stage.count(k), k, cfg.bands_stage.count(k) ? cfg.bands_stage[k] : "",
+         "being unset (frequencies come from the band headers; outputs are named after the tile)");
   cfg.tile_patterns = split_list(tiles);
   cfg.output_root = absolute_from(cfg.base_dir, output);
   cfg.catalogue = catalogue;
@@ -150,6 +172,13 @@ SurveyConfig load_survey_config(const std::string& path) {
   std::ostringstream h;
   h << "skerry-survey-tile-v1\ncommand=extract\n";
   for (const auto& [k, v] : cfg.extract) h << k << "=" << v << "\n";
+  if (!cfg.bands.empty()) {
+    // Multi-band tiles (the single-band hash stays as it was).
+    h << "command=bands\nbands=";
+    for (const auto& b : cfg.bands) h << b << ",";
+    h << "\ndetection_band=" << cfg.bands[cfg.detection_band] << "\n";
+    for (const auto& [k, v] : cfg.bands_stage) h << k << "=" << v << "\n";
+  }
   const std::string ht = h.str();
   cfg.config_sha256 = sha256_hex(ht.data(), ht.size());
   // The merge settings that change the catalogue (not the partition order).
@@ -159,6 +188,18 @@ SurveyConfig load_survey_config(const std::string& path) {
     << ";ra=" << cfg.ra_column << ";dec=" << cfg.dec_column << ";name=" << cfg.name << ";catalogue=" << catalogue;
   cfg.merge_settings = m.str();
   return cfg;
+}
+
+std::vector<std::string> tile_band_files(const SurveyConfig& cfg, const TileInput& tile) {
+  if (cfg.bands.empty()) return {tile.image};
+  const fs::path p(tile.image);
+  const std::string fname = p.filename().string();
+  const std::string& suf = cfg.bands[cfg.detection_band];
+  // fname = NAME + SUFFIX + extension(s); discover_tiles made NAME from the stem.
+  const std::string rest = fname.substr(tile.name.size() + suf.size());
+  std::vector<std::string> out;
+  for (const auto& b : cfg.bands) out.push_back((p.parent_path() / (tile.name + b + rest)).string());
+  return out;
 }
 
 std::vector<TileInput> discover_tiles(const SurveyConfig& cfg) {
@@ -188,6 +229,12 @@ std::vector<TileInput> discover_tiles(const SurveyConfig& cfg) {
       if (!seen_paths.insert(f).second) continue;
       std::string stem = fs::path(f).stem().string();
       if (fs::path(f).extension() == ".gz" || fs::path(f).extension() == ".fz") stem = fs::path(stem).stem().string();
+      if (!cfg.bands.empty()) {
+        // Multi-band: a tile is a detection-band file; the name drops the suffix.
+        const std::string& suf = cfg.bands[cfg.detection_band];
+        if (stem.size() <= suf.size() || !stem.ends_with(suf)) continue;
+        stem = stem.substr(0, stem.size() - suf.size());
+      }
       out.push_back({stem, f});
     }
   }

@@ -54,6 +54,15 @@ struct SurveyConfig {
   /// [survey] and [slurm] ([image], [noise], [detect], [fit], [output], ...),
   /// passed through to each tile run as its --config file (extract checks them).
   std::map<std::string, std::string> extract;
+  /// Multi-band tiles: the file-stem suffix of each band ([survey] bands, in the
+  /// order given; empty = single-band tiles). A tile's band files share a stem
+  /// prefix (the tile's name) and folder; `detection_band` indexes the band whose
+  /// file the tile glob selects and whose `skerry extract` catalogue is the tile's.
+  std::vector<std::string> bands;
+  std::size_t detection_band = 0;
+  /// Stage settings of `skerry bands` ([bands], [forced], [maps] sections), passed
+  /// to each tile's bands run as its --config file. Only with two or more bands.
+  std::map<std::string, std::string> bands_stage;
   SlurmSettings slurm;
   /// Hash of everything that changes a tile's results: the stage settings.
   std::string config_sha256;
@@ -73,6 +82,11 @@ struct TileInput {
   std::string image;    ///< absolute path
 };
 
+/// The tile's image of every band (order of cfg.bands; just `tile.image` for
+/// single-band tiles). Derived from the detection band's file name alone, so a
+/// Slurm task finds the same files.
+std::vector<std::string> tile_band_files(const SurveyConfig& cfg, const TileInput& tile);
+
 /// Expands the tile patterns (sorted by name). Throws UsageError for a listed
 /// file that does not exist or two tiles with one name.
 std::vector<TileInput> discover_tiles(const SurveyConfig& cfg);
@@ -85,7 +99,10 @@ struct TileReport {
   std::string message;          ///< one line, on failure
   std::string inputs_sha256, config_sha256, tool_version;
   std::string components_file;  ///< file name inside tiles/NAME/
+  /// Hash of the tile's results the merge reads: the component table's SHA-256,
+  /// or, for multi-band tiles, SHA-256 of "COMPONENTS_SHA\nSPECTRA_SHA\n".
   std::string components_sha256;
+  std::string spectra_file;     ///< multi-band tiles: file name inside tiles/NAME/ (bands/NAME.spectra.csv)
   std::int64_t rows = 0;
   double centre_ra_deg = 0.0, centre_dec_deg = 0.0;
   double seconds = 0.0;

@@ -115,6 +115,7 @@ json report_json(const TileReport& r) {
   j["tool_version"] = r.tool_version;
   j["components_file"] = r.components_file;
   j["components_sha256"] = r.components_sha256;
+  if (!r.spectra_file.empty()) j["spectra_file"] = r.spectra_file;
   j["rows"] = r.rows;
   j["centre_ra_deg"] = r.centre_ra_deg;
   j["centre_dec_deg"] = r.centre_dec_deg;
@@ -138,6 +139,7 @@ std::optional<TileReport> parse_report(const std::string& path) {
     r.tool_version = j.at("tool_version").get<std::string>();
     r.components_file = j.at("components_file").get<std::string>();
     r.components_sha256 = j.at("components_sha256").get<std::string>();
+    r.spectra_file = j.value("spectra_file", std::string());
     r.rows = j.at("rows").get<std::int64_t>();
     r.centre_ra_deg = j.at("centre_ra_deg").get<double>();
     r.centre_dec_deg = j.at("centre_dec_deg").get<double>();
@@ -224,6 +226,37 @@ TileReport process_tile(const SurveyConfig& cfg, const TileInput& tile, const st
     r.components_file = comps[0];
     r.components_sha256 = sha256_file((tmp / comps[0]).string());
     r.rows = static_cast<std::int64_t>(read_table((tmp / comps[0]).string()).rows());
+    if (cfg.bands.size() >= 2) {
+      // Multi-band tile: forced measurements of the extract components in every
+      // band (`skerry bands --catalogue`, so spectra row component_id = component
+      // table row), into tiles/NAME/bands/.
+      const std::vector<std::string> files = tile_band_files(cfg, tile);
+      for (const auto& f : files)
+        if (!fs::is_regular_file(f, ec)) return fail(kExitBadInput, f + ": band file of tile " + tile.name + " is missing");
+      std::vector<std::string> ba{self_exe(), "bands"};
+      ba.insert(ba.end(), files.begin(), files.end());
+      for (const std::string& a : {std::string("--catalogue"), (tmp / comps[0]).string(), std::string("--out"),
+                                   (tmp / "bands").string(), std::string("--output.name"), tile.name,
+                                   std::string("--output.formats"), std::string("csv"), std::string("--threads"),
+                                   std::to_string(cfg.threads_per_tile)})
+        ba.push_back(a);
+      if (!cfg.bands_stage.empty()) {
+        ba.push_back("--config");
+        ba.push_back((fs::path(cfg.output_root) / "stage" / "bands.ini").string());
+      }
+      const std::string blog = (tmp / "bands.log").string();
+      const int bcode = run_child(ba, blog);
+      if (bcode != 0) {
+        std::string msg = last_line(blog);
+        if (msg.empty()) msg = "skerry bands exited with code " + std::to_string(bcode);
+        return fail(bcode, msg);
+      }
+      r.spectra_file = "bands/" + tile.name + ".spectra.csv";
+      if (!fs::is_regular_file(tmp / r.spectra_file, ec))
+        return fail(kExitInternal, tile.image + ": skerry bands wrote no " + r.spectra_file);
+      const std::string both = r.components_sha256 + "\n" + sha256_file((tmp / r.spectra_file).string()) + "\n";
+      r.components_sha256 = sha256_hex(both.data(), both.size());
+    }
     // Tile centre: the sky position of the central pixel of the grid.
     ImageReadOptions ro;
     ro.require_beam = false;
@@ -236,8 +269,8 @@ TileReport process_tile(const SurveyConfig& cfg, const TileInput& tile, const st
     r.ok = true;
     r.seconds = seconds();
     write_text_atomic((tmp / "tile.json").string(), report_json(r).dump(2) + "\n");
-    for (const auto& e : fs::directory_iterator(tmp))
-      if (e.is_regular_file()) fsync_path(e.path(), false);
+    for (const auto& e : fs::recursive_directory_iterator(tmp))
+      fsync_path(e.path(), e.is_directory());
     fsync_path(tmp, true);
     // Swap into place: the old result aside, the new one in, the old one away.
     const fs::path old = tdir / ("." + tile.name + ".old." + std::to_string(::getpid()) + "." +
@@ -304,6 +337,9 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
   sum.tiles = tiles.size();
 
   std::vector<Table> tables;
+  // Multi-band tiles: each tile's spectra table and, per component row, its row there.
+  std::vector<Table> spectra;
+  std::vector<std::vector<std::int64_t>> spectra_row;
   std::vector<survey::TileComponent> comps;
   std::vector<survey::SkyPoint> centres;
   for (std::size_t t = 0; t < tiles.size(); ++t) {
@@ -329,6 +365,32 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
       if (!std::isfinite(ra->f64[i]) || !std::isfinite(dec->f64[i]) || std::fabs(dec->f64[i]) > 90.0)
         throw InputError(path, "row " + std::to_string(i + 1) + " has no valid position");
       comps.push_back({ra->f64[i], dec->f64[i], static_cast<std::int32_t>(t), static_cast<std::int64_t>(i)});
+    }
+    if (cfg.bands.size() >= 2) {
+      if (rep->spectra_file.empty()) throw InputError(rep_path, "names no spectra table (the survey has several bands)");
+      const std::string sp = (fs::path(tiles_dir(cfg)) / tiles[t].name / rep->spectra_file).string();
+      Table st = read_table(sp);
+      const Column* id = st.find("component_id");
+      if (!id || id->type != ColumnType::Int64) throw InputError(sp, "has no integer column 'component_id'");
+      std::vector<std::int64_t> at(tab.rows(), -1);
+      for (std::size_t i = 0; i < st.rows(); ++i) {
+        const std::int64_t c = id->i64[i];
+        if (c < 1 || c > static_cast<std::int64_t>(tab.rows()) || at[static_cast<std::size_t>(c - 1)] >= 0)
+          throw InputError(sp, "row " + std::to_string(i + 1) + ": component_id " + std::to_string(c) +
+                                   " is not a distinct row of " + rep->components_file);
+        at[static_cast<std::size_t>(c - 1)] = static_cast<std::int64_t>(i);
+      }
+      for (std::size_t i = 0; i < at.size(); ++i)
+        if (at[i] < 0) throw InputError(sp, "has no row for component " + std::to_string(i + 1));
+      if (!spectra.empty()) {
+        const auto& a = spectra.front().columns();
+        const auto& b = st.columns();
+        bool same = a.size() == b.size();
+        for (std::size_t c = 0; same && c < a.size(); ++c) same = a[c].name == b[c].name && a[c].type == b[c].type;
+        if (!same) throw InputError(sp, "its columns differ from those of the first tile's spectra table (same bands in every tile?)");
+      }
+      spectra.push_back(std::move(st));
+      spectra_row.push_back(std::move(at));
     }
     centres.push_back({tiles[t].centre_ra_deg, tiles[t].centre_dec_deg});
     tables.push_back(std::move(tab));
@@ -376,6 +438,34 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
       }
       out.add(std::move(col));
     }
+  }
+  if (!spectra.empty()) {
+    // Spectral columns of the kept components, joined on (tile, component row);
+    // the spectra table's own id and position columns are the component's.
+    for (std::size_t c = 0; c < spectra.front().columns().size(); ++c) {
+      const Column& proto = spectra.front().columns()[c];
+      if (proto.name == "component_id" || proto.name == "ra_deg" || proto.name == "dec_deg") continue;
+      Column col;
+      col.name = out.find(proto.name) ? "spec_" + proto.name : proto.name;
+      col.unit = proto.unit;
+      col.ucd = proto.ucd;
+      col.description = proto.description;
+      col.type = proto.type;
+      for (const auto& k : mr.kept) {
+        const auto t = static_cast<std::size_t>(k.tile);
+        const Column& src = spectra[t].columns()[c];
+        const auto i = static_cast<std::size_t>(spectra_row[t][static_cast<std::size_t>(k.row)]);
+        switch (col.type) {
+          case ColumnType::Float64: col.f64.push_back(src.f64[i]); break;
+          case ColumnType::Int64: col.i64.push_back(src.i64[i]); break;
+          case ColumnType::Text: col.text.push_back(src.text[i]); break;
+        }
+      }
+      out.add(std::move(col));
+    }
+    std::string bl;
+    for (const auto& b : cfg.bands) bl += (bl.empty() ? "" : ",") + b;
+    out.set_meta("bands", bl);
   }
   std::ostringstream radius;
   radius.precision(17);

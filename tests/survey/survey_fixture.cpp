@@ -157,6 +157,57 @@ std::string make_survey(const std::string& dir, const std::string& extra) {
   return cfg;
 }
 
+const std::string& multiband_tiles() {
+  static const std::string dir = [] {
+    const std::string d = fresh_dir("field3");
+    RunResult r = run_skerry({"simulate", "--out", d, "--seed", "6102", "--bands.freqs_mhz", "900,1400,3000",
+                              "--bands.pixels_follow_beam", "false", "--bands.crpix_shift_pix", "0",
+                              "--noise.rms_jy_per_beam", "2e-5", "--field.size_pix", "640",
+                              "--primary_beam.fwhm_deg", "0", "--sources.count", "100", "--threads", "1"});
+    if (r.code != 0) throw std::runtime_error("skerry simulate failed: " + r.err);
+    for (const char* band : {"900MHz", "1400MHz", "3000MHz"}) {
+      const std::string src = d + "/lanternfish_" + band + ".fits";
+      ImageReadOptions ro;
+      const SkyImage field = read_sky_image(src, ro);
+      const double crpix1 = card_value(field.wcs_header, "CRPIX1");
+      const double crpix2 = card_value(field.wcs_header, "CRPIX2");
+      const long size = 384, step = 256;
+      for (int j = 0; j < 2; ++j) {
+        for (int i = 0; i < 2; ++i) {
+          const long x0 = i * step, y0 = j * step;
+          ImageF tile = field.pixels.block(y0, x0, size, size);
+          char c1[32], c2[32];
+          std::snprintf(c1, sizeof c1, "%.10f", crpix1 - static_cast<double>(x0));
+          std::snprintf(c2, sizeof c2, "%.10f", crpix2 - static_cast<double>(y0));
+          write_fits_image(d + "/tile_" + std::to_string(j) + std::to_string(i) + "_" + band + ".fits", tile, field,
+                           "JY/BEAM", {{"CRPIX1", c1}, {"CRPIX2", c2}});
+        }
+      }
+      fs::remove(src);
+    }
+    return d;
+  }();
+  return dir;
+}
+
+std::string make_multiband_survey(const std::string& dir, const std::string& extra) {
+  fs::create_directories(fs::path(dir) / "tiles");
+  for (const auto& e : fs::directory_iterator(multiband_tiles())) {
+    const std::string n = e.path().filename().string();
+    if (n.rfind("tile_", 0) == 0) fs::copy_file(e.path(), fs::path(dir) / "tiles" / n, fs::copy_options::overwrite_existing);
+  }
+  const std::string cfg = dir + "/survey.ini";
+  write_file(cfg,
+             "# Test survey of the invented Lanternfish Field: four overlapping three-band tiles.\n"
+             "[survey]\nname = lanternfish\ntiles = tiles/*.fits\noutput = out\n"
+             "catalogue = lanternfish.components.csv\nworkers = 2\n"
+             "bands = _900MHz,_1400MHz,_3000MHz\ndetection_band = _1400MHz\n"
+             "[output]\nformats = csv\nmaps = false\nmodel = false\nresidual = false\n"
+             "[maps]\nenabled = false\n" +
+                 extra);
+  return cfg;
+}
+
 std::vector<std::string> last_run_events(const std::string& out_dir, const std::string& event) {
   std::ifstream in(out_dir + "/survey.jsonl");
   std::vector<std::string> lines, cur;
