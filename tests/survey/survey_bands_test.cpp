@@ -9,6 +9,7 @@
 #include <unistd.h>
 
 #include <cmath>
+#include <cstdlib>
 #include <filesystem>
 #include <map>
 #include <nlohmann/json.hpp>
@@ -143,4 +144,26 @@ TEST(SurveyBands, BadBandSettingsExitTwo) {
   r = run_skerry({"survey", cfg});
   EXPECT_EQ(r.code, 2);
   EXPECT_NE(r.err.find("survey.detection_band"), std::string::npos) << r.err;
+}
+
+// Multi-band tiles through `--engine slurm` (a task per tile runs extract and
+// bands): the same merged catalogue, spectra columns included, as the local engine.
+TEST(SurveyBands, SlurmEngineMatchesLocal) {
+  if (std::system("sinfo -h >/dev/null 2>&1") != 0) {
+    const char* req = std::getenv("SKERRY_REQUIRE_SLURM");
+    if (req && std::string(req) == "1") FAIL() << "SKERRY_REQUIRE_SLURM=1 but no Slurm cluster answers (sinfo)";
+    GTEST_SKIP() << "no Slurm cluster (start one with tests/cluster/slurm-cluster.sh start)";
+  }
+  const std::string slurm_opts = "[slurm]\npoll_seconds = 0.2\nmem = 500M\nmerge_mem = 500M\ntime = 00:10:00\n";
+  const std::string dl = fresh_dir("bands-slurm-local");
+  ASSERT_EQ(run_skerry({"survey", make_multiband_survey(dl, slurm_opts)}).code, 0);
+  const std::string ds = fresh_dir("bands-slurm");
+  auto r = run_skerry({"survey", make_multiband_survey(ds, slurm_opts), "--engine", "slurm"});
+  ASSERT_EQ(r.code, 0) << r.err;
+  const std::string cat = "/out/lanternfish.components.csv";
+  EXPECT_EQ(read_file(ds + cat), read_file(dl + cat));
+  EXPECT_NE(read_file(ds + cat).find(",alpha,alpha_err,"), std::string::npos);
+  auto merges = last_run_events(ds + "/out", "merge");
+  ASSERT_EQ(merges.size(), 1u);
+  EXPECT_EQ(json::parse(merges[0]).at("where"), "slurm");
 }
