@@ -109,7 +109,9 @@ TEST_F(ReportRun, CountsMatchDirectCountOfCatalogue) {
     EXPECT_EQ(static_cast<std::size_t>(r[3]), n) << "bin " << r[0];
     total += n;
     // Definition (common practice): S_c^2.5 N / (A dS), S_c = sqrt(lo hi).
-    if (n > 0) EXPECT_NEAR(r[5], std::pow(std::sqrt(r[0] * r[1]), 2.5) * n / (r[4] * (r[1] - r[0])), 1e-5 * r[5]);
+    if (n > 0) {
+      EXPECT_NEAR(r[5], std::pow(std::sqrt(r[0] * r[1]), 2.5) * n / (r[4] * (r[1] - r[0])), 1e-5 * r[5]);
+    }
   }
   EXPECT_GT(total, 50u);
 }
