@@ -353,8 +353,8 @@ ReportResult write_report(const ReportOptions& opt) {
          << "</div>\n";
     body << "<table class=\"data\" id=\"visibility-table\"><tr><th>rms ≤ [Jy/beam]</th><th>area [sr]</th></tr>\n";
     for (std::size_t i = 0; i < va.rms_jy_per_beam.size(); i += 6)
-      body << "<tr><td>" << fmt("%.6e", va.rms_jy_per_beam[i]) << "</td><td>" << fmt("%.6e", va.area_sr[i]) << "</td></tr>\n";
-    body << "<tr><td>" << fmt("%.6e", va.rms_jy_per_beam.back()) << "</td><td>" << fmt("%.6e", va.area_sr.back()) << "</td></tr>\n";
+      body << "<tr><td>" << fmt("%.9e", va.rms_jy_per_beam[i]) << "</td><td>" << fmt("%.6e", va.area_sr[i]) << "</td></tr>\n";
+    body << "<tr><td>" << fmt("%.9e", va.rms_jy_per_beam.back()) << "</td><td>" << fmt("%.6e", va.area_sr.back()) << "</td></tr>\n";
     body << "</table></section>\n";
   }
 
