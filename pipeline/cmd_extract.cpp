@@ -124,7 +124,8 @@ po::options_description extract_options() {
       ("output.formats", po::value<std::string>()->default_value("csv,fits,vot"), "table formats, comma-separated: csv, fits, vot")
       ("output.maps", po::value<bool>()->default_value(true), "write NAME.rms.fits, NAME.background.fits and NAME.islands.fits (labels)")
       ("output.model", po::value<bool>()->default_value(true), "write NAME.model.fits")
-      ("output.residual", po::value<bool>()->default_value(true), "write NAME.residual.fits (image - model)");
+      ("output.residual", po::value<bool>()->default_value(true), "write NAME.residual.fits (image - model)")
+      ("output.report", po::value<bool>()->default_value(false), "also write the run report NAME.report.html at the end (skerry report)");
   return d;
 }
 
@@ -943,6 +944,12 @@ int run_extract(const std::vector<std::string>& args) {
   std::snprintf(line, sizeof line, "extract %s: %zu islands, %zu components, %zu sources in %.2f s -> %s\n",
                 N.c_str(), n_isl, comps.size(), sources.size(), secs, cfg.out_dir.c_str());
   std::cout << line << std::flush;
+  if (parsed.vm["output.report"].as<bool>()) {
+    // The same page `skerry report DIR --report.name NAME` writes.
+    for (const auto& c : command_registry())
+      if (c.name == "report") return c.run({cfg.out_dir, "--report.name", N});
+    throw std::logic_error("extract: output.report needs the report sub-command, which is not built in");
+  }
   return kExitOk;
 }
 

@@ -17,6 +17,7 @@
 #include "io/atomic_file.h"
 #include "io/fits_image.h"
 #include "io/table_io.h"
+#include "skerry/catalogue.h"
 #include "skerry/gaussian.h"
 #include "skerry/plot.h"
 #include "skerry/quality.h"
@@ -286,8 +287,13 @@ ReportResult write_report(const ReportOptions& opt) {
   const auto s_int = column(comps, "s_int_jy"), s_int_err = column(comps, "s_int_err_jy");
   const auto s_peak = column(comps, "s_peak_jy_per_beam"), snr = column(comps, "snr");
   const auto flags = column(comps, "flags"), resolved = column(comps, "resolved");
+  // Quality flags: every bit but the informational ones (unresolved: the deconvolved size is an
+  // upper limit; fixed_shape: the user asked for beam-shaped fits), which do not make a
+  // measurement doubtful.
+  const std::uint32_t informational = kFlagUnresolved | kFlagFixedShape;
   std::size_t n_flagged = 0;
-  for (double f : flags) if (std::isfinite(f) && f != 0) ++n_flagged;
+  for (double f : flags)
+    if (std::isfinite(f) && f >= 0 && (static_cast<std::uint32_t>(f) & ~informational) != 0) ++n_flagged;
 
   std::ostringstream body;
   std::vector<std::string> nav;
@@ -657,7 +663,7 @@ ReportResult write_report(const ReportOptions& opt) {
     const double frac = static_cast<double>(n_flagged) / static_cast<double>(comps.rows());
     if (frac > 0.1)
       res.warnings.push_back(std::to_string(n_flagged) + " of " + std::to_string(comps.rows()) + " components (" +
-                             fmt("%.0f", 100 * frac) + " %) carry flags: check the flag bits before using them.");
+                             fmt("%.0f", 100 * frac) + " %) carry quality flags (bits other than unresolved and fixed_shape): check the flag bits before using them.");
     if (std::isfinite(compl90_jy)) {
       std::size_t below = 0;
       for (double s : s_peak) if (std::isfinite(s) && s < compl90_jy) ++below;
@@ -705,7 +711,7 @@ ReportResult write_report(const ReportOptions& opt) {
   auto card = [&](const std::string& v, const std::string& l) { html << "<div class=\"card\"><b>" << xml_escape(v) << "</b><span>" << xml_escape(l) << "</span></div>"; };
   card(have_comps ? std::to_string(comps.rows()) : "–", "components");
   card(have_sources ? std::to_string(sources.rows()) : "–", "sources");
-  card(std::to_string(n_flagged), "flagged components");
+  card(std::to_string(n_flagged), "components with quality flags");
   if (!va.area_sr.empty()) card(fmt("%.3g", va.total_area_sr * kArcsec2PerSr / 3600 / 3600) + " deg²", "area mapped");
   if (rms) card(fmt("%.3g", median(std::vector<double>(rms->pixels.data(), rms->pixels.data() + rms->pixels.size())) * 1e6) + " µJy/beam", "median rms");
   if (geom && geom->beam.valid()) card(fmt("%.3g", geom->beam.maj_arcsec) + "″ × " + fmt("%.3g", geom->beam.min_arcsec) + "″", "beam FWHM, PA " + fmt("%.0f", geom->beam.pa_deg) + "°");
