@@ -4,7 +4,7 @@
 #   skerry_test(NAME SOURCES ... [DEPS ...] [LABELS ...])  a GoogleTest binary registered with CTest
 #   skerry_benchmark(NAME SOURCES ... [DEPS ...])  a program that prints figures (never a test)
 
-set(SKERRY_WARNINGS -Wall -Wextra -Wpedantic -Wshadow=local -Wnon-virtual-dtor
+set(SKERRY_WARNINGS -Wall -Wextra -Wpedantic $<$<CXX_COMPILER_ID:GNU>:-Wshadow=local> -Wnon-virtual-dtor
     -Wno-deprecated-enum-enum-conversion
     # GCC 12 reports false -Wrestrict/-Warray-bounds positives inside libstdc++ at -O3.
     $<$<CXX_COMPILER_ID:GNU>:-Wno-restrict -Wno-array-bounds -Wno-stringop-overflow>)
