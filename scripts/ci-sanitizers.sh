@@ -16,7 +16,7 @@ cmake --build build-asan --parallel "$jobs"
 (cd build-asan && ASAN_OPTIONS=detect_leaks=1:abort_on_error=1:allocator_may_return_null=1 UBSAN_OPTIONS=print_stacktrace=1:halt_on_error=1 \
   SKERRY_SANITIZER_BUILD=1 ctest --output-on-failure --parallel "$jobs" --timeout 2400 -LE "cluster")
 
-tsan_tests=(test_background test_islands test_fitting test_simulate test_crossmatch test_forced test_resolution)
+tsan_tests=(test_background test_islands test_fitting test_simulate test_crossmatch test_bands_forced test_bands_resolution test_io)
 cmake -S . -B build-tsan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo \
   -DSKERRY_SANITIZE=thread -DSKERRY_BENCHMARKS=OFF >/dev/null
 targets=()
