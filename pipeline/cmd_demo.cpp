@@ -155,7 +155,7 @@ int run_demo(const std::vector<std::string>& args) {
                        (images / "lanternfish_1400MHz.pb.fits").string()});
   run_step("match", {(run / "lanternfish_1400MHz.components.csv").string(), ref_path.string(), "--out",
                      run.string(), "--threads", threads, "--match.mode", "one-to-one",
-                     "--match.freq_a_hz", "1.4e9", "--match.flux_b", "s_1000mhz_jy",
+                     "--match.freq_a_hz", "1.4e9", "--match.freq_b_hz", "1e9", "--match.flux_b", "s_1000mhz_jy",
                      "--match.flux_err_b", "s_1000mhz_err_jy"});
   // The spectra are measured for the 1.4 GHz catalogue's components (forced in every band).
   run_step("bands", {(images / "lanternfish_900MHz.fits").string(), img,
