@@ -354,30 +354,39 @@ std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
     throw std::invalid_argument("header text is not a sequence of 80-character cards");
   // FITS Standard 4.0 sec. 4.1.1-4.1.2.1: a header holds only printable ASCII
   // (0x20-0x7E), and a keyword only A-Z, 0-9, '-', '_' followed by blanks (lower
-  // case is tolerated, as some writers produce it). WCSLIB
-  // 7.12's header parser overflows a heap block on some cards that break this
-  // (found by fuzzing: a non-ASCII byte in place of an axis number), so such a
-  // header is refused here, before it reaches wcspih.
+  // case is tolerated, as some writers produce it). WCSLIB 7.12's header parser
+  // overflows a heap block on some cards that break this (found by fuzzing: a
+  // non-ASCII byte in place of an axis number), so such a header is refused here,
+  // before it reaches wcspih. Commentary cards (COMMENT, HISTORY, blank keyword)
+  // carry no WCS; bytes outside printable ASCII in their text are blanked in the
+  // copy given to WCSLIB rather than refused.
+  std::vector<char> text(header_cards.begin(), header_cards.end());
   for (std::size_t c = 0; c < header_cards.size(); c += 80) {
     const std::string_view card(header_cards.data() + c, 80);
     const std::size_t n = c / 80 + 1;
-    for (char ch : card)
-      if (static_cast<unsigned char>(ch) < 0x20 || static_cast<unsigned char>(ch) > 0x7E)
-        throw std::invalid_argument("header card " + std::to_string(n) +
-                                    " holds a byte that is not printable ASCII (FITS Standard 4.0 sec. 4.1.1)");
     bool blank_seen = false;
     for (std::size_t i = 0; i < 8; ++i) {
       const char ch = card[i];
-      const bool ok = (ch >= 'A' && ch <= 'Z') || (ch >= 'a' && ch <= 'z') || (ch >= '0' && ch <= '9') || ch == '-' || ch == '_';
+      const bool ok = (ch >= 'A' && ch <= 'Z') || (ch >= 'a' && ch <= 'z') || (ch >= '0' && ch <= '9') ||
+                      ch == '-' || ch == '_';
       if (ch == ' ') {
         blank_seen = true;
       } else if (!ok || blank_seen) {
-        throw std::invalid_argument("header card " + std::to_string(n) + " has an invalid keyword '" +
-                                    std::string(card.substr(0, 8)) + "' (FITS Standard 4.0 sec. 4.1.2.1)");
+        throw std::invalid_argument("header card " + std::to_string(n) +
+                                    " has an invalid keyword (FITS Standard 4.0 sec. 4.1.2.1)");
       }
     }
+    const std::string_view key = card.substr(0, 8);
+    const bool commentary = key == "COMMENT " || key == "HISTORY " || key == "        ";
+    for (std::size_t i = 8; i < 80; ++i) {
+      const auto ch = static_cast<unsigned char>(card[i]);
+      if (ch >= 0x20 && ch <= 0x7E) continue;
+      if (!commentary)
+        throw std::invalid_argument("header card " + std::to_string(n) + " (" + std::string(key) +
+                                    ") holds a byte that is not printable ASCII (FITS Standard 4.0 sec. 4.1.1)");
+      text[c + i] = ' ';
+    }
   }
-  std::vector<char> text(header_cards.begin(), header_cards.end());
   text.push_back('\0');
   const int nkeyrec = static_cast<int>(header_cards.size() / 80);
 

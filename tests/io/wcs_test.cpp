@@ -795,5 +795,38 @@ TEST(WcsCards2d, CubeCelestialPartRoundTrips) {
   }
 }
 
+// FITS Standard 4.0 sec. 4.1.1 and 4.1.2.1: header cards are printable ASCII and
+// keywords are A-Z, 0-9, '-', '_'. A card breaking this once made WCSLIB's header
+// parser overflow a heap block (found by fuzzing); such headers are refused with a
+// one-line reason, while stray bytes in commentary cards (no WCS there) are tolerated.
+TEST(WcsHeaderCards, InvalidCardsRefusedCommentaryTolerated) {
+  GridSpec g;
+  g.nx = g.ny = 64;
+  g.projection = "SIN";
+  g.crval1_deg = 201.25;
+  g.crval2_deg = -38.6;
+  g.crpix1 = g.crpix2 = 32.5;
+  g.cdelt1_deg = -1.0 / 3600;
+  g.cdelt2_deg = 1.0 / 3600;
+  const std::string h = header_for_grid(g);
+  auto card = [](std::string c) {
+    c.resize(80, ' ');
+    return c;
+  };
+  EXPECT_NO_THROW(wcs_from_header(h + card("HISTORY made at the caf\xc3\xa9")));
+  try {
+    wcs_from_header(h + card("CTYP\xe9" "2  = 'DEC--SIN'"));
+    FAIL() << "invalid keyword accepted";
+  } catch (const std::invalid_argument& e) {
+    EXPECT_NE(std::string(e.what()).find("invalid keyword"), std::string::npos) << e.what();
+  }
+  try {
+    wcs_from_header(h + card("OBJECT  = 'caf\xc3\xa9'"));
+    FAIL() << "non-ASCII value accepted";
+  } catch (const std::invalid_argument& e) {
+    EXPECT_NE(std::string(e.what()).find("not printable ASCII"), std::string::npos) << e.what();
+  }
+}
+
 }  // namespace
 }  // namespace skerry
