@@ -6,12 +6,15 @@
 # edges inside the library's task scheduler; tests/tsan.supp suppresses reports
 # whose frames lie entirely inside libtbb (never our own frames), and the TSan
 # tests run with TBB's own worker threads, as in production.
+# Warnings are checked (as errors) by the release build of scripts/test.sh; under the
+# sanitizers GCC 12 reports false -Wmaybe-uninitialized inside libstdc++'s <regex>,
+# so these builds do not turn warnings into errors.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 jobs=$(nproc)
 
 cmake -S . -B build-asan -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo \
-  -DSKERRY_SANITIZE="address;undefined" -DSKERRY_BENCHMARKS=OFF -DSKERRY_WERROR=ON >/dev/null
+  -DSKERRY_SANITIZE="address;undefined" -DSKERRY_BENCHMARKS=OFF -DSKERRY_WERROR=OFF >/dev/null
 cmake --build build-asan --parallel "$jobs"
 (cd build-asan && ASAN_OPTIONS=detect_leaks=1:abort_on_error=1:allocator_may_return_null=1 UBSAN_OPTIONS=print_stacktrace=1:halt_on_error=1 \
   SKERRY_SANITIZER_BUILD=1 ctest --output-on-failure --parallel "$jobs" --timeout 2400 -LE "cluster")
