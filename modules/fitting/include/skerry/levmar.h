@@ -7,7 +7,7 @@
 /// J = dr/dp. Weighted problems pass r_i = (d_i - m_i(p)) / sigma_i.
 ///
 /// Method (Levenberg 1944, Q. Appl. Math. 2, 164; Marquardt 1963, J. SIAM 11, 431;
-/// the damping scaled by diag(J^T J) as in Moré 1978, Numerical Analysis, Springer LNM 630, p. 105):
+/// the damping scaled by diag(J^T J) as in Moré 1978, Numerical Analysis, Springer LNM 630, pp. 105-116, page numbers from memory):
 ///   (J^T J + lambda D) delta = -J^T r,   D = running maximum over the iterations
 ///   of diag(J^T J) (floored at 1e-15 of its largest entry),
 /// the step is accepted when chi2 decreases, then lambda shrinks; otherwise
