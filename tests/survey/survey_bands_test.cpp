@@ -24,30 +24,6 @@ using nlohmann::json;
 
 namespace {
 
-std::set<std::string> tile_set(const std::vector<std::string>& events) {
-  std::set<std::string> s;
-  for (const auto& e : events) s.insert(json::parse(e).at("tile").get<std::string>());
-  return s;
-}
-
-/// Flips the lowest mantissa bit of the first data pixel in place (same size
-/// and inode, new content).
-void flip_first_pixel(const std::string& path) {
-  std::string bytes = read_file(path);
-  std::size_t end = std::string::npos;
-  for (std::size_t i = 0; i + 80 <= bytes.size(); i += 80)
-    if (bytes.compare(i, 8, "END     ") == 0) {
-      end = i;
-      break;
-    }
-  ASSERT_NE(end, std::string::npos);
-  const std::size_t data = (end / 2880 + 1) * 2880;
-  int fd = ::open(path.c_str(), O_WRONLY);
-  ASSERT_GE(fd, 0);
-  char c = static_cast<char>(bytes[data + 3] ^ 0x01);
-  ASSERT_EQ(::pwrite(fd, &c, 1, static_cast<off_t>(data + 3)), 1);
-  ::close(fd);
-}
 
 bool same_value(double a, double b) { return (std::isnan(a) && std::isnan(b)) || a == b; }
 
@@ -65,7 +41,7 @@ TEST(SurveyBands, SpectraJoinedAndEveryBandFileIsAnInput) {
   auto r = run_skerry({"survey", cfg});
   ASSERT_EQ(r.code, 0) << r.err << r.out;
   // Tiles are named without the band suffix; only the detection-band files are tiles.
-  EXPECT_EQ(tile_set(last_run_events(d + "/out", "tile")),
+  EXPECT_EQ(tiles_of(last_run_events(d + "/out", "tile")),
             (std::set<std::string>{"tile_00", "tile_01", "tile_10", "tile_11"}));
   const std::string catpath = d + "/out/lanternfish.components.csv";
   const skerry::Table cat = skerry::read_table(catpath);
@@ -107,11 +83,11 @@ TEST(SurveyBands, SpectraJoinedAndEveryBandFileIsAnInput) {
   EXPECT_EQ(run_skerry({"survey", cfg}).code, 5);
 
   // Editing one band file (not the detection band) reprocesses that tile alone.
-  flip_first_pixel(band3);
+  edit_first_pixel(band3);
   r = run_skerry({"survey", cfg});
   ASSERT_EQ(r.code, 0) << r.err;
   auto ev = last_run_events(d + "/out", "tile");
-  ASSERT_EQ(tile_set(ev), std::set<std::string>{"tile_01"});
+  ASSERT_EQ(tiles_of(ev), std::set<std::string>{"tile_01"});
   EXPECT_EQ(json::parse(ev[0]).at("reason").get<std::string>(), "content changed");
   EXPECT_EQ(run_skerry({"survey", cfg}).code, 5);
 

@@ -2,6 +2,7 @@
 // Helpers of the survey pipeline tests: run the skerry executable, build a small
 // simulated survey (one simulated field of the invented Lanternfish Field cut
 // into overlapping tiles), read files.
+#include <set>
 #include <string>
 #include <vector>
 
@@ -48,5 +49,12 @@ void write_file(const std::string& path, const std::string& content);
 /// Events of the JSON-lines log (`survey.jsonl`) with "event" == `event`, of the
 /// last run only (after its run_start), as raw JSON text per line.
 std::vector<std::string> last_run_events(const std::string& out_dir, const std::string& event);
+
+/// The tiles named in JSON-lines log events (their "tile" field).
+std::set<std::string> tiles_of(const std::vector<std::string>& events);
+
+/// Changes the lowest mantissa byte of the first data pixel of a FITS file in
+/// place (same size and inode, new content); a gtest failure if it has no END card.
+void edit_first_pixel(const std::string& path);
 
 }  // namespace skerry::testing

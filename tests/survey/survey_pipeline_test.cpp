@@ -35,30 +35,6 @@ namespace {
 
 const char* kCatalogue = "/out/lanternfish.components.csv";
 
-std::set<std::string> tiles_of(const std::vector<std::string>& events) {
-  std::set<std::string> s;
-  for (const auto& e : events) s.insert(json::parse(e).at("tile").get<std::string>());
-  return s;
-}
-
-/// Changes the least significant byte of the first data pixel in place (same
-/// size, same inode, new content).
-void edit_first_pixel(const std::string& path) {
-  std::string bytes = read_file(path);
-  std::size_t end = std::string::npos;
-  for (std::size_t i = 0; i + 80 <= bytes.size(); i += 80)
-    if (bytes.compare(i, 8, "END     ") == 0) {
-      end = i;
-      break;
-    }
-  ASSERT_NE(end, std::string::npos);
-  const std::size_t data = (end / 2880 + 1) * 2880;
-  int fd = ::open(path.c_str(), O_WRONLY);
-  ASSERT_GE(fd, 0);
-  char c = static_cast<char>(bytes[data + 3] ^ 0x01);  // big-endian float: byte 3 is the lowest mantissa byte
-  ASSERT_EQ(::pwrite(fd, &c, 1, static_cast<off_t>(data + 3)), 1);
-  ::close(fd);
-}
 
 void touch_later(const std::string& path) {
   struct stat st {};
