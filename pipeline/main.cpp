@@ -9,6 +9,7 @@
 
 #include "command.h"
 #include "errors.h"
+#include "io/fits_image.h"
 #include "version.h"
 
 namespace {
@@ -45,6 +46,7 @@ int main(int argc, char** argv) {
     return skerry::kExitUsage;
   }
   std::vector<std::string> rest(args.begin() + 1, args.end());
+  skerry::initialise_cfitsio();  // before any thread exists (see io/fits_image.h)
   try {
     return it->run(rest);
   } catch (const skerry::UsageError& e) {

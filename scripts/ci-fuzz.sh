@@ -6,6 +6,10 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 seconds=${FUZZ_SECONDS:-60}
+# A fixed seed makes the CI run repeatable (the same inputs in the same order, as far
+# as the time allows); search for new crashes with longer runs and other seeds
+# (FUZZ_SEED=0 lets libFuzzer pick one).
+seed=${FUZZ_SEED:-1}
 CC=clang CXX=clang++ cmake -S . -B build-fuzz -G Ninja -DCMAKE_BUILD_TYPE=RelWithDebInfo \
   -DSKERRY_FUZZ=ON -DSKERRY_BENCHMARKS=OFF -DBUILD_TESTING=ON >/dev/null
 targets=(fits_image fits_table csv votable config)
@@ -19,7 +23,7 @@ for t in "${targets[@]}"; do
   # allocator_may_return_null: an absurd allocation inside CFITSIO (from a header
   # field) returns NULL as in production, where CFITSIO reports it as an error;
   # our own code would throw std::bad_alloc, which the targets do not catch.
-  if ASAN_OPTIONS=detect_leaks=1:allocator_may_return_null=1 ./build-fuzz/tests/fuzz/fuzz_$t "$work" -max_total_time="$seconds" \
+  if ASAN_OPTIONS=detect_leaks=1:allocator_may_return_null=1 ./build-fuzz/tests/fuzz/fuzz_$t "$work" -max_total_time="$seconds" -seed="$seed" \
        -rss_limit_mb=4096 -timeout=20 -artifact_prefix=build-fuzz/crashes/$t- -print_final_stats=1 >"$log" 2>&1; then
     :
   else

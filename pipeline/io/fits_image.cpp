@@ -13,6 +13,7 @@
 
 #include <algorithm>
 #include <cctype>
+#include <charconv>
 #include <cmath>
 #include <cstdint>
 #include <cstring>
@@ -32,12 +33,114 @@ namespace skerry {
 
 namespace fs = std::filesystem;
 
+void initialise_cfitsio() {
+  static std::once_flag once;
+  std::call_once(once, [] { fits_init_cfitsio(); });
+}
+
+void check_fits_header_text(const std::string& path) {
+  std::ifstream in(path, std::ios::binary);
+  if (!in) return;  // the reader reports it
+  std::error_code ec;
+  const std::uint64_t size = fs::file_size(path, ec);
+  if (ec) return;
+  char head[2] = {0, 0};
+  in.read(head, 2);
+  if (in.gcount() == 2 && static_cast<unsigned char>(head[0]) == 0x1f && static_cast<unsigned char>(head[1]) == 0x8b)
+    return;  // gzip: CFITSIO decompresses it
+  auto int_value = [](std::string_view card, long long& out) {
+    std::string_view v = card.substr(10, 20);  // fixed format: value in columns 11-30
+    while (!v.empty() && v.front() == ' ') v.remove_prefix(1);
+    while (!v.empty() && v.back() == ' ') v.remove_suffix(1);
+    if (!v.empty() && v.front() == '+') v.remove_prefix(1);
+    const auto r = std::from_chars(v.data(), v.data() + v.size(), out);
+    return !v.empty() && r.ec == std::errc() && r.ptr == v.data() + v.size();
+  };
+  std::uint64_t offset = 0;
+  std::vector<char> block(2880);
+  for (int hdu = 1; hdu <= 10000 && offset < size; ++hdu) {
+    long long bitpix = 0, naxis = -1, pcount = 0, gcount = 1;
+    std::vector<long long> naxes;
+    bool groups = false, end = false, readable = true;
+    for (std::uint64_t card_no = 0; !end;) {
+      in.seekg(static_cast<std::streamoff>(offset));
+      in.read(block.data(), 2880);
+      if (in.gcount() != 2880) return;  // truncated header: CFITSIO reports it
+      offset += 2880;
+      for (int c = 0; c < 36; ++c) {
+        const std::string_view card(block.data() + 80 * c, 80);
+        ++card_no;
+        const std::string_view key = card.substr(0, 8);
+        if (key == "END     ") {
+          end = true;
+          break;
+        }
+        if (key == "COMMENT " || key == "HISTORY " || key == "        ") continue;
+        auto where = [&] {
+          std::string k(key);
+          for (char& ch : k)
+            if (static_cast<unsigned char>(ch) < 0x20 || static_cast<unsigned char>(ch) > 0x7E) ch = '?';
+          while (!k.empty() && k.back() == ' ') k.pop_back();
+          return "HDU " + std::to_string(hdu) + ", header card " + std::to_string(card_no) + " (" + k + ")";
+        };
+        for (char ch : card)
+          if (static_cast<unsigned char>(ch) < 0x20 || static_cast<unsigned char>(ch) > 0x7E)
+            throw InputError(path, where() + " holds a byte that is not printable ASCII (FITS Standard 4.0 sec. 4.1.2.1)");
+        if (card.substr(8, 2) == "= ") {
+          std::size_t i = 10;
+          while (i < 80 && card[i] == ' ') ++i;
+          if (i < 80 && card[i] == '\'') {
+            bool closed = false;
+            for (++i; i < 80 && !closed; ++i) {
+              if (card[i] != '\'') continue;
+              if (i + 1 < 80 && card[i + 1] == '\'')
+                ++i;  // a doubled quote inside the string
+              else
+                closed = true;
+            }
+            if (!closed)
+              throw InputError(path, where() + " has a string value without its closing quote (FITS Standard 4.0 sec. 4.2.1.1)");
+          }
+        }
+        long long v = 0;
+        if (key == "BITPIX  ") {
+          readable &= int_value(card, bitpix);
+        } else if (key == "NAXIS   ") {
+          readable &= int_value(card, naxis) && naxis >= 0 && naxis <= 999;
+        } else if (key.substr(0, 5) == "NAXIS") {
+          readable &= int_value(card, v) && v >= 0;
+          naxes.push_back(v);
+        } else if (key == "PCOUNT  ") {
+          readable &= int_value(card, pcount) && pcount >= 0;
+        } else if (key == "GCOUNT  ") {
+          readable &= int_value(card, gcount) && gcount >= 0;
+        } else if (key == "GROUPS  ") {
+          groups = card.substr(10, 20).find('T') != std::string_view::npos;
+        }
+      }
+    }
+    // Data size, FITS Standard 4.0 eq. 2: |BITPIX| x GCOUNT x (PCOUNT + NAXIS1 x
+    // ... x NAXISm) bits, NAXIS1 left out of the product for random groups.
+    if (!readable || naxis < 0 || bitpix == 0 || static_cast<long long>(naxes.size()) != naxis) return;
+    long double bits = 0;
+    if (naxis > 0) {
+      long double prod = 1;
+      for (long long k = (groups && naxes[0] == 0) ? 1 : 0; k < naxis; ++k) prod *= static_cast<long double>(naxes[static_cast<std::size_t>(k)]);
+      bits = std::fabs(static_cast<long double>(bitpix)) * static_cast<long double>(gcount) *
+             (static_cast<long double>(pcount) + prod);
+    }
+    const long double blocks = std::ceil(bits / 8.0L / 2880.0L);
+    if (blocks * 2880.0L > static_cast<long double>(size)) return;  // longer than the file: CFITSIO reports it
+    offset += static_cast<std::uint64_t>(blocks) * 2880;
+  }
+}
+
 namespace {
 
 // CFITSIO built without reentrancy support must not be entered by two threads.
 std::recursive_mutex g_cfitsio_mutex;
 struct CfitsioGuard {
-  CfitsioGuard() : locked(!fits_is_reentrant()) {
+  CfitsioGuard() : locked((initialise_cfitsio(), !fits_is_reentrant())) {
     if (locked) g_cfitsio_mutex.lock();
   }
   ~CfitsioGuard() {
@@ -258,6 +361,7 @@ SkyImage read_sky_image(const std::string& path, const ImageReadOptions& opt) {
     if (!gz && (got < 9 || std::memcmp(head, "SIMPLE  =", 9) != 0))
       throw InputError(path, "not a FITS file (does not start with SIMPLE  =)");
   }
+  check_fits_header_text(path);
 
   CfitsioGuard guard;
   FitsHandle fits;

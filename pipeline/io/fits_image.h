@@ -31,6 +31,22 @@
 
 namespace skerry {
 
+/// Initialises CFITSIO once (std::call_once). CFITSIO initialises itself on first
+/// use, but tests its `need_to_initialize` flag without a lock (cfileio.c), so two
+/// threads opening their first files at once race on it (ThreadSanitizer found
+/// this with parallel survey workers). Every FITS reader and writer here calls it
+/// first; `main` calls it before any thread exists.
+void initialise_cfitsio();
+
+/// Checks the header text of every HDU of an uncompressed FITS file before CFITSIO
+/// opens it (FITS Standard 4.0 secs. 3.3, 4.1): each keyword card other than
+/// COMMENT, HISTORY and blank-keyword cards holds printable ASCII only (0x20-0x7E)
+/// and a string value has its closing quote. CFITSIO 4.2 overruns a buffer on
+/// some headers that break this (found by fuzz_fits_table), so they are refused
+/// with an InputError naming the HDU and card. A file this scan cannot follow (no
+/// END, a size keyword it cannot read, gzip) is left to CFITSIO's own checks.
+void check_fits_header_text(const std::string& path);
+
 struct ImageReadOptions {
   /// HDU: "" = the primary HDU (or the first image extension when the primary has
   /// no data); a number ("2", 1-based as CFITSIO counts HDUs) or an EXTNAME.

@@ -32,6 +32,7 @@
 
 #include "errors.h"
 #include "io/atomic_file.h"
+#include "io/fits_image.h"
 #include "skerry/table_text.h"
 
 namespace skerry {
@@ -150,6 +151,7 @@ void write_fits_table(const Table& t, const std::string& path) {
   AtomicOutput out(path);
   int status = 0;
   fitsfile* raw = nullptr;
+  initialise_cfitsio();
   fits_create_file(&raw, out.temp_path().c_str(), &status);
   if (status) throw OutputError(path, "cannot create FITS file: " + fits_status_text(status));
   FitsPtr f(raw);
@@ -285,6 +287,8 @@ std::string read_str_key(fitsfile* f, const std::string& key) {
 Table read_fits_table(const std::string& path) {
   int status = 0;
   fitsfile* raw = nullptr;
+  initialise_cfitsio();
+  check_fits_header_text(path);
   fits_open_table(&raw, path.c_str(), READONLY, &status);
   if (status) {
     std::string why = fits_status_text(status);

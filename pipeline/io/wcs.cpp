@@ -386,6 +386,29 @@ std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
                                     ") holds a byte that is not printable ASCII (FITS Standard 4.0 sec. 4.1.1)");
       text[c + i] = ' ';
     }
+    // FITS Standard 4.0 sec. 4.2.1.1: a string value is enclosed in single quotes
+    // (a quote inside it doubled). WCSLIB 7.12's parser overruns a buffer on a
+    // string without its closing quote (found by fuzz_fits_image), so such a
+    // card is refused here as well.
+    if (!commentary && card.substr(8, 2) == "= ") {
+      std::size_t i = 10;
+      while (i < 80 && card[i] == ' ') ++i;
+      if (i < 80 && card[i] == '\'') {
+        bool closed = false;
+        for (++i; i < 80; ++i) {
+          if (card[i] != '\'') continue;
+          if (i + 1 < 80 && card[i + 1] == '\'') {
+            ++i;  // doubled quote inside the string
+            continue;
+          }
+          closed = true;
+          break;
+        }
+        if (!closed)
+          throw std::invalid_argument("header card " + std::to_string(n) + " (" + std::string(key) +
+                                      ") has a string value without its closing quote (FITS Standard 4.0 sec. 4.2.1.1)");
+      }
+    }
   }
   text.push_back('\0');
   const int nkeyrec = static_cast<int>(header_cards.size() / 80);

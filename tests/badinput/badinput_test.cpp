@@ -275,6 +275,31 @@ TEST(BadInputTable, HeaderLiesAboutAxisLengths) {
   expect_refused(r, skerry::kExitBadInput, arg(d / "lying.fits"), "96 x 960", d / "out");
 }
 
+// FITS Standard 4.0 sec. 4.1.2.1: header cards hold printable ASCII only
+// (0x20-0x7E). A NUL byte inside a keyword card's value is refused before
+// CFITSIO or WCSLIB parse the header, naming the HDU and card.
+TEST(BadInputTable, HeaderCardWithControlByte) {
+  TempDir d;
+  ImageSpec s;
+  write_image(d / "nul.fits", s);
+  patch_card(d / "nul.fits", "CRVAL1", std::string("201.2") + '\0' + "5");
+  const Outcome r = extract(d / "nul.fits", d / "out");
+  expect_refused(r, skerry::kExitBadInput, arg(d / "nul.fits"), "(CRVAL1) holds a byte that is not printable ASCII",
+                 d / "out");
+}
+
+// FITS Standard 4.0 sec. 4.2.1.1: a string value is enclosed in single quotes.
+// One without its closing quote is refused (WCSLIB's parser would overrun a buffer).
+TEST(BadInputTable, HeaderStringWithoutClosingQuote) {
+  TempDir d;
+  ImageSpec s;
+  write_image(d / "quote.fits", s);
+  patch_card(d / "quote.fits", "CTYPE2", "'DEC--SIN");
+  const Outcome r = extract(d / "quote.fits", d / "out");
+  expect_refused(r, skerry::kExitBadInput, arg(d / "quote.fits"), "(CTYPE2) has a string value without its closing quote",
+                 d / "out");
+}
+
 // Resources: a header whose plane needs more than the machine's physical memory
 // is refused before anything is allocated. The file really is that large (a
 // sparse file: the size passes the truncation check), so the memory guard is

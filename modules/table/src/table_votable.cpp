@@ -284,7 +284,11 @@ Table parse_votable(std::string_view text) {
   std::size_t cur_field = SIZE_MAX;
 
   auto start_data = [&]() {
-    if (cols.size() == fields.size() && !cols.empty()) return;
+    if (!cols.empty()) {
+      if (cols.size() == fields.size()) return;
+      // A FIELD between two DATA elements (found by fuzz_votable).
+      fail("FIELD after the TABLE's DATA", line);
+    }
     if (fields.empty()) fail("TABLE has DATA but no FIELD", line);
     std::unordered_set<std::string> seen;
     for (auto& f : fields) {
