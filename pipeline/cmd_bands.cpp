@@ -5,11 +5,43 @@
 // spectral index map at a common resolution.
 //
 // Detection source (in this order): --catalogue FILE (a user catalogue);
-// otherwise the catalogue that `skerry extract` makes from one band,
-// --detect.band K (1-based). The default band is the one with the smallest beam
-// area: it gives the best positions and intrinsic (deconvolved) sizes and
-// separates blends, so the fixed-shape model of every coarser band is fully
-// determined by it. (A combined signal-to-noise detection image is not offered.)
+// otherwise the catalogue that `skerry extract` makes from
+//   detect.mode = band (the default): one band, --detect.band K (1-based), by
+//     default the band with the smallest beam area; or
+//   detect.mode = combined: a combined signal-to-noise image of all bands.
+// The combined image: every band is regridded onto the maps' common grid
+// (maps.grid_band) and convolved to the common beam (modules/resolution, as for
+// the spectral index map), its rms is re-estimated after convolution (the
+// background was subtracted before), and the bands are combined into
+//   D = sum_b a_b I_b / sigma_b^2 / sqrt(sum_b a_b^2 / sigma_b^2),
+//   a_b = (nu_b/nu_ref)^detect.alpha,
+// the matched inverse-variance weighted sum (resolution.h
+// combined_detection_image; Szalay, Connolly & Szokoly 1999, AJ 117, 68;
+// Bevington & Robinson 2003 eqs. 4.17-4.19). With independent noise in the
+// bands D ~ N(0,1) on empty sky, so extract runs on it with a fixed rms of 1 and
+// a fixed background of 0 and detect.peak_snr keeps its meaning: the per-pixel
+// false-detection probability of a threshold t is erfc(t/sqrt 2)/2 (2.9e-7 for
+// t = 5), as in one band. D is linear, so sources keep the common beam's
+// Gaussian shape: positions and intrinsic shapes (deconvolved from the common
+// beam) come from extract's fits. (The chi-square image sqrt(sum SNR_b^2) of
+// Szalay et al. needs no assumed spectrum, but its null is a chi distribution
+// with a positive mean and its sources are not Gaussians, so extract's fits
+// and thresholds would not hold.)
+// Why the single band is the default: the forced model of every band is the
+// component's intrinsic shape convolved with that band's beam, so the shapes
+// and the separation of blends are best measured at the finest resolution; the
+// combined image is at the coarsest (common) beam, where blends merge and
+// sizes below that beam are unresolved. The combined image is the choice for
+// depth (it reaches sqrt(N) deeper for sources whose spectrum matches the
+// assumed one) and for a selection not tied to one frequency (a single
+// high-frequency band misses steep-spectrum sources).
+//
+// Forced measurement (modules/forced): positions fixed by default;
+// forced.max_shift_arcsec > 0 lets the centres of the components detected in a
+// band move within +-max_shift along each pixel axis (bounded Levenberg-
+// Marquardt; forced.h), and the spectral and forced tables gain the fitted
+// shift, its error and an at-bound flag. The columns appear only then, so a run
+// with max_shift 0 writes the same bytes as one without the option.
 //
 // Outputs (NAME = output.name, default the first image's OBJECT or file stem):
 //   NAME.spectra.{csv,fits,vot}  one row per component: per-band flux densities,
@@ -17,7 +49,9 @@
 //   NAME.forced.{csv,fits,vot}   one row per component and band: the forced fit
 //   NAME.alpha.fits, NAME.alpha_err.fits  spectral index map and its error on the
 //                                common grid, with the common beam
-//   NAME.detect/                 the detection band's extract outputs (if used)
+//   NAME.detect/                 extract's outputs of the detection (if used);
+//                                with detect.mode combined also
+//                                NAME.detect.snr.fits, the combined image D
 //   NAME.run.json                run record
 #include <tbb/blocked_range.h>
 #include <tbb/parallel_for.h>
@@ -64,8 +98,10 @@ po::options_description bands_options() {
       ("bands.flux_scale_frac", po::value<std::string>()->default_value("0.03"), "fractional flux-scale uncertainty: one value, or one per band (comma-separated)")
       ("bands.accept_bunit", po::value<bool>()->default_value(false), "accept any BUNIT and treat the values as Jy/beam")
       // [detect]
-      ("detect.band", po::value<int>()->default_value(0), "1-based band whose `skerry extract` catalogue gives the components; 0 = the band with the smallest beam")
-      ("detect.peak_snr", po::value<double>()->default_value(5.0), "detection threshold passed to extract (island peak SNR)")
+      ("detect.mode", po::value<std::string>()->default_value("band"), "band = detect in one band (detect.band); combined = detect on the matched signal-to-noise image of all bands at the common resolution")
+      ("detect.band", po::value<int>()->default_value(0), "detect.mode band: 1-based band whose `skerry extract` catalogue gives the components; 0 = the band with the smallest beam")
+      ("detect.alpha", po::value<double>()->default_value(-0.7), "detect.mode combined: spectral index assumed by the band weights (S ~ nu^alpha)")
+      ("detect.peak_snr", po::value<double>()->default_value(5.0), "detection threshold passed to extract (island peak SNR; for the combined image in units of its N(0,1) noise)")
       // [noise]
       ("noise.box_beams", po::value<double>()->default_value(30.0), "box side for each band's background/rms maps [beams]")
       // [forced]
@@ -73,6 +109,7 @@ po::options_description bands_options() {
       ("forced.limit_snr", po::value<double>()->default_value(fo.limit_snr), "upper limit = this x local rms (on the flux scale of the component's shape)")
       ("forced.fit_radius_sigma", po::value<double>()->default_value(fo.fit_radius_sigma), "pixels within this many model sigmas of a component are fitted")
       ("forced.blend_radius_sigma", po::value<double>()->default_value(fo.blend_radius_sigma), "components closer than this (sigma units of the summed shapes) are fitted together")
+      ("forced.max_shift_arcsec", po::value<double>()->default_value(fo.max_shift_arcsec), "largest centre shift per pixel axis [arcsec] the forced fit may make for components detected in the band; 0 = positions fixed")
       // [maps]
       ("maps.enabled", po::value<bool>()->default_value(true), "write the spectral index map and its error")
       ("maps.min_snr", po::value<double>()->default_value(5.0), "a map pixel needs I / rms >= this in every band (rms re-estimated after convolution)")
@@ -235,6 +272,16 @@ int run_bands(const std::vector<std::string>& args) {
     }
   }
   const int detect_band = vm["detect.band"].as<int>();
+  const std::string detect_mode = vm["detect.mode"].as<std::string>();
+  if (detect_mode != "band" && detect_mode != "combined")
+    throw UsageError("detect.mode = " + detect_mode + " breaks 'band or combined'");
+  const bool combined = detect_mode == "combined" && vm["catalogue"].as<std::string>().empty();
+  DetectionImageOptions dio;
+  dio.alpha = vm["detect.alpha"].as<double>();
+  require(std::isfinite(dio.alpha) && std::abs(dio.alpha) <= 10.0, "detect.alpha", std::to_string(dio.alpha),
+          "|detect.alpha| <= 10");
+  require(vm["detect.peak_snr"].as<double>() > 0.0, "detect.peak_snr", std::to_string(vm["detect.peak_snr"].as<double>()),
+          "detect.peak_snr > 0");
   require(detect_band >= 0 && detect_band <= static_cast<int>(nb), "detect.band", std::to_string(detect_band),
           "0 <= detect.band <= number of images");
   const int grid_band_opt = vm["maps.grid_band"].as<int>();
@@ -249,6 +296,9 @@ int run_bands(const std::vector<std::string>& args) {
   require(fopt.limit_snr > 0.0, "forced.limit_snr", std::to_string(fopt.limit_snr), "forced.limit_snr > 0");
   require(fopt.fit_radius_sigma >= 1.0, "forced.fit_radius_sigma", std::to_string(fopt.fit_radius_sigma),
           "forced.fit_radius_sigma >= 1");
+  fopt.max_shift_arcsec = vm["forced.max_shift_arcsec"].as<double>();
+  require(fopt.max_shift_arcsec >= 0.0 && std::isfinite(fopt.max_shift_arcsec), "forced.max_shift_arcsec",
+          std::to_string(fopt.max_shift_arcsec), "forced.max_shift_arcsec >= 0");
   require(fopt.blend_radius_sigma >= 0.0, "forced.blend_radius_sigma", std::to_string(fopt.blend_radius_sigma),
           "forced.blend_radius_sigma >= 0");
   const double map_snr = vm["maps.min_snr"].as<double>();
@@ -328,6 +378,61 @@ int run_bands(const std::vector<std::string>& args) {
   }
   t_noise.stop();
 
+  // ---- common resolution (the combined detection image and the maps) ---------------
+  // Every band regridded onto the grid of band g (Jy/beam, no pixel-area factor),
+  // convolved to the common beam, and its rms re-estimated after convolution.
+  struct CommonResolution {
+    bool done = false;
+    Beam beam;
+    std::size_t g = 0;
+    std::vector<ImageF> conv, crms;
+  } cr;
+  auto make_common = [&] {
+    if (cr.done) return;
+    StageTimer t_common(record, "common_resolution");
+    std::vector<Beam> beams;
+    for (const auto& im : bands) beams.push_back(im.beam);
+    cr.beam = common_beam(beams, cbo);
+    if (grid_band_opt > 0) {
+      cr.g = static_cast<std::size_t>(grid_band_opt - 1);
+    } else {
+      double best = -1.0;
+      for (std::size_t b = 0; b < nb; ++b) {
+        const double area = bands[b].beam.maj_arcsec * bands[b].beam.min_arcsec;
+        if (area > best) {
+          best = area;
+          cr.g = b;
+        }
+      }
+    }
+    const SkyImage& grid = bands[cr.g];
+    const long gx = grid.pixels.cols(), gy = grid.pixels.rows();
+    const Geometry gg = centre_geometry(grid);
+    cr.conv.assign(nb, ImageF());
+    cr.crms.assign(nb, ImageF());
+    for (std::size_t b = 0; b < nb; ++b) {
+      // Regrid (Jy/beam, no pixel-area factor) then convolve to the common beam.
+      ImageF on = (b == cr.g) ? bands[b].pixels : reproject(bands[b].pixels, *bands[b].wcs, *grid.wcs, gx, gy);
+      cr.conv[b] = convolve_to_beam(on, *grid.wcs, bands[b].beam, cr.beam).image;
+      // The rms changes with convolution: re-estimate it on the convolved map.
+      BackgroundOptions bo;
+      bo.beam_area_pix = kGaussAreaFactor * cr.beam.maj_arcsec * cr.beam.min_arcsec / (gg.pixel_arcsec * gg.pixel_arcsec);
+      bo.box_beams = box_beams;
+      BackgroundResult r = estimate_background(cr.conv[b], bo);
+      if (r.status == BackgroundStatus::no_data)
+        throw NoDataError(paths[b], "no unblanked pixels on the common grid (band " + std::to_string(cr.g + 1) + "'s)");
+      if (r.status == BackgroundStatus::zero_rms)
+        throw NoDataError(paths[b], "the noise rms is zero on the common grid (a constant or noiseless image?)");
+      cr.crms[b] = r.maps.rms_image();
+    }
+    cr.done = true;
+  };
+  auto common_cards = [&] {
+    return std::vector<std::pair<std::string, std::string>>{{"BMAJ", fits_real(cr.beam.maj_arcsec / 3600.0)},
+                                                            {"BMIN", fits_real(cr.beam.min_arcsec / 3600.0)},
+                                                            {"BPA", fits_real(cr.beam.pa_deg)}};
+  };
+
   // ---- components -------------------------------------------------------------------
   StageTimer t_cat(record, "catalogue");
   std::vector<ForcedSource> comps;
@@ -336,8 +441,8 @@ int run_bands(const std::vector<std::string>& args) {
     comps = read_components(catalogue_path);
     record.add_input("catalogue", catalogue_path);
   } else {
-    det_band = detect_band;
-    if (det_band == 0) {
+    det_band = combined ? 0 : detect_band;
+    if (det_band == 0 && !combined) {
       double best = std::numeric_limits<double>::infinity();
       for (std::size_t b = 0; b < nb; ++b) {
         const double area = bands[b].beam.maj_arcsec * bands[b].beam.min_arcsec;
@@ -352,21 +457,45 @@ int run_bands(const std::vector<std::string>& args) {
       if (c.name == "extract") extract = &c;
     if (!extract) throw std::logic_error("the extract sub-command is not built in");
     const std::string det_dir = (fs::path(out_dir) / (name + ".detect")).string();
-    std::vector<std::string> ea{paths[det_band - 1], "--out", det_dir, "--output.name", name + ".detect",
+    std::string det_image;
+    std::vector<std::string> extra;
+    if (combined) {
+      make_common();
+      std::vector<const ImageF*> ims, rmss;
+      for (std::size_t b = 0; b < nb; ++b) {
+        ims.push_back(&cr.conv[b]);
+        rmss.push_back(&cr.crms[b]);
+      }
+      const DetectionImageResult d = combined_detection_image(ims, rmss, std::vector<double>(nb, 0.0), freq, dio);
+      if (d.n_pixels == 0) throw NoDataError(paths[cr.g], "the combined detection image has no pixel with a value");
+      double log_ref = 0.0;
+      for (double f : freq) log_ref += std::log(f) / static_cast<double>(nb);
+      auto cards = common_cards();
+      cards.push_back({"DETALPHA", fits_real(dio.alpha)});
+      cards.push_back({"DETKIND", "'matched SNR: sum a I/s^2 / sqrt(sum a^2/s^2)'"});
+      fs::create_directories(det_dir);
+      det_image = (fs::path(det_dir) / (name + ".detect.snr.fits")).string();
+      write_fits_image(det_image, d.snr, bands[cr.g], "", cards);
+      // D is N(0,1) on empty sky: no background or rms to estimate.
+      extra = {"--noise.fixed_rms", "1", "--noise.fixed_background", "0", "--image.accept_bunit", "true",
+               "--image.freq_mhz", fits_real(std::exp(log_ref) / 1e6)};
+      record.set_value("detection_n_partial_pixels", std::to_string(d.n_partial));
+    } else {
+      det_image = paths[det_band - 1];
+      if (freq_override[det_band - 1] > 0.0) extra = {"--image.freq_mhz", fits_real(freq_override[det_band - 1] / 1e6)};
+      if (vm["bands.accept_bunit"].as<bool>()) {
+        extra.push_back("--image.accept_bunit");
+        extra.push_back("true");
+      }
+    }
+    std::vector<std::string> ea{det_image, "--out", det_dir, "--output.name", name + ".detect",
                                 "--output.formats", "csv", "--output.maps", "false", "--output.model", "false",
                                 "--output.residual", "false", "--detect.peak_snr",
                                 fits_real(vm["detect.peak_snr"].as<double>()), "--threads",
                                 std::to_string(vm["threads"].as<int>())};
-    if (freq_override[det_band - 1] > 0.0) {
-      ea.push_back("--image.freq_mhz");
-      ea.push_back(fits_real(freq_override[det_band - 1] / 1e6));
-    }
-    if (vm["bands.accept_bunit"].as<bool>()) {
-      ea.push_back("--image.accept_bunit");
-      ea.push_back("true");
-    }
+    ea.insert(ea.end(), extra.begin(), extra.end());
     const int rc = extract->run(ea);
-    if (rc != kExitOk) throw ExitError(rc, "detection with extract on " + paths[det_band - 1] + " failed");
+    if (rc != kExitOk) throw ExitError(rc, "detection with extract on " + det_image + " failed");
     comps = read_components((fs::path(det_dir) / (name + ".detect.components.csv")).string());
   }
   t_cat.stop();
@@ -406,8 +535,10 @@ int run_bands(const std::vector<std::string>& args) {
       {"conv_flux_scale", "fractional flux-scale error per band added in quadrature, independent between bands"},
       {"conv_limits", "a band with fitted peak < forced.detect_snr x local rms gives an upper limit forced.limit_snr x rms; limits are never logged"},
       {"conv_positions", "ICRS degrees; pixel columns *_pix1 are 1-based FITS pixels"},
-      {"detection", det_band ? ("band " + std::to_string(det_band) + " (" + paths[det_band - 1] + ") via skerry extract")
-                             : ("user catalogue " + catalogue_path)}};
+      {"detection", combined ? ("combined matched SNR image of all bands (alpha " + fits_real(dio.alpha) +
+                                ", grid of band " + std::to_string(cr.g + 1) + ", common beam) via skerry extract")
+                    : det_band ? ("band " + std::to_string(det_band) + " (" + paths[det_band - 1] + ") via skerry extract")
+                               : ("user catalogue " + catalogue_path)}};
   for (std::size_t b = 0; b < nb; ++b) {
     meta.push_back({"band" + std::to_string(b + 1) + "_file", paths[b]});
     meta.push_back({"band" + std::to_string(b + 1) + "_freq_hz", fits_real(freq[b])});
@@ -417,6 +548,7 @@ int run_bands(const std::vector<std::string>& args) {
     meta.push_back({"band" + std::to_string(b + 1) + "_flux_scale_frac", fits_real(scale_frac[b])});
   }
   const std::size_t n = comps.size();
+  const bool shift_on = fopt.max_shift_arcsec > 0.0;  // the shift columns appear only then
   std::vector<std::string> written;
   auto write_all = [&](Table& t, const std::string& stem) {
     t.meta = meta;
@@ -453,6 +585,23 @@ int run_bands(const std::vector<std::string>& args) {
       t.add_f64("s_" + tags[b] + "_err_jy", "Jy", "stat.error;phot.flux.density", "1-sigma error at " + fmhz + ", flux-scale term included", e);
       t.add_f64("ulim_" + tags[b] + "_jy", "Jy", "phot.flux.density;stat.max", "Upper limit at " + fmhz + " (forced.limit_snr x local rms)", u);
       t.add_i64("det_" + tags[b], "", "meta.code", "1 when detected at " + fmhz + " (else use the upper limit)", d);
+      if (shift_on) {
+        std::vector<double> se(n), sn(n), see(n), sne(n);
+        std::vector<std::int64_t> sb(n);
+        for (std::size_t i = 0; i < n; ++i) {
+          const ForcedMeasurement& m = meas[b][i];
+          se[i] = m.shift_east_arcsec;
+          sn[i] = m.shift_north_arcsec;
+          see[i] = m.shift_east_err_arcsec;
+          sne[i] = m.shift_north_err_arcsec;
+          sb[i] = (m.flags & kForcedShiftAtBound) ? 1 : 0;
+        }
+        t.add_f64("shift_" + tags[b] + "_east_arcsec", "arcsec", "pos.eq.ra;arith.diff", "Fitted centre shift at " + fmhz + ": delta RA cos(Dec) (0 = centre kept fixed)", se);
+        t.add_f64("shift_" + tags[b] + "_east_err_arcsec", "arcsec", "stat.error", "1-sigma error of the east shift (NaN = centre kept fixed)", see);
+        t.add_f64("shift_" + tags[b] + "_north_arcsec", "arcsec", "pos.eq.dec;arith.diff", "Fitted centre shift at " + fmhz + ": delta Dec", sn);
+        t.add_f64("shift_" + tags[b] + "_north_err_arcsec", "arcsec", "stat.error", "1-sigma error of the north shift", sne);
+        t.add_i64("shift_" + tags[b] + "_at_bound", "", "meta.code.qual", "1 when the shift reached forced.max_shift_arcsec on a pixel axis", sb);
+      }
     }
     auto col = [&](auto f) {
       std::vector<double> v(n);
@@ -536,7 +685,23 @@ int run_bands(const std::vector<std::string>& args) {
     t.add_f64("model_pa_deg", "deg", "pos.posAng", "Model PA east of north", cpa);
     t.add_i64("group_id", "", "meta.id", "Blend group (components fitted together; 1-based id of its first member; 0 = none)", grp);
     t.add_i64("group_size", "", "meta.number", "Members of the blend group", gsz);
-    t.add_i64("forced_flags", "", "meta.code.qual", "Bitmask: 1 outside/blank, 2 blended, 4 footprint at an edge or blank, 8 not detected, 16 group split, 32 masked, 64 degenerate blend", flg);
+    t.add_i64("forced_flags", "", "meta.code.qual", "Bitmask: 1 outside/blank, 2 blended, 4 footprint at an edge or blank, 8 not detected, 16 group split, 32 masked, 64 degenerate blend, 128 shift at its bound, 256 shifted fit failed (fixed values kept)", flg);
+    if (shift_on) {
+      std::vector<double> sh_e(rows), sh_n(rows), sh_ee(rows), sh_ne(rows);
+      for (std::size_t i = 0; i < n; ++i)
+        for (std::size_t b = 0; b < nb; ++b) {
+          const ForcedMeasurement& m = meas[b][i];
+          const std::size_t r = i * nb + b;
+          sh_e[r] = m.shift_east_arcsec;
+          sh_n[r] = m.shift_north_arcsec;
+          sh_ee[r] = m.shift_east_err_arcsec;
+          sh_ne[r] = m.shift_north_err_arcsec;
+        }
+      t.add_f64("shift_east_arcsec", "arcsec", "pos.eq.ra;arith.diff", "Fitted centre shift delta RA cos(Dec) (0 = centre kept fixed)", sh_e);
+      t.add_f64("shift_east_err_arcsec", "arcsec", "stat.error", "1-sigma error of the east shift (NaN = centre kept fixed)", sh_ee);
+      t.add_f64("shift_north_arcsec", "arcsec", "pos.eq.dec;arith.diff", "Fitted centre shift delta Dec", sh_n);
+      t.add_f64("shift_north_err_arcsec", "arcsec", "stat.error", "1-sigma error of the north shift", sh_ne);
+    }
     write_all(t, name + ".forced");
   }
   t_write.stop();
@@ -544,40 +709,13 @@ int run_bands(const std::vector<std::string>& args) {
   // ---- common resolution and the spectral index map --------------------------------------
   long map_pixels = 0;
   if (vm["maps.enabled"].as<bool>()) {
+    make_common();
     StageTimer t_maps(record, "maps");
-    std::vector<Beam> beams;
-    for (const auto& im : bands) beams.push_back(im.beam);
-    const Beam common = common_beam(beams, cbo);
-    std::size_t g = 0;
-    if (grid_band_opt > 0) {
-      g = static_cast<std::size_t>(grid_band_opt - 1);
-    } else {
-      double best = -1.0;
-      for (std::size_t b = 0; b < nb; ++b) {
-        const double area = bands[b].beam.maj_arcsec * bands[b].beam.min_arcsec;
-        if (area > best) {
-          best = area;
-          g = b;
-        }
-      }
-    }
+    const Beam& common = cr.beam;
+    const std::size_t g = cr.g;
     const SkyImage& grid = bands[g];
-    const long gx = grid.pixels.cols(), gy = grid.pixels.rows();
-    const Geometry gg = centre_geometry(grid);
-    std::vector<ImageF> conv(nb), crms(nb);
-    for (std::size_t b = 0; b < nb; ++b) {
-      // Regrid (Jy/beam, no pixel-area factor) then convolve to the common beam.
-      ImageF on = (b == g) ? bands[b].pixels : reproject(bands[b].pixels, *bands[b].wcs, *grid.wcs, gx, gy);
-      conv[b] = convolve_to_beam(on, *grid.wcs, bands[b].beam, common).image;
-      // The rms changes with convolution: re-estimate it on the convolved map.
-      BackgroundOptions bo;
-      bo.beam_area_pix = kGaussAreaFactor * common.maj_arcsec * common.min_arcsec / (gg.pixel_arcsec * gg.pixel_arcsec);
-      bo.box_beams = box_beams;
-      BackgroundResult r = estimate_background(conv[b], bo);
-      if (r.status == BackgroundStatus::no_data)
-        throw NoDataError(paths[b], "no unblanked pixels on the common grid for the spectral index map");
-      crms[b] = r.maps.rms_image();
-    }
+    const std::vector<ImageF>& conv = cr.conv;
+    const std::vector<ImageF>& crms = cr.crms;
     SpixMapOptions mo;
     mo.min_snr = map_snr;
     std::vector<const ImageF*> ims, rmss;
@@ -614,6 +752,7 @@ int run_bands(const std::vector<std::string>& args) {
   record.set_count("spectra_curved", n_curved);
   record.set_count("map_pixels", map_pixels);
   record.set_value("detection_band", std::to_string(det_band));
+  record.set_value("detection", combined ? "combined" : det_band ? "band" : "catalogue");
   for (const auto& w : written) record.add_output((fs::path(out_dir) / w).string());
   const std::string run_path = (fs::path(out_dir) / (name + ".run.json")).string();
   record.add_output(run_path);

@@ -1,8 +1,10 @@
 // Benchmark of the multi-frequency stage: three 8192 x 8192 bands with 20,000
 // sources. Prints the time to make the noise maps, the forced measurement time
 // and rate (20,000 components in 3 bands, given the noise maps), the
-// common-resolution + spectral-index-map time and the peak RSS against
-// 3 x the float32 size of all bands. Not a test: figures only.
+// common-resolution + spectral-index-map time, the time to form the combined
+// (matched signal-to-noise) detection image from the common-resolution bands,
+// and the peak RSS against 3 x the float32 size of all bands. Not a test:
+// figures only.
 //
 // usage: bench_bands [size=8192] [sources=20000] [threads=2]
 #include <sys/resource.h>
@@ -115,6 +117,12 @@ int main(int argc, char** argv) {
   const SpixMapResult sm = spectral_index_map({&conv[0], &conv[1], &conv[2]}, {nullptr, nullptr, nullptr}, crms,
                                               {freqs[0], freqs[1], freqs[2]}, {0.03, 0.03, 0.03});
   const double t_common = now() - t0;
+  t0 = now();
+  const DetectionImageResult det = combined_detection_image({&conv[0], &conv[1], &conv[2]}, {nullptr, nullptr, nullptr},
+                                                            crms, {freqs[0], freqs[1], freqs[2]});
+  const double t_det = now() - t0;
+  long above5 = 0;
+  for (long i = 0; i < det.snr.size(); ++i) above5 += det.snr.data()[i] >= 5.0f;
 
   std::printf("threads: %d\n", threads);
   std::printf("noise maps (3 bands, modules/background + full-resolution rms images): %.2f s\n", t_maps);
@@ -123,6 +131,8 @@ int main(int argc, char** argv) {
   std::printf("spectra: %zu fits in %.3f s (%ld with alpha)\n", spec.size(), t_spec, fitted);
   std::printf("common resolution (reproject 2 bands, convolve 3, rms) + alpha map: %.2f s (%ld map pixels; common beam %.2f x %.2f arcsec PA %.1f)\n",
               t_common, sm.n_pixels, common.maj_arcsec, common.min_arcsec, common.pa_deg);
+  std::printf("combined detection image (3 bands at the common resolution -> D): %.2f s (%ld pixels, %ld with D >= 5)\n",
+              t_det, det.n_pixels, above5);
   std::printf("peak RSS: %.0f MiB = %.2f x the float32 size of all bands (%.0f MiB; target <= 3)\n", peak_rss_mib(),
               peak_rss_mib() / bands_mib, bands_mib);
   return 0;

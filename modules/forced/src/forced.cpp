@@ -6,12 +6,14 @@
 #include <Eigen/Dense>
 #include <algorithm>
 #include <cmath>
+#include <limits>
 #include <numeric>
 #include <stdexcept>
 #include <unordered_map>
 
 #include "forced_core.h"
 #include "skerry/constants.h"
+#include "skerry/levmar.h"
 
 namespace skerry {
 namespace detail {
@@ -40,6 +42,7 @@ struct Prep {
   double rms = NAN;
   long x0 = 0, x1 = -1, y0 = 0, y1 = -1;              // footprint box (inclusive)
   double reach = 0.0;                                 // sqrt of largest eigenvalue of C
+  Eigen::Matrix2d jac = Eigen::Matrix2d::Identity();  // d(east, north)/d(x, y) [arcsec/pix]
 };
 
 // Union-find with the smallest index as root (deterministic group ids).
@@ -125,6 +128,7 @@ std::vector<ForcedMeasurement> forced_measure_masked(const ImageF& image, const 
       m.conv_maj_arcsec = conv.maj;
       m.conv_min_arcsec = conv.min;
       m.conv_pa_deg = conv.pa_deg;
+      p.jac = g->jac_arcsec_per_pix;
       p.cb = g->sky_cov_to_pixel(cbeam_sky);
       p.c = g->sky_cov_to_pixel(cconv_sky);
       p.ci = p.c.inverse();
@@ -206,8 +210,10 @@ std::vector<ForcedMeasurement> forced_measure_masked(const ImageF& image, const 
   }
 
   // 3. Linear weighted least squares per group (amplitudes only).
+  const bool shift = opt.max_shift_arcsec > 0.0;
   tbb::parallel_for(tbb::blocked_range<std::size_t>(0, groups.size(), 16), [&](const tbb::blocked_range<std::size_t>& r) {
     std::vector<double> gv, qv;
+    std::vector<double> px, py, pv, pw;  // the group's pixels, kept for the shifted fit
     for (std::size_t gi = r.begin(); gi != r.end(); ++gi) {
       const std::vector<long>& mem = groups[gi];
       const int m = static_cast<int>(mem.size());
@@ -216,6 +222,10 @@ std::vector<ForcedMeasurement> forced_measure_masked(const ImageF& image, const 
       gv.assign(static_cast<std::size_t>(m), 0.0);
       qv.assign(static_cast<std::size_t>(m), 0.0);
       std::vector<char> touched_gap(static_cast<std::size_t>(m), 0);
+      px.clear();
+      py.clear();
+      pv.clear();
+      pw.clear();
       const double R2 = R * R;
       // Pixels: the union of the members' footprints (q <= R^2), each visited
       // once (by the first member whose footprint holds it). On them every
@@ -252,6 +262,12 @@ std::vector<ForcedMeasurement> forced_measure_masked(const ImageF& image, const 
             }
             const double w = 1.0 / (rms_at(y, x) * rms_at(y, x));
             const double v = image(y, x);
+            if (shift) {
+              px.push_back(static_cast<double>(x));
+              py.push_back(static_cast<double>(y));
+              pv.push_back(v);
+              pw.push_back(w);
+            }
             for (int k = 0; k < m; ++k) {
               if (gv[k] == 0.0) continue;
               b(k) += w * gv[k] * v;
@@ -279,7 +295,117 @@ std::vector<ForcedMeasurement> forced_measure_masked(const ImageF& image, const 
           const Eigen::Vector2d d(pk.x - pl.x, pk.y - pl.y);
           B(k, l) = B(l, k) = correlated_overlap(pk.c, pl.c, 0.5 * (pk.cb + pl.cb), d) / (pk.rms * pl.rms);
         }
-      const Eigen::MatrixXd cov = Ai * B * Ai;
+      Eigen::MatrixXd cov = Ai * B * Ai;
+      Eigen::VectorXd amp = a;
+      std::vector<Eigen::Vector2d> dpix(static_cast<std::size_t>(m), Eigen::Vector2d::Zero());
+      std::vector<Eigen::Matrix2d> dcov(static_cast<std::size_t>(m), Eigen::Matrix2d::Constant(NAN));
+      std::vector<std::uint32_t> sflag(static_cast<std::size_t>(m), 0u);
+      if (shift) {
+        // Bounded refit of amplitudes and the detected members' centres (forced.h).
+        std::vector<int> free_idx(static_cast<std::size_t>(m), -1);  // parameter index of dx_k
+        int np = m;
+        for (int k = 0; k < m; ++k)
+          if (a(k) >= opt.detect_snr * prep[mem[k]].rms) {
+            free_idx[k] = np;
+            np += 2;
+          }
+        const int npix = static_cast<int>(px.size());
+        if (np > m && npix > np) {
+          Eigen::VectorXd p0(np), lo(np), hi(np);
+          for (int k = 0; k < m; ++k) {
+            p0(k) = a(k);
+            lo(k) = -std::numeric_limits<double>::infinity();
+            hi(k) = std::numeric_limits<double>::infinity();
+            if (free_idx[k] < 0) continue;
+            const Prep& pk = prep[mem[k]];
+            for (int ax = 0; ax < 2; ++ax) {
+              // +-max_shift along this pixel axis: its length on the sky is |J e_ax|.
+              const double bound = opt.max_shift_arcsec / pk.jac.col(ax).norm();
+              p0(free_idx[k] + ax) = 0.0;
+              lo(free_idx[k] + ax) = -bound;
+              hi(free_idx[k] + ax) = bound;
+            }
+          }
+          const LmFunctor f = [&](const Eigen::VectorXd& p, Eigen::VectorXd& res, Eigen::MatrixXd* jac) {
+            res.resize(npix);
+            if (jac) jac->setZero(npix, np);
+            for (int i = 0; i < npix; ++i) {
+              const double sw = std::sqrt(pw[i]);
+              double model = 0.0;
+              for (int k = 0; k < m; ++k) {
+                const Prep& pk = prep[mem[k]];
+                double cx = pk.x, cy = pk.y;
+                if (free_idx[k] >= 0) {
+                  cx += p(free_idx[k]);
+                  cy += p(free_idx[k] + 1);
+                }
+                const double dx = px[i] - cx, dy = py[i] - cy;
+                const double ux = pk.ci(0, 0) * dx + pk.ci(0, 1) * dy, uy = pk.ci(1, 0) * dx + pk.ci(1, 1) * dy;
+                const double g = std::exp(-0.5 * (dx * ux + dy * uy));
+                model += p(k) * g;
+                if (jac) {
+                  // r = sw (v - m): dr/da = -sw g, dr/dmu = -sw a g C^-1 (x - mu).
+                  (*jac)(i, k) = -sw * g;
+                  if (free_idx[k] >= 0) {
+                    (*jac)(i, free_idx[k]) = -sw * p(k) * g * ux;
+                    (*jac)(i, free_idx[k] + 1) = -sw * p(k) * g * uy;
+                  }
+                }
+              }
+              res(i) = sw * (pv[i] - model);
+            }
+            return res.allFinite();
+          };
+          LevenbergMarquardt lm;
+          lm.set_bounds(lo, hi);
+          const LmResult fit = lm.solve(f, p0, npix);
+          if (!lm_converged(fit.status)) {
+            for (int k = 0; k < m; ++k)
+              if (free_idx[k] >= 0) sflag[k] |= kForcedShiftFailed;
+          } else {
+            // Meat J^T R J in closed form (forced.h), whitened by the rms at the centres.
+            Eigen::MatrixXd meat = Eigen::MatrixXd::Zero(np, np);
+            const Eigen::VectorXd& q = fit.params;
+            auto centre = [&](int k) {
+              const Prep& pk = prep[mem[k]];
+              Eigen::Vector2d c(pk.x, pk.y);
+              if (free_idx[k] >= 0) c += Eigen::Vector2d(q(free_idx[k]), q(free_idx[k] + 1));
+              return c;
+            };
+            for (int k = 0; k < m; ++k)
+              for (int l = 0; l < m; ++l) {
+                const Prep& pk = prep[mem[k]];
+                const Prep& pl = prep[mem[l]];
+                const Eigen::Vector2d d = centre(k) - centre(l);
+                const Eigen::Matrix2d S = pk.c + pl.c + 0.5 * (pk.cb + pl.cb);
+                const Eigen::Matrix2d Si = S.inverse();
+                const double I = correlated_overlap(pk.c, pl.c, 0.5 * (pk.cb + pl.cb), d) / (pk.rms * pl.rms);
+                const Eigen::Vector2d u = Si * d;
+                meat(k, l) = I;
+                if (free_idx[l] >= 0) meat.block<1, 2>(k, free_idx[l]) = (q(l) * I * u).transpose();
+                if (free_idx[k] >= 0) meat.block<2, 1>(free_idx[k], l) = -q(k) * I * u;
+                if (free_idx[k] >= 0 && free_idx[l] >= 0)
+                  meat.block<2, 2>(free_idx[k], free_idx[l]) = q(k) * q(l) * I * (Si - u * u.transpose());
+              }
+            Eigen::MatrixXd v;
+            if (!lm_sandwich_covariance(fit.jacobian, meat, v)) {
+              for (int k = 0; k < m; ++k)
+                if (free_idx[k] >= 0) sflag[k] |= kForcedShiftFailed;
+            } else {
+              amp = q.head(m);
+              cov = v.topLeftCorner(m, m);
+              for (int k = 0; k < m; ++k) {
+                if (free_idx[k] < 0) continue;
+                const int j = free_idx[k];
+                dpix[k] = Eigen::Vector2d(q(j), q(j + 1));
+                dcov[k] = v.block<2, 2>(j, j);
+                for (int ax = 0; ax < 2; ++ax)
+                  if (std::abs(q(j + ax)) >= hi(j + ax) * (1.0 - 1e-9)) sflag[k] |= kForcedShiftAtBound;
+              }
+            }
+          }
+        }
+      }
       for (int k = 0; k < m; ++k) {
         ForcedMeasurement& o = out[mem[k]];
         const Prep& p = prep[mem[k]];
@@ -287,12 +413,26 @@ std::vector<ForcedMeasurement> forced_measure_masked(const ImageF& image, const 
         o.group_size = m;
         if (m > 1) o.flags |= kForcedBlended;
         if (touched_gap[k]) o.flags |= kForcedEdge;
-        o.peak_jy_per_beam = a(k);
+        o.peak_jy_per_beam = amp(k);
         o.peak_err_jy_per_beam = std::sqrt(std::max(0.0, cov(k, k)));
-        o.flux_jy = a(k) * p.flux_factor;
+        o.flux_jy = amp(k) * p.flux_factor;
         o.flux_err_jy = o.peak_err_jy_per_beam * p.flux_factor;
         o.flux_err_total_jy = std::hypot(o.flux_err_jy, opt.flux_scale_frac * o.flux_jy);
-        o.detected = a(k) >= opt.detect_snr * p.rms;
+        o.detected = amp(k) >= opt.detect_snr * p.rms;
+        if (shift) {
+          // Pixel shift -> sky (east, north) [arcsec] with the local Jacobian.
+          const Eigen::Vector2d sky = p.jac * dpix[k];
+          const Eigen::Matrix2d sc = p.jac * dcov[k] * p.jac.transpose();
+          o.x = p.x + dpix[k](0);
+          o.y = p.y + dpix[k](1);
+          o.shift_east_arcsec = sky(0);
+          o.shift_north_arcsec = sky(1);
+          if (sc.allFinite()) {
+            o.shift_east_err_arcsec = std::sqrt(std::max(0.0, sc(0, 0)));
+            o.shift_north_err_arcsec = std::sqrt(std::max(0.0, sc(1, 1)));
+          }
+          o.flags |= sflag[k];
+        }
         if (!o.detected) o.flags |= kForcedNotDetected;
       }
     }
