@@ -1,6 +1,9 @@
 // CSV encoding of a Table (RFC 4180 quoting; one header row) and the shared
 // number formatting. See skerry/table_text.h for the contract.
+#include <oneapi/tbb/parallel_for.h>
+
 #include <algorithm>
+#include <array>
 #include <charconv>
 #include <cmath>
 #include <cstdint>
@@ -122,6 +125,55 @@ void put_field(std::string& out, std::string_view f, bool single_column) {
   out += '"';
 }
 
+/// format_double(v) for a finite v, appended without a temporary string.
+void append_finite_double(std::string& out, double v) {
+  char buf[40];
+  const auto r = std::to_chars(buf, buf + sizeof buf - 2, v);
+  char* end = r.ptr;
+  bool integral = true;  // only "-" and digits: add ".0", as format_double does
+  for (const char* p = buf; p != end && integral; ++p) integral = (*p == '-' || (*p >= '0' && *p <= '9'));
+  if (integral) {
+    *end++ = '.';
+    *end++ = '0';
+  }
+  out.append(buf, end);
+}
+
+}  // namespace
+
+namespace {
+
+/// Rows [begin, end) of `t` as CSV lines, appended to `out`.
+void append_csv_rows(std::string& out, const Table& t, std::size_t begin, std::size_t end, bool single) {
+  const auto& cols = t.columns();
+  for (std::size_t i = begin; i < end; ++i) {
+    for (std::size_t j = 0; j < cols.size(); ++j) {
+      if (j) out += ',';
+      const Column& c = cols[j];
+      switch (c.type) {
+        case ColumnType::Float64: {
+          const double v = c.f64[i];
+          if (std::isfinite(v)) {
+            append_finite_double(out, v);
+          } else {
+            const std::string s = format_double(v);
+            out += (s.empty() && single) ? std::string("\"\"") : s;
+          }
+          break;
+        }
+        case ColumnType::Int64: {
+          char buf[32];
+          const auto r = std::to_chars(buf, buf + sizeof buf, c.i64[i]);
+          out.append(buf, r.ptr);
+          break;
+        }
+        case ColumnType::Text: put_field(out, c.text[i], single); break;
+      }
+    }
+    out += '\n';
+  }
+}
+
 }  // namespace
 
 std::string format_csv(const Table& t) {
@@ -135,23 +187,21 @@ std::string format_csv(const Table& t) {
   }
   out += '\n';
   const std::size_t n = t.rows();
-  out.reserve(out.size() + n * cols.size() * 12);
-  for (std::size_t i = 0; i < n; ++i) {
-    for (std::size_t j = 0; j < cols.size(); ++j) {
-      if (j) out += ',';
-      const Column& c = cols[j];
-      switch (c.type) {
-        case ColumnType::Float64: {
-          std::string s = format_double(c.f64[i]);
-          if (s.empty() && single) s = "\"\"";
-          out += s;
-          break;
-        }
-        case ColumnType::Int64: out += format_int(c.i64[i]); break;
-        case ColumnType::Text: put_field(out, c.text[i], single); break;
-      }
-    }
-    out += '\n';
+  // Blocks of rows are formatted in parallel and joined in row order: the bytes
+  // are those of one sequential pass.
+  constexpr std::size_t kBlock = 8192;
+  const std::size_t nblocks = (n + kBlock - 1) / kBlock;
+  std::vector<std::string> blocks(nblocks);
+  oneapi::tbb::parallel_for(std::size_t{0}, nblocks, [&](std::size_t k) {
+    blocks[k].reserve(kBlock * cols.size() * 12);
+    append_csv_rows(blocks[k], t, k * kBlock, std::min(n, (k + 1) * kBlock), single);
+  });
+  std::size_t total = out.size();
+  for (const auto& b : blocks) total += b.size();
+  out.reserve(total);
+  for (auto& b : blocks) {
+    out += b;
+    std::string().swap(b);
   }
   return out;
 }
@@ -165,6 +215,18 @@ struct Cell {
   std::size_t len = 0;
   bool quoted = false;     // content may hold doubled quotes
 };
+
+/// The cell's content; a quoted cell is unescaped into `scratch`.
+std::string_view cell_view(std::string_view text, const Cell& c, std::string& scratch) {
+  std::string_view v = text.substr(c.begin, c.len);
+  if (!c.quoted) return v;
+  scratch.clear();
+  for (std::size_t k = 0; k < v.size(); ++k) {
+    scratch += v[k];
+    if (v[k] == '"') ++k;  // doubled quote
+  }
+  return scratch;
+}
 
 std::string cell_text(std::string_view text, const Cell& c) {
   std::string_view v = text.substr(c.begin, c.len);
@@ -187,6 +249,10 @@ Table parse_csv(std::string_view text, const CsvReadOptions& opt) {
   std::size_t pos = 0;
   if (text.substr(0, 3) == "\xEF\xBB\xBF") pos = 3;  // UTF-8 byte-order mark
   const std::size_t n = text.size();
+
+  // Characters that end an unquoted field (or are an error inside one).
+  std::array<bool, 256> stop{};
+  for (char c : {d, '\n', '\r', '"'}) stop[static_cast<unsigned char>(c)] = true;
 
   // Tokeniser: reads one record starting at pos; returns false at end of text.
   // Blank lines (no characters at all) are skipped.
@@ -226,12 +292,10 @@ Table parse_csv(std::string_view text, const CsvReadOptions& opt) {
           throw TableParseError("line " + std::to_string(line) + ": unexpected character after a closing quote");
       } else {
         c.begin = pos;
-        while (pos < n && text[pos] != d && text[pos] != '\n' && text[pos] != '\r') {
-          if (text[pos] == '"')
-            throw TableParseError("line " + std::to_string(line) +
-                                  ": quote inside an unquoted field (quote the whole field and double inner quotes)");
-          ++pos;
-        }
+        while (pos < n && !stop[static_cast<unsigned char>(text[pos])]) ++pos;
+        if (pos < n && text[pos] == '"')
+          throw TableParseError("line " + std::to_string(line) +
+                                ": quote inside an unquoted field (quote the whole field and double inner quotes)");
         c.len = pos - c.begin;
       }
       cells.push_back(c);
@@ -279,8 +343,32 @@ Table parse_csv(std::string_view text, const CsvReadOptions& opt) {
     }
   }
 
-  // Store cell boundaries column by column, then convert each column.
-  std::vector<std::vector<Cell>> colcells(ncol);
+  // Each cell is converted while its row is being read (its text is then in the
+  // cache), by a small state per column: parsed as an integer while every cell so
+  // far was one, as a double from then on, and not at all once a cell is not a
+  // number (the column is then text, taken from the cell boundaries kept here).
+  // A cell read as an integer also keeps (double)x, which is the double its text
+  // reads as (both are rounded to nearest), so the column can still turn out to
+  // be Float64 without a second pass.
+  struct ColumnState {
+    bool all_int = true, all_num = true, any_empty = false, any_value = false;
+    std::size_t bad_row = 0;
+    std::string bad_text;
+    std::vector<std::int64_t> iv;
+    std::vector<double> dv;
+    std::vector<Cell> cells;
+  };
+  std::vector<ColumnState> cs(ncol);
+  {
+    // Line count: an upper bound on the rows (quoted line breaks aside), to size the columns once.
+    const auto lines =
+        static_cast<std::size_t>(std::count(text.begin() + static_cast<std::ptrdiff_t>(pos), text.end(), '\n')) + 1;
+    for (auto& c : cs) {
+      c.cells.reserve(lines);
+      c.dv.reserve(lines);
+    }
+  }
+  std::string scratch;
   std::size_t nrows = 0;
   while (read_record(cells, rec_line)) {
     ++nrows;
@@ -288,7 +376,32 @@ Table parse_csv(std::string_view text, const CsvReadOptions& opt) {
       throw TableParseError("row " + std::to_string(nrows) + " (line " + std::to_string(rec_line) + ") has " +
                                 std::to_string(cells.size()) + " fields, the header has " + std::to_string(ncol),
                             nrows);
-    for (std::size_t j = 0; j < ncol; ++j) colcells[j].push_back(cells[j]);
+    for (std::size_t j = 0; j < ncol; ++j) {
+      ColumnState& c = cs[j];
+      c.cells.push_back(cells[j]);
+      if (!c.all_num) continue;
+      const std::string_view v = trim(cell_view(text, cells[j], scratch));
+      double value = std::nan("");
+      if (v.empty()) {
+        c.any_empty = true;
+      } else {
+        c.any_value = true;
+        std::int64_t x;
+        if (c.all_int && parse_int(v, x)) {
+          c.iv.push_back(x);
+          value = (x == 0 && v.front() == '-') ? -0.0 : static_cast<double>(x);
+        } else {
+          c.all_int = false;
+          if (!parse_double(v, value)) {
+            c.all_num = false;
+            c.bad_row = nrows;
+            c.bad_text = std::string(v);
+            continue;
+          }
+        }
+      }
+      c.dv.push_back(value);
+    }
   }
 
   std::unordered_set<std::string> must_num(opt.numeric_columns.begin(), opt.numeric_columns.end());
@@ -297,27 +410,14 @@ Table parse_csv(std::string_view text, const CsvReadOptions& opt) {
       throw TableParseError("missing column '" + shorten(m) + "'", 0, m);
 
   for (std::size_t j = 0; j < ncol; ++j) {
-    const auto& cc = colcells[j];
-    bool all_int = true, all_num = true, any_empty = false, any_value = false;
-    std::size_t bad_row = 0;
-    std::string bad_text;
-    for (std::size_t i = 0; i < cc.size() && all_num; ++i) {
-      std::string s = cell_text(text, cc[i]);
-      std::string_view v = trim(s);
-      if (v.empty()) {
-        any_empty = true;
-        continue;
-      }
-      any_value = true;
-      std::int64_t iv;
-      double dv;
-      if (all_int && parse_int(v, iv)) continue;
-      all_int = false;
-      if (parse_double(v, dv)) continue;
-      all_num = false;
-      bad_row = i + 1;
-      bad_text = std::string(v);
-    }
+    ColumnState& st = cs[j];
+    const auto& cc = st.cells;
+    const std::size_t m = cc.size();
+    const bool all_num = st.all_num, all_int = st.all_int, any_value = st.any_value, any_empty = st.any_empty;
+    const std::size_t bad_row = st.bad_row;
+    const std::string& bad_text = st.bad_text;
+    std::vector<std::int64_t>& iv = st.iv;
+    std::vector<double>& dv = st.dv;
     Column col;
     col.name = names[j];
     if (!all_num) {
@@ -325,26 +425,16 @@ Table parse_csv(std::string_view text, const CsvReadOptions& opt) {
         throw TableParseError(where(bad_row, names[j]) + ": '" + shorten(bad_text) + "' is not a number", bad_row,
                               names[j]);
       col.type = ColumnType::Text;
-      col.text.reserve(cc.size());
+      col.text.reserve(m);
       for (const auto& c : cc) col.text.push_back(cell_text(text, c));
     } else if (all_int && any_value && !any_empty) {
       col.type = ColumnType::Int64;
-      col.i64.reserve(cc.size());
-      for (const auto& c : cc) {
-        std::int64_t iv = 0;
-        parse_int(cell_text(text, c), iv);
-        col.i64.push_back(iv);
-      }
+      col.i64 = std::move(iv);
     } else {
       col.type = ColumnType::Float64;
-      col.f64.reserve(cc.size());
-      for (const auto& c : cc) {
-        std::string s = cell_text(text, c);
-        double dv = std::nan("");
-        if (!trim(s).empty()) parse_double(s, dv);
-        col.f64.push_back(dv);
-      }
+      col.f64 = std::move(dv);
     }
+    st = ColumnState{};  // this column's cells and buffers are no longer needed
     t.add(std::move(col));
   }
   return t;
