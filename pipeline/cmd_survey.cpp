@@ -63,9 +63,22 @@ class RunLock {
 /// Removes temporary files and folders left by a killed run (we hold the lock,
 /// so nothing of ours is writing them).
 void remove_stale_temporaries(const SurveyConfig& cfg) {
-  for (const fs::path& dir : {fs::path(cfg.output_root), fs::path(cfg.output_root) / "tiles",
-                             fs::path(cfg.output_root) / "stage"}) {
-    std::error_code ec;
+  std::vector<fs::path> dirs{fs::path(cfg.output_root), fs::path(cfg.output_root) / "tiles",
+                             fs::path(cfg.output_root) / "stage"};
+  std::error_code ec;
+  // The merge folders: merge/, merge/scatter/, merge/scatter/NAME/, merge/parts/, merge/parts/FP/.
+  const fs::path merge = fs::path(cfg.output_root) / "merge";
+  if (fs::is_directory(merge, ec)) {
+    dirs.push_back(merge);
+    for (const char* sub : {"scatter", "parts"}) {
+      const fs::path d = merge / sub;
+      if (!fs::is_directory(d, ec)) continue;
+      dirs.push_back(d);
+      for (const auto& e : fs::directory_iterator(d, ec))
+        if (e.is_directory(ec) && !is_temporary_name(e.path().filename().string())) dirs.push_back(e.path());
+    }
+  }
+  for (const fs::path& dir : dirs) {
     if (!fs::is_directory(dir, ec)) continue;
     for (const auto& e : fs::directory_iterator(dir, ec)) {
       if (is_temporary_name(e.path().filename().string())) fs::remove_all(e.path(), ec);
@@ -132,7 +145,9 @@ int run_survey(const std::vector<std::string>& args) {
     ("only", po::value<std::vector<std::string>>()->composing(), "process only this tile (by name; repeatable); it is reprocessed even when current")
     ("engine", po::value<std::string>(), "local or slurm (overrides survey.engine)")
     ("worker-task", po::value<int>(), "internal: run task N of a Slurm run (--run-dir)")
-    ("merge-job", po::bool_switch(), "internal: the merge job of a Slurm run (--run-dir)")
+    ("merge-job", po::bool_switch(), "internal: the merge plan job of a Slurm run (--run-dir)")
+    ("partition-task", po::value<int>(), "internal: partition-merge task N of a Slurm run (--run-dir)")
+    ("concat-job", po::bool_switch(), "internal: the concatenation job of a Slurm run (--run-dir)")
     ("run-dir", po::value<std::string>(), "internal: the Slurm run folder");
   // clang-format on
   ParsedOptions opts = parse_options(
@@ -154,11 +169,15 @@ int run_survey(const std::vector<std::string>& args) {
   if (threads > 0) cfg.workers = threads;
 
   // ---- Slurm task and merge job: files only, no lock, no state record --------
-  if (opts.vm.count("worker-task") || opts.vm["merge-job"].as<bool>()) {
-    if (!opts.vm.count("run-dir")) throw UsageError("--worker-task and --merge-job need --run-dir");
+  if (opts.vm.count("worker-task") || opts.vm["merge-job"].as<bool>() || opts.vm.count("partition-task") ||
+      opts.vm["concat-job"].as<bool>()) {
+    if (!opts.vm.count("run-dir"))
+      throw UsageError("--worker-task, --merge-job, --partition-task and --concat-job need --run-dir");
     const std::string run_dir = opts.vm["run-dir"].as<std::string>();
     if (opts.vm.count("worker-task")) return slurm_worker_task(cfg, run_dir, opts.vm["worker-task"].as<int>());
     ThreadLimit tl(cfg.slurm.cpus_per_task);
+    if (opts.vm.count("partition-task")) return slurm_partition_task(cfg, run_dir, opts.vm["partition-task"].as<int>());
+    if (opts.vm["concat-job"].as<bool>()) return slurm_concat_job(cfg, run_dir);
     return slurm_merge_job(cfg, run_dir);
   }
 
@@ -275,13 +294,17 @@ int run_survey(const std::vector<std::string>& args) {
     pending.push_back({t, inputs_sha[i], reason});
   }
 
+  std::int64_t merge_rows = 0;  // tile rows of the last merge_list()
   auto merge_list = [&]() {
     std::vector<MergeTile> m;
     auto st = db.tiles();
+    merge_rows = 0;
     for (std::size_t i = 0; i < tiles.size(); ++i) {
       auto s = st.find(tiles[i].name);
-      if (s != st.end() && is_current(s->second, inputs_sha[i], cfg))
+      if (s != st.end() && is_current(s->second, inputs_sha[i], cfg)) {
         m.push_back({tiles[i].name, s->second.components_sha256, s->second.centre_ra_deg, s->second.centre_dec_deg});
+        merge_rows += s->second.rows;
+      }
     }
     return m;
   };
@@ -363,10 +386,29 @@ int run_survey(const std::vector<std::string>& args) {
   for (const auto& f : failures_now) record(f, nullptr);
 
   // ---- Run the pending tiles ------------------------------------------------------
-  bool slurm_merged = false;
-  if (!pending.empty()) {
-    Progress prog("survey tiles", pending.size());
-    if (cfg.engine == "local") {
+  bool merged = false;
+  std::vector<std::string> merge_failures;
+  auto merge_done = [&](const MergeSummary& ms, const char* where) {
+    db.begin();
+    db.set("merge_fingerprint", ms.fingerprint);
+    db.commit();
+    merged = true;
+    prune_merge_folders(cfg, merge_list(), ms.fingerprint);
+    log.write("merge ok " + fixed(ms.seconds, 2) + " s (" + where + ") tiles=" + std::to_string(ms.tiles) + " rows=" +
+                  std::to_string(ms.rows) + " of " + std::to_string(ms.input_rows) + " residual_duplicate_pairs=" +
+                  std::to_string(ms.residual_duplicate_pairs) + " partitions=" + std::to_string(ms.partitions),
+              "\"event\":\"merge\",\"run\":" + json_str(run_id) + ",\"where\":" + json_str(where) + ",\"seconds\":" +
+                  fixed(ms.seconds, 3) + ",\"tiles\":" + std::to_string(ms.tiles) + ",\"rows\":" +
+                  std::to_string(ms.rows) + ",\"input_rows\":" + std::to_string(ms.input_rows) +
+                  ",\"residual_duplicate_pairs\":" + std::to_string(ms.residual_duplicate_pairs) +
+                  ",\"partitions\":" + std::to_string(ms.partitions));
+  };
+  auto merge_needed = [&] {
+    return merge_fingerprint(cfg, merge_list()) != db.get("merge_fingerprint") || !fs::exists(catalogue_path(cfg), ec);
+  };
+  if (cfg.engine == "local") {
+    if (!pending.empty()) {
+      Progress prog("survey tiles", pending.size());
       std::atomic<std::size_t> next{0};
       std::vector<std::thread> pool;
       const std::size_t nw = std::min<std::size_t>(static_cast<std::size_t>(cfg.workers), pending.size());
@@ -380,30 +422,27 @@ int run_survey(const std::vector<std::string>& args) {
         });
       }
       for (auto& th : pool) th.join();
-    } else {
-      ProgressCtx pc{&prog};
-      std::string run_dir;
-      db.set("slurm_run_dir", (fs::path(cfg.output_root) / "slurm" / run_id).string());
-      auto reports = run_slurm(cfg, pending, merge_list(), run_id, &slurm_progress, &pc, &run_dir);
-      db.set("slurm_run_dir", "");
-      for (std::size_t i = 0; i < reports.size(); ++i) record(reports[i], &pending[i]);
-      // Accept the merge job's catalogue only if it merged exactly what we would.
-      auto ms = read_merge_summary(cfg);
-      slurm_merged = ms && ms->fingerprint == merge_fingerprint(cfg, merge_list()) && fs::exists(catalogue_path(cfg), ec);
-      if (slurm_merged) {
-        db.begin();
-        db.set("merge_fingerprint", ms->fingerprint);
-        db.commit();
-        log.write("merge ok " + fixed(ms->seconds, 2) + " s (Slurm job) tiles=" + std::to_string(ms->tiles) +
-                      " rows=" + std::to_string(ms->rows) + " residual_duplicate_pairs=" +
-                      std::to_string(ms->residual_duplicate_pairs),
-                  "\"event\":\"merge\",\"run\":" + json_str(run_id) + ",\"where\":\"slurm\",\"seconds\":" +
-                      fixed(ms->seconds, 3) + ",\"tiles\":" + std::to_string(ms->tiles) + ",\"rows\":" +
-                      std::to_string(ms->rows) + ",\"residual_duplicate_pairs\":" +
-                      std::to_string(ms->residual_duplicate_pairs));
-      }
+      prog.finish();
     }
+  } else if (!pending.empty() || merge_needed()) {
+    // Slurm: tile array (if any tile is pending), then the merge chain: plan
+    // job, partition-merge array, concatenation job.
+    Progress prog("survey tiles", pending.size());
+    ProgressCtx pc{&prog};
+    std::string run_dir;
+    db.set("slurm_run_dir", (fs::path(cfg.output_root) / "slurm" / run_id).string());
+    auto reports = run_slurm(cfg, pending, merge_list(), run_id, &slurm_progress, &pc, &run_dir, &merge_failures);
+    db.set("slurm_run_dir", "");
+    for (std::size_t i = 0; i < reports.size(); ++i) record(reports[i], &pending[i]);
     prog.finish();
+    // Accept the concatenation job's catalogue only if it merged exactly what we would.
+    auto ms = read_merge_summary(cfg);
+    if (ms && ms->fingerprint == merge_fingerprint(cfg, merge_list()) && fs::exists(catalogue_path(cfg), ec)) {
+      merge_failures.clear();
+      merge_done(*ms, "slurm");
+    } else if (merge_failures.empty()) {
+      merge_failures.push_back("the Slurm merge of " + run_dir + " wrote no catalogue for this run's tiles; see its logs");
+    }
   }
 
   if (!usage_error.empty()) {
@@ -413,35 +452,39 @@ int run_survey(const std::vector<std::string>& args) {
     throw UsageError(cfg.config_path + ": skerry extract refused the stage settings: " + usage_error);
   }
 
-  // ---- Merge (locally, unless the Slurm merge job did it) -----------------------------
-  if (!slurm_merged) {
+  // ---- Merge (local engine) --------------------------------------------------------------
+  if (cfg.engine == "local" && merge_needed()) {
     const auto mt = merge_list();
-    const std::string fp = merge_fingerprint(cfg, mt);
-    if (fp != db.get("merge_fingerprint") || !fs::exists(catalogue_path(cfg), ec)) {
-      ThreadLimit tl(cfg.workers);
-      const MergeSummary ms = merge_tiles(cfg, mt);
-      db.begin();
-      db.set("merge_fingerprint", ms.fingerprint);
-      db.commit();
-      log.write("merge ok " + fixed(ms.seconds, 2) + " s tiles=" + std::to_string(ms.tiles) + " rows=" +
-                    std::to_string(ms.rows) + " of " + std::to_string(ms.input_rows) + " residual_duplicate_pairs=" +
-                    std::to_string(ms.residual_duplicate_pairs) + " partitions=" + std::to_string(ms.partitions),
-                "\"event\":\"merge\",\"run\":" + json_str(run_id) + ",\"where\":\"local\",\"seconds\":" +
-                    fixed(ms.seconds, 3) + ",\"tiles\":" + std::to_string(ms.tiles) + ",\"rows\":" +
-                    std::to_string(ms.rows) + ",\"input_rows\":" + std::to_string(ms.input_rows) +
-                    ",\"residual_duplicate_pairs\":" + std::to_string(ms.residual_duplicate_pairs) +
-                    ",\"partitions\":" + std::to_string(ms.partitions));
+    ThreadLimit tl(cfg.workers);
+    if (merge_rows <= cfg.merge_in_memory_rows) {
+      merge_done(merge_tiles(cfg, mt), "local");
+    } else if (auto ms = merge_tiles_on_disk(cfg, mt, merge_failures)) {
+      merge_done(*ms, "local");
     }
   }
+  for (const auto& f : merge_failures)
+    log.write(f + " (retried on the next run)",
+              "\"event\":\"merge_failed\",\"run\":" + json_str(run_id) + ",\"message\":" + json_str(f));
 
   const double secs = std::chrono::duration<double>(std::chrono::steady_clock::now() - t_start).count();
-  const int code = n_failed > 0 ? kExitSomeFailed : kExitOk;
+  const int code = n_failed > 0 || !merge_failures.empty() ? kExitSomeFailed : kExitOk;
   log.write("run " + run_id + " end exit=" + std::to_string(code) + " processed=" + std::to_string(n_ok) +
-                " failed=" + std::to_string(n_failed) + " " + fixed(secs, 2) + " s",
+                " failed=" + std::to_string(n_failed) + (merge_failures.empty() ? "" : " merge=failed") + " " + fixed(secs, 2) + " s",
             "\"event\":\"run_end\",\"run\":" + json_str(run_id) + ",\"exit_code\":" + std::to_string(code) +
                 ",\"processed\":" + std::to_string(n_ok) + ",\"failed\":" + std::to_string(n_failed) +
                 ",\"seconds\":" + fixed(secs, 3));
-  if (n_failed > 0) {
+  if (!merge_failures.empty()) {
+    // Not quiet: cron mails these lines to whoever owns the job.
+    std::cerr << "skerry survey: the merge did not complete (retried next run): " << merge_failures.front()
+              << (merge_failures.size() > 1 ? " (and " + std::to_string(merge_failures.size() - 1) + " more; see " +
+                                                  (fs::path(cfg.output_root) / "survey.log").string() + ")"
+                                            : std::string())
+              << "\n";
+    if (n_failed > 0)
+      std::cerr << "skerry survey: " << n_failed << " of " << (n_ok + n_failed)
+                << " tiles failed (retried next run; see " << (fs::path(cfg.output_root) / "survey.log").string()
+                << ")\n";
+  } else if (n_failed > 0) {
     // Not quiet: cron mails this line to whoever owns the job.
     std::cerr << "skerry survey: " << n_failed << " of " << (n_ok + n_failed) << " tiles failed (retried next run; see "
               << (fs::path(cfg.output_root) / "survey.log").string() << ")\n";

@@ -71,6 +71,7 @@ SurveyConfig load_survey_config(const std::string& path) {
     ("survey.match_radius_arcsec", po::value<double>(&radius)->default_value(5.0), "self-match radius of the duplicate check [arcsec]")
     ("survey.margin_match_radii", po::value<double>(&margin)->default_value(3.0), "overlap margin of a sky partition [match radii]")
     ("survey.partition_order", po::value<int>(&order)->default_value(4), "HEALPix order of the merge partitions (results do not depend on it)")
+    ("survey.merge_in_memory_rows", po::value<std::int64_t>(&cfg.merge_in_memory_rows)->default_value(1000000), "local engine: merge surveys of at most this many tile rows in memory (same bytes as on disk; 0 = always on disk)")
     ("survey.designation_prefix", po::value<std::string>(&prefix)->default_value("SKDC"), "designation prefix of merged source names")
     ("survey.ra_column", po::value<std::string>(&cfg.ra_column)->default_value("ra_deg"), "RA column of the tile component tables [deg]")
     ("survey.dec_column", po::value<std::string>(&cfg.dec_column)->default_value("dec_deg"), "Dec column of the tile component tables [deg]")
@@ -124,6 +125,7 @@ SurveyConfig load_survey_config(const std::string& path) {
     need(ext == ".csv" || ext == ".fits" || ext == ".fit" || ext == ".vot" || ext == ".xml", "survey.catalogue",
          catalogue, "a name ending in .csv, .fits or .vot");
   }
+  need(cfg.merge_in_memory_rows >= 0, "survey.merge_in_memory_rows", std::to_string(cfg.merge_in_memory_rows), ">= 0");
   need(cfg.slurm.cpus_per_task >= 1, "slurm.cpus_per_task", std::to_string(cfg.slurm.cpus_per_task), ">= 1");
   need(cfg.slurm.max_parallel >= 0, "slurm.max_parallel", std::to_string(cfg.slurm.max_parallel), ">= 0");
   need(cfg.slurm.poll_seconds > 0.0 && cfg.slurm.poll_seconds <= 600.0, "slurm.poll_seconds",

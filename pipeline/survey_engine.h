@@ -14,7 +14,12 @@
 ///   tiles/NAME.failed.json      the last failure of the tile (removed on success)
 ///   CATALOGUE                   the merged catalogue ([survey] catalogue)
 ///   CATALOGUE stem + .merge.json  merge summary (counts, fingerprint)
-///   slurm/RUN/                  job scripts, task list and task logs of a Slurm run
+///   merge/scatter/NAME/         the tile's rows cut by sky partition (index.json,
+///                               layout.stab, pPIXEL.stab); kept while the tile's
+///                               results and the merge settings stay the same
+///   merge/parts/FP/             one merge (FP: its fingerprint, 16 hex digits):
+///                               plan.json, pPIXEL.stab + pPIXEL.json per partition
+///   slurm/RUN/                  job scripts, task lists and task logs of a Slurm run
 #include <cstdint>
 #include <map>
 #include <optional>
@@ -49,6 +54,9 @@ struct SurveyConfig {
   int workers = 2;
   int threads_per_tile = 1;
   survey::MergeOptions merge;
+  /// Local engine: surveys of at most this many tile rows are merged in memory
+  /// in one process (the same bytes as the on-disk merge; 0 = always on disk).
+  std::int64_t merge_in_memory_rows = 1000000;
   std::string ra_column = "ra_deg", dec_column = "dec_deg";
   /// Stage settings of `skerry extract`: every "section.key" of the file outside
   /// [survey] and [slurm] ([image], [noise], [detect], [fit], [output], ...),
@@ -140,9 +148,58 @@ struct MergeSummary {
 };
 
 /// Merges the tiles' component tables into the survey catalogue (atomically),
-/// and writes the merge summary. Tiles in name order. Throws InputError /
-/// OutputError.
+/// and writes the merge summary, all in this process's memory. Tiles in name
+/// order. Throws InputError / OutputError.
 MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& tiles);
+
+// ---- On-disk merge (survey_merge.cpp): scatter, partition merge, concatenation
+//
+// The survey never sits in one process's memory: (a) scatter cuts each tile's
+// rows by HEALPix partition (home pixel plus the pixels whose margin holds the
+// row) into merge/scatter/NAME/; (b) one partition at a time reads only its
+// scatter files, runs survey::merge_partition and writes its result rows, in
+// catalogue order and in the catalogue's final column layout; (c) the
+// concatenation streams the partition results in pixel order into the
+// catalogue. Memory: one tile in (a), one partition's rows in (b), one
+// partition's result in (c). Byte-identical to merge_tiles.
+
+/// The tile's scatter folder is current (or made so). Returns its row count.
+/// Throws InputError naming the tile's table when it cannot be read.
+std::int64_t ensure_scatter(const SurveyConfig& cfg, const MergeTile& tile);
+
+/// A merge's plan: its tiles and the partitions holding at least one home row.
+struct MergePlan {
+  std::string fingerprint;
+  std::string dir;                      ///< merge/parts/FP
+  std::vector<MergeTile> tiles;         ///< name order
+  std::vector<std::int64_t> partitions; ///< pixel order
+  std::int64_t input_rows = 0;
+};
+/// Builds the plan from the tiles' scatter indexes (ensure_scatter first) and
+/// writes plan.json. Throws InputError for a missing or stale scatter folder.
+MergePlan plan_merge(const SurveyConfig& cfg, const std::vector<MergeTile>& tiles);
+/// Reads plan.json of merge folder `dir`. Throws InputError.
+MergePlan read_merge_plan(const std::string& dir);
+/// True when partition `pixel`'s result of this plan is on disk.
+bool partition_done(const MergePlan& plan, std::int64_t pixel);
+/// Merges one partition (skipped when done). Returns its peak-memory proxy: the
+/// number of member rows it read. Throws InputError / OutputError.
+std::size_t merge_one_partition(const SurveyConfig& cfg, const MergePlan& plan, std::int64_t pixel);
+/// Concatenates the partition results into the catalogue and writes the merge
+/// summary. Throws InputError when a partition result is missing.
+MergeSummary concatenate_partitions(const SurveyConfig& cfg, const MergePlan& plan);
+
+/// Local engine: scatter (tiles in parallel), partitions in parallel (oneTBB),
+/// concatenation. Partitions that fail are listed in `failed` (one line each,
+/// naming the partition and the reason) and the catalogue is not written; the
+/// partitions done stay on disk for the next run. Returns the summary when the
+/// catalogue was written.
+std::optional<MergeSummary> merge_tiles_on_disk(const SurveyConfig& cfg, const std::vector<MergeTile>& tiles,
+                                                std::vector<std::string>& failed);
+
+/// Removes merge folders of other fingerprints and scatter folders of tiles
+/// not in `tiles` (controller only, under the lock).
+void prune_merge_folders(const SurveyConfig& cfg, const std::vector<MergeTile>& tiles, const std::string& keep_fp);
 /// Path of the merged catalogue and of its summary.
 std::string catalogue_path(const SurveyConfig& cfg);
 std::string merge_summary_path(const SurveyConfig& cfg);
@@ -224,16 +281,22 @@ struct PendingTile {
   std::string reason;  ///< new, content changed, configuration changed, ...
 };
 
-/// Slurm engine: one job array (a task per pending tile) and a merge job
-/// (afterok) through sbatch, polled with squeue until both have ended. Returns
-/// one report per pending tile (in order); failed or lost tasks give failure
-/// reports naming the task and its log. `merge_tiles_now` are the tiles that
-/// are already current (the merge job adds the pending ones that succeed).
+/// Slurm engine: one job array (a task per pending tile, which also scatters
+/// its tile) and a plan job (afterok) through sbatch. The plan job scatters
+/// what is left, plans the merge and submits a partition-merge array (one task
+/// per non-empty partition still to do) and a concatenation job (afterok on
+/// it). Everything is polled with squeue until it has ended. When tiles failed
+/// (so the afterok plan job never ran) the plan job is submitted again for the
+/// tiles that succeeded; with no pending tiles only the merge chain runs.
+/// Returns one report per pending tile (in order); failed or lost tasks give
+/// failure reports naming the task and its log. `merge_tiles_now` are the tiles
+/// that are already current (the plan job adds the pending ones that succeed).
+/// Partition tasks that failed are listed in `merge_failures` (one line each).
 /// `on_progress(done, total)` is called while polling.
 std::vector<TileReport> run_slurm(const SurveyConfig& cfg, const std::vector<PendingTile>& pending,
                                   const std::vector<MergeTile>& merge_tiles_now, const std::string& run_id,
                                   void (*on_progress)(std::size_t, std::size_t, void*), void* progress_ctx,
-                                  std::string* run_dir_out);
+                                  std::string* run_dir_out, std::vector<std::string>* merge_failures);
 
 /// The jobs of a Slurm run folder (its jobs.json) that squeue still shows
 /// active, as "ID,ID"; "" when none (or no jobs.json, or no squeue).
@@ -241,7 +304,11 @@ std::string slurm_jobs_active(const std::string& run_dir);
 
 /// `skerry survey CONFIG --worker-task N --run-dir DIR`: one Slurm array task.
 int slurm_worker_task(const SurveyConfig& cfg, const std::string& run_dir, int task);
-/// `skerry survey CONFIG --merge-job --run-dir DIR`: the Slurm merge job.
+/// `skerry survey CONFIG --merge-job --run-dir DIR`: the Slurm plan job.
 int slurm_merge_job(const SurveyConfig& cfg, const std::string& run_dir);
+/// `skerry survey CONFIG --partition-task N --run-dir DIR`: one partition merge.
+int slurm_partition_task(const SurveyConfig& cfg, const std::string& run_dir, int task);
+/// `skerry survey CONFIG --concat-job --run-dir DIR`: the concatenation job.
+int slurm_concat_job(const SurveyConfig& cfg, const std::string& run_dir);
 
 }  // namespace skerry::surveyrun

@@ -6,12 +6,15 @@
 #include <sys/wait.h>
 #include <unistd.h>
 
+#include <oneapi/tbb/parallel_for.h>
+
 #include <nlohmann/json.hpp>
 
 #include <algorithm>
 #include <cerrno>
 #include <chrono>
 #include <cstring>
+#include <exception>
 #include <ctime>
 #include <filesystem>
 #include <fstream>
@@ -342,6 +345,27 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
   std::vector<std::vector<std::int64_t>> spectra_row;
   std::vector<survey::TileComponent> comps;
   std::vector<survey::SkyPoint> centres;
+  // The tiles' tables are read in parallel first (reading and parsing them is most
+  // of this merge's time). Errors are kept per tile and raised in the loop below,
+  // in tile order, so the message does not depend on the thread count.
+  std::vector<Table> read_comps(tiles.size()), read_spectra(tiles.size());
+  std::vector<std::exception_ptr> comps_error(tiles.size()), spectra_error(tiles.size());
+  oneapi::tbb::parallel_for(std::size_t{0}, tiles.size(), [&](std::size_t t) {
+    const auto rep = read_tile_report(cfg, tiles[t].name);
+    if (!rep || !rep->ok || rep->components_sha256 != tiles[t].components_sha256) return;  // raised below
+    const fs::path dir = fs::path(tiles_dir(cfg)) / tiles[t].name;
+    try {
+      read_comps[t] = read_table((dir / rep->components_file).string());
+    } catch (...) {
+      comps_error[t] = std::current_exception();
+    }
+    if (cfg.bands.size() < 2 || rep->spectra_file.empty()) return;
+    try {
+      read_spectra[t] = read_table((dir / rep->spectra_file).string());
+    } catch (...) {
+      spectra_error[t] = std::current_exception();
+    }
+  });
   for (std::size_t t = 0; t < tiles.size(); ++t) {
     const auto rep = read_tile_report(cfg, tiles[t].name);
     const std::string rep_path = (fs::path(tiles_dir(cfg)) / tiles[t].name / "tile.json").string();
@@ -349,7 +373,8 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
     if (rep->components_sha256 != tiles[t].components_sha256)
       throw InputError(rep_path, "names a component table other than the one recorded for the tile");
     const std::string path = (fs::path(tiles_dir(cfg)) / tiles[t].name / rep->components_file).string();
-    Table tab = read_table(path);
+    if (comps_error[t]) std::rethrow_exception(comps_error[t]);
+    Table tab = std::move(read_comps[t]);
     const Column* ra = tab.find(cfg.ra_column);
     const Column* dec = tab.find(cfg.dec_column);
     if (!ra || !dec || ra->type != ColumnType::Float64 || dec->type != ColumnType::Float64)
@@ -369,7 +394,8 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
     if (cfg.bands.size() >= 2) {
       if (rep->spectra_file.empty()) throw InputError(rep_path, "names no spectra table (the survey has several bands)");
       const std::string sp = (fs::path(tiles_dir(cfg)) / tiles[t].name / rep->spectra_file).string();
-      Table st = read_table(sp);
+      if (spectra_error[t]) std::rethrow_exception(spectra_error[t]);
+      Table st = std::move(read_spectra[t]);
       const Column* id = st.find("component_id");
       if (!id || id->type != ColumnType::Int64) throw InputError(sp, "has no integer column 'component_id'");
       std::vector<std::int64_t> at(tab.rows(), -1);

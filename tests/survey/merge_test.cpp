@@ -2,6 +2,7 @@
 #include <gtest/gtest.h>
 #include <oneapi/tbb/global_control.h>
 
+#include <algorithm>
 #include <cmath>
 #include <map>
 #include <random>
@@ -241,5 +242,28 @@ TEST(MergeOptionsValidate, NamesTheOption) {
     FAIL();
   } catch (const std::invalid_argument& e) {
     EXPECT_EQ(std::string(e.what()).substr(0, 37), "match_radius_arcsec = 0.000000 breaks");
+  }
+}
+
+// The scatter's shortcut (one disc query per cell, survey_merge.cpp) gives the
+// same partitions as partitions_of for every component, and the home partition
+// is the sort key's prefix (a NESTED pixel at order k is the order-29 index
+// shifted right by 2 (29 - k) bits: Gorski et al. 2005, REF-HEALPIX-01) and is
+// among them.
+TEST(ScatterCell, SamePartitionsAsPartitionsOf) {
+  std::mt19937_64 rng(11);
+  std::uniform_real_distribution<double> u(0.0, 1.0);
+  for (int order : {0, 4, 9}) {
+    MergeOptions o;
+    o.partition_order = order;
+    for (int i = 0; i < 3000; ++i) {
+      const double ra = 360.0 * u(rng), dec = std::asin(2.0 * u(rng) - 1.0) * 180.0 / M_PI;
+      const std::int64_t key = sky_sort_key(ra, dec);
+      const auto want = partitions_of(ra, dec, o);
+      EXPECT_EQ(partitions_of_cell(scatter_cell(key, o), o), want) << ra << " " << dec << " order " << order;
+      const std::int64_t home = home_partition(key, o);
+      EXPECT_EQ(home, key >> (2 * (29 - order)));
+      EXPECT_TRUE(std::binary_search(want.begin(), want.end(), home)) << ra << " " << dec;
+    }
   }
 }

@@ -432,15 +432,20 @@ bool slurm_available() {
 
 // (e) Slurm for real: the survey through `--engine slurm` on the one-node test
 // cluster (tests/cluster/slurm-cluster.sh) gives a byte-identical catalogue to
-// the local engine's, the job array ran one task per tile, and the merge ran as
-// the dependent job. A failing tile is reported and the merge still happens.
+// the local engine's (which merges in memory; Slurm always merges on disk), the
+// tile array ran one task per tile, the partition-merge array one task per
+// non-empty partition, and the concatenation ran after it. A failing tile is
+// reported and the merge of the others still happens on Slurm; a failing
+// partition task is reported and retried (alone) on the next run.
 TEST(SurveyPipeline, SlurmEngineMatchesLocal) {
   if (!slurm_available()) {
     const char* req = std::getenv("SKERRY_REQUIRE_SLURM");
     if (req && std::string(req) == "1") FAIL() << "SKERRY_REQUIRE_SLURM=1 but no Slurm cluster answers (sinfo)";
     GTEST_SKIP() << "no Slurm cluster (start one with tests/cluster/slurm-cluster.sh start)";
   }
-  const std::string slurm_opts = "[slurm]\npoll_seconds = 0.2\nmem = 500M\nmerge_mem = 500M\ntime = 00:10:00\n";
+  // Partition order 9 (6.9' pixels) cuts the 16' field into several partitions.
+  const std::string slurm_opts =
+      "[slurm]\npoll_seconds = 0.2\nmem = 500M\nmerge_mem = 500M\ntime = 00:10:00\n[survey]\npartition_order = 9\n";
   const std::string dl = fresh_dir("slurm-local");
   ASSERT_EQ(run_skerry({"survey", make_survey(dl, slurm_opts)}).code, 0);
   const std::string ds = fresh_dir("slurm");
@@ -471,9 +476,50 @@ TEST(SurveyPipeline, SlurmEngineMatchesLocal) {
   auto merges = last_run_events(ds + "/out", "merge");
   ASSERT_EQ(merges.size(), 1u);
   EXPECT_EQ(json::parse(merges[0]).at("where"), "slurm");
+  // One partition task per non-empty partition of the plan, all of one array
+  // job, each naming its partition once (task logs, "%a" per array element).
+  const auto summary = json::parse(read_file(ds + "/out/lanternfish.components.merge.json"));
+  EXPECT_EQ(summary.value("merge", std::string()), "on disk");
+  const std::size_t n_parts = summary.at("partitions").get<std::size_t>();
+  EXPECT_GT(n_parts, 4u);
+  auto run_dir = [&] {
+    const auto st = last_run_events(ds + "/out", "run_start");
+    return st.empty() ? fs::path() : fs::path(ds + "/out/slurm") / json::parse(st.back()).at("run").get<std::string>();
+  };
+  auto partition_tasks = [&](const fs::path& dir, std::set<std::string>& part_jobs) {
+    std::multiset<std::string> parts;
+    for (const auto& e : fs::directory_iterator(dir)) {
+      const std::string n = e.path().filename().string();
+      if (n.rfind("partition-", 0) != 0) continue;
+      const std::string text = read_file(e.path().string());
+      const std::string key = "skerry survey partition task " + n.substr(10, n.size() - 14) + " of job ";
+      const auto p = text.find(key);
+      EXPECT_NE(p, std::string::npos) << text;
+      if (p == std::string::npos) continue;
+      const auto colon = text.find(": partition ", p);
+      part_jobs.insert(text.substr(p + key.size(), colon - p - key.size()));
+      parts.insert(text.substr(colon + 12, text.find('\n', colon) - colon - 12));
+      EXPECT_NE(text.find(" ok: "), std::string::npos) << text;
+    }
+    return parts;
+  };
+  {
+    std::set<std::string> part_jobs;
+    const auto parts = partition_tasks(run_dir(), part_jobs);
+    EXPECT_EQ(parts.size(), n_parts);
+    EXPECT_EQ(std::set<std::string>(parts.begin(), parts.end()).size(), n_parts);  // each once
+    EXPECT_EQ(part_jobs.size(), 1u);
+    std::set<std::string> planned;
+    const json mp = json::parse(read_file((run_dir() / "merge-plan.json").string()));
+    for (const auto& p : mp.at("todo"))
+      planned.insert(std::to_string(p.get<std::int64_t>()));
+    EXPECT_EQ(std::set<std::string>(parts.begin(), parts.end()), planned);
+    EXPECT_NE(read_file((run_dir() / "concat.log").string()).find("merge: 4 tiles"), std::string::npos);
+  }
   // Unchanged: nothing submitted.
   EXPECT_EQ(run_skerry({"survey", cfg, "--engine", "slurm"}).code, 5);
-  // A failing task is reported (exit 6); the controller merges the rest itself.
+  // A failing task is reported (exit 6); the others are merged on Slurm (a plan
+  // job of its own, since the afterok one never ran).
   const std::string tile = ds + "/tiles/tile_11.fits";
   const std::string good = read_file(tile);
   ASSERT_EQ(::truncate(tile.c_str(), static_cast<off_t>(good.size() / 3)), 0);
@@ -484,12 +530,42 @@ TEST(SurveyPipeline, SlurmEngineMatchesLocal) {
   EXPECT_EQ(json::parse(ev[0]).at("status"), "failed");
   merges = last_run_events(ds + "/out", "merge");
   ASSERT_EQ(merges.size(), 1u);
-  EXPECT_EQ(json::parse(merges[0]).at("where"), "local");
+  EXPECT_EQ(json::parse(merges[0]).at("where"), "slurm");
+  EXPECT_EQ(json::parse(merges[0]).at("tiles"), 3);
   // Repaired: retried on the next run, and the catalogue is the local one again.
   write_file(tile, good);
   r = run_skerry({"survey", cfg, "--engine", "slurm"});
   EXPECT_EQ(r.code, 0) << r.err;
   EXPECT_EQ(read_file(ds + kCatalogue), read_file(dl + kCatalogue));
+  // A failing partition task (its result name squatted by a folder): exit 6, a
+  // merge_failed event naming the partition and its Slurm task, no catalogue;
+  // the next run submits that partition alone and completes.
+  {
+    std::vector<fs::path> pf;
+    for (const auto& e : fs::directory_iterator(ds + "/out/merge/parts")) pf.push_back(e.path());
+    ASSERT_EQ(pf.size(), 1u);
+    const auto plan = json::parse(read_file((pf[0] / "plan.json").string()));
+    const std::string px = std::to_string(plan.at("partitions").at(1).at("pixel").get<std::int64_t>());
+    fs::remove(pf[0] / ("p" + px + ".json"));
+    fs::remove(pf[0] / ("p" + px + ".stab"));
+    fs::create_directories(pf[0] / ("p" + px + ".stab") / "squatter");
+    fs::remove(ds + kCatalogue);
+    r = run_skerry({"survey", cfg, "--engine", "slurm"});
+    EXPECT_EQ(r.code, 6) << r.err;
+    EXPECT_FALSE(fs::exists(ds + kCatalogue));
+    const auto mf = last_run_events(ds + "/out", "merge_failed");
+    ASSERT_EQ(mf.size(), 1u);
+    const std::string msg = json::parse(mf[0]).at("message").get<std::string>();
+    EXPECT_NE(msg.find("merge partition " + px + " (Slurm task "), std::string::npos) << msg;
+    EXPECT_NE(r.err.find("merge partition " + px), std::string::npos) << r.err;
+    fs::remove_all(pf[0] / ("p" + px + ".stab"));
+    r = run_skerry({"survey", cfg, "--engine", "slurm"});
+    EXPECT_EQ(r.code, 0) << r.err;
+    EXPECT_EQ(read_file(ds + kCatalogue), read_file(dl + kCatalogue));
+    std::set<std::string> part_jobs;
+    const auto parts = partition_tasks(run_dir(), part_jobs);
+    EXPECT_EQ(parts, (std::multiset<std::string>{px}));  // only the failed one was redone
+  }
   // A controller killed (-9) while its jobs run: the next run exits busy until
   // they have ended, then completes the work.
   const int pid = start_skerry({"survey", cfg, "--engine", "slurm", "--force"}, ds);

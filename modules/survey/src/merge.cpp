@@ -139,6 +139,16 @@ std::vector<std::int64_t> partitions_of(double ra_deg, double dec_deg, const Mer
   return partitions_of_fine(sky_sort_key(ra_deg, dec_deg) >> (2 * (kSortOrder - fine_order(o))), o);
 }
 
+std::int64_t scatter_cell(std::int64_t sort_key, const MergeOptions& o) {
+  return sort_key >> (2 * (kSortOrder - fine_order(o)));
+}
+std::vector<std::int64_t> partitions_of_cell(std::int64_t cell, const MergeOptions& o) {
+  return partitions_of_fine(cell, o);
+}
+std::int64_t home_partition(std::int64_t sort_key, const MergeOptions& o) {
+  return sort_key >> (2 * (kSortOrder - o.partition_order));
+}
+
 PartitionResult merge_partition(const PartitionInput& input, const std::vector<SkyPoint>& centres,
                                 const MergeOptions& o) {
   validate(o);

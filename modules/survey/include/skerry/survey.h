@@ -118,6 +118,15 @@ PartitionResult merge_partition(const PartitionInput& input, const std::vector<S
 /// conservative HEALPix disc query: never misses a pixel, may add one).
 std::vector<std::int64_t> partitions_of(double ra_deg, double dec_deg, const MergeOptions& options);
 
+/// Scatter without a disc query per component: `scatter_cell` maps a sort key
+/// (sky_sort_key) to a cell (a HEALPix NESTED pixel three orders finer than the
+/// partitions) whose components all belong to the same partitions,
+/// `partitions_of_cell(cell)` = partitions_of of any of its components, and
+/// `home_partition` is the partition a sort key lies in.
+std::int64_t scatter_cell(std::int64_t sort_key, const MergeOptions& options);
+std::vector<std::int64_t> partitions_of_cell(std::int64_t cell, const MergeOptions& options);
+std::int64_t home_partition(std::int64_t sort_key, const MergeOptions& options);
+
 struct MergeResult {
   std::vector<TileComponent> kept;   ///< catalogue order
   std::vector<std::string> names;
