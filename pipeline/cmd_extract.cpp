@@ -9,7 +9,9 @@
 //   fit         cut-outs of (image - background), multi-Gaussian fits (fit.*),
 //               sky measurements with errors (errors.*, resolved.*)
 //   catalogue   position flags, island statistics, source grouping (catalogue.*)
-//   write       maps, model, residual, tables; then the run record
+//   write       model, residual, tables; then the run record (the rms,
+//               background and label maps are written by a background thread
+//               from the end of `islands` on, overlapping the fit)
 //
 // Outputs are written into a hidden staging folder inside DIR and moved into
 // place only after every one of them was written, so a failed run leaves the
@@ -630,6 +632,29 @@ int run_extract(const std::vector<std::string>& args) {
   t_isl.stop();
   const std::size_t n_isl = isl.islands.size();
 
+  // ---- maps that are final already -----------------------------------------------------
+  // The rms, background and island-label maps do not change from here on: they are
+  // written (each durably, see AtomicOutput) on a background thread while the
+  // islands are fitted, so that the disk-bound writing overlaps the CPU-bound fit.
+  // Below, `maps` and `isl.labels` are only read until map_writes.get() has joined
+  // the writer. A future from std::async waits in its destructor, and map_writes is
+  // declared after `stage`, so a throw below joins the writer before the staging
+  // folder is removed.
+  Staging stage(cfg.out_dir, cfg.name);
+  const std::string& N = cfg.name;
+  const std::vector<std::pair<std::string, std::string>> cards = {
+      {"ORIGIN", fits_string(std::string("skerry ") + SKERRY_VERSION + " (" + SKERRY_GIT_REVISION + ")")}};
+  std::future<void> map_writes;
+  if (cfg.write_maps) {
+    const std::string rms_path = stage.path(N + ".rms.fits"), bg_path = stage.path(N + ".background.fits"),
+                      labels_path = stage.path(N + ".islands.fits");
+    map_writes = std::async(std::launch::async, [&maps, &isl, &sky, &cards, rms_path, bg_path, labels_path] {
+      write_fits_image(rms_path, maps.rms_image(), sky, "JY/BEAM", cards);
+      write_fits_image(bg_path, maps.background_image(), sky, "JY/BEAM", cards);
+      write_fits_labels(labels_path, isl.labels, sky, cards);
+    });
+  }
+
   // ---- cut-outs and fits -------------------------------------------------------------
   StageTimer t_cut(record, "cutouts");
   std::vector<IslandCutout> cutouts(n_isl);
@@ -860,6 +885,10 @@ int run_extract(const std::vector<std::string>& args) {
   t_cat.stop();
 
   // ---- write ------------------------------------------------------------------------------
+  {
+    StageTimer t_wait(record, "write_maps_wait");  // what the map writer still needed after the fit
+    if (map_writes.valid()) map_writes.get();       // rethrows the writer's error, if any
+  }
   StageTimer t_write(record, "write");
   const std::string image_sha256 = record.add_input("image", cfg.image, image_sha.get());
   Provenance meta = {
@@ -883,23 +912,24 @@ int run_extract(const std::vector<std::string>& args) {
     std::replace(key.begin(), key.end(), '.', '_');
     meta.emplace_back(key, v);
   }
-  Staging stage(cfg.out_dir, cfg.name);
-  const std::string& N = cfg.name;
-  const std::vector<std::pair<std::string, std::string>> cards = {
-      {"ORIGIN", fits_string(std::string("skerry ") + SKERRY_VERSION + " (" + SKERRY_GIT_REVISION + ")")}};
-  if (cfg.write_maps) {
-    write_fits_image(stage.path(N + ".rms.fits"), maps.rms_image(), sky, "JY/BEAM", cards);
-    write_fits_image(stage.path(N + ".background.fits"), maps.background_image(), sky, "JY/BEAM", cards);
-    write_fits_labels(stage.path(N + ".islands.fits"), isl.labels, sky, cards);
-  }
   isl.labels = LabelsI32();
   if (cfg.write_model || cfg.write_residual) {
-    ImageF buf = render_model(nx, ny, all_pix, 6.0);
-    if (cfg.write_model) write_fits_image(stage.path(N + ".model.fits"), buf, sky, "JY/BEAM", cards);
-    if (cfg.write_residual) {
-      buf = sky.pixels - buf;  // residual = image - model (background kept)
-      write_fits_image(stage.path(N + ".residual.fits"), buf, sky, "JY/BEAM", cards);
+    // The model is written on a second thread while the residual is formed and
+    // written here: two disk-bound writes at once, with the label map already freed
+    // so that the two images add no more memory than the maps did.
+    const ImageF model = render_model(nx, ny, all_pix, 6.0);
+    std::future<void> model_write;
+    if (cfg.write_model) {
+      const std::string model_path = stage.path(N + ".model.fits");
+      model_write = std::async(std::launch::async, [&model, &sky, &cards, model_path] {
+        write_fits_image(model_path, model, sky, "JY/BEAM", cards);
+      });
     }
+    if (cfg.write_residual) {
+      const ImageF residual = sky.pixels - model;  // residual = image - model (background kept)
+      write_fits_image(stage.path(N + ".residual.fits"), residual, sky, "JY/BEAM", cards);
+    }
+    if (model_write.valid()) model_write.get();  // rethrows the writer's error, if any
   }
   const double freq = sky.freq_hz;
   {
