@@ -913,23 +913,28 @@ int run_extract(const std::vector<std::string>& args) {
     meta.emplace_back(key, v);
   }
   isl.labels = LabelsI32();
-  if (cfg.write_model || cfg.write_residual) {
-    // The model is written on a second thread while the residual is formed and
-    // written here: two disk-bound writes at once, with the label map already freed
-    // so that the two images add no more memory than the maps did.
-    const ImageF model = render_model(nx, ny, all_pix, 6.0);
-    std::future<void> model_write;
-    if (cfg.write_model) {
-      const std::string model_path = stage.path(N + ".model.fits");
-      model_write = std::async(std::launch::async, [&model, &sky, &cards, model_path] {
-        write_fits_image(model_path, model, sky, "JY/BEAM", cards);
-      });
-    }
-    if (cfg.write_residual) {
+  // The model and the residual are written on two threads while the tables are
+  // formed and written here: the image writes are disk-bound (O_DIRECT, see
+  // write_fits_image) and the tables CPU-bound, so they overlap. The label map is
+  // freed first, so that the two images add no more memory than the maps did.
+  // Output paths are taken here, in a fixed order, so that the run record lists
+  // the files in the same order whatever finishes first. The futures are declared
+  // after `model`: a throw below joins the writers before the model is freed.
+  ImageF model;
+  if (cfg.write_model || cfg.write_residual) model = render_model(nx, ny, all_pix, 6.0);
+  std::future<void> model_write, residual_write;
+  if (cfg.write_model) {
+    const std::string model_path = stage.path(N + ".model.fits");
+    model_write = std::async(std::launch::async, [&model, &sky, &cards, model_path] {
+      write_fits_image(model_path, model, sky, "JY/BEAM", cards);
+    });
+  }
+  if (cfg.write_residual) {
+    const std::string residual_path = stage.path(N + ".residual.fits");
+    residual_write = std::async(std::launch::async, [&model, &sky, &cards, residual_path] {
       const ImageF residual = sky.pixels - model;  // residual = image - model (background kept)
-      write_fits_image(stage.path(N + ".residual.fits"), residual, sky, "JY/BEAM", cards);
-    }
-    if (model_write.valid()) model_write.get();  // rethrows the writer's error, if any
+      write_fits_image(residual_path, residual, sky, "JY/BEAM", cards);
+    });
   }
   const double freq = sky.freq_hz;
   {
@@ -950,6 +955,8 @@ int run_extract(const std::vector<std::string>& args) {
     if (cfg.fmt_fits) write_table(t, stage.path(N + ".sources.fits"));
     if (cfg.fmt_vot) write_table(t, stage.path(N + ".sources.vot"));
   }
+  if (model_write.valid()) model_write.get();  // rethrows the writer's error, if any
+  if (residual_write.valid()) residual_write.get();
   t_write.stop();
   std::int64_t n_failed = 0;
   for (const auto& c : comps) n_failed += (c.flags & kFlagFitFailed) ? 1 : 0;

@@ -714,6 +714,84 @@ TEST(FitsWrite, LabelsAreInt32) {
   for (Eigen::Index i = 0; i < lab.size(); ++i) EXPECT_EQ(v[static_cast<std::size_t>(i)], lab.data()[i]);
 }
 
+// The data unit is written by skerry's own writer (O_DIRECT for the aligned
+// middle, buffered head and tail; see write_data_unit in fits_image.cpp). The
+// external check is CFITSIO's fits_write_img: the same header and pixels written
+// by CFITSIO must give a byte-identical file (FITS Standard 4.0, REF-FITS-02:
+// big-endian IEEE-754 / two's complement, zero padding to 2880 bytes).
+std::string file_bytes(const std::string& p) {
+  std::ifstream in(p, std::ios::binary);
+  return std::string((std::istreambuf_iterator<char>(in)), {});
+}
+
+std::string cfitsio_rewrite(const std::string& src, const std::string& dst, int datatype, void* pixels,
+                            long long n) {
+  fitsfile* in = nullptr;
+  fitsfile* out = nullptr;
+  int st = 0;
+  fs::remove(dst);
+  fits_open_file(&in, src.c_str(), READONLY, &st);
+  fits_create_diskfile(&out, dst.c_str(), &st);
+  fits_copy_header(in, out, &st);
+  fits_write_img(out, datatype, 1, n, pixels, &st);
+  fits_close_file(out, &st);
+  fits_close_file(in, &st);
+  EXPECT_EQ(st, 0) << "CFITSIO status " << st;
+  return file_bytes(dst);
+}
+
+TEST(FitsWrite, DataUnitMatchesCfitsioWriterByteForByte) {
+  ScratchDir dir;
+  // Sizes: one pixel; smaller than one 4096-byte page; a few pages with an
+  // unaligned tail; more than one 8 MiB chunk of the writer (1537 x 1531 x 4 B).
+  const std::vector<std::pair<long, long>> shapes = {{1, 1}, {31, 24}, {1000, 7}, {1537, 1531}};
+  std::vector<std::string> folders = {fs::path(dir.file("x")).parent_path().string()};
+  if (fs::is_directory("/dev/shm")) folders.push_back("/dev/shm");  // tmpfs: may refuse O_DIRECT
+  for (const bool buffered : {false, true}) {
+    // The fallback path, as on a file system without O_DIRECT.
+    if (buffered) ::setenv("SKERRY_NO_DIRECT_IO", "1", 1);
+    for (const auto& folder : folders) {
+      for (const auto& [nx, ny] : shapes) {
+        SCOPED_TRACE(folder + " " + std::to_string(nx) + " x " + std::to_string(ny) +
+                     (buffered ? " buffered" : " direct"));
+        GridSpec g = small_grid();
+        g.nx = nx;
+        g.ny = ny;
+        ImageF px(ny, nx);
+        for (Eigen::Index i = 0; i < px.size(); ++i) px.data()[i] = static_cast<float>(std::sin(0.37 * i)) * 1e-3f;
+        px.data()[px.size() - 1] = std::numeric_limits<float>::quiet_NaN();
+        if (px.size() > 3) {
+          px.data()[1] = -0.0f;
+          px.data()[2] = std::numeric_limits<float>::infinity();
+          px.data()[3] = std::numeric_limits<float>::denorm_min();
+        }
+        const SkyImage like = make_sky_image(g, px);
+        const std::string tag = std::to_string(::getpid()) + "-" + std::to_string(nx) + "x" + std::to_string(ny);
+        const std::string ours = folder + "/skerry-ours-" + tag + ".fits";
+        const std::string ref = folder + "/skerry-ref-" + tag + ".fits";
+        write_fits_image(ours, px, like);
+        const std::string a = file_bytes(ours);
+        const std::string b = cfitsio_rewrite(ours, ref, TFLOAT, px.data(), px.size());
+        EXPECT_EQ(a.size() % 2880, 0u);
+        EXPECT_EQ(a.size(), b.size());
+        EXPECT_TRUE(a == b) << "float32 data unit differs from CFITSIO's";
+
+        LabelsI32 lab(ny, nx);
+        for (Eigen::Index i = 0; i < lab.size(); ++i)
+          lab.data()[i] = static_cast<std::int32_t>((i * 2654435761u) ^ 0x80000001u);
+        write_fits_labels(ours, lab, like);
+        const std::string c = file_bytes(ours);
+        const std::string d = cfitsio_rewrite(ours, ref, TINT, lab.data(), lab.size());
+        EXPECT_EQ(c.size(), d.size());
+        EXPECT_TRUE(c == d) << "int32 data unit differs from CFITSIO's";
+        fs::remove(ours);
+        fs::remove(ref);
+      }
+    }
+  }
+  ::unsetenv("SKERRY_NO_DIRECT_IO");
+}
+
 TEST(FitsWrite, RenameFailureLeavesNothing) {
   ScratchDir dir;
   const GridSpec g = small_grid();
