@@ -27,6 +27,7 @@
 #include <vector>
 
 #include "skerry/survey.h"
+#include "skerry/table.h"
 
 namespace skerry::surveyrun {
 
@@ -220,6 +221,18 @@ class SurveyLog {
  private:
   int plain_ = -1, json_ = -1;
 };
+
+/// The merged catalogue's provenance (survey, tool, merge rule, counts, row
+/// order, fingerprint), the same for the in-memory and the on-disk merge.
+void set_catalogue_meta(Table& catalogue, const SurveyConfig& cfg, std::size_t n_tiles, const MergeSummary& sum);
+
+/// For a tile's spectra table `spectra` (read from `spectra_path`), the row that
+/// holds each of the `n_components` rows of `components_file`: its integer
+/// `component_id` column (1-based) must name every component exactly once.
+/// Throws InputError naming `spectra_path` and the first offending row.
+std::vector<std::int64_t> spectra_row_of_component(const Table& spectra, std::size_t n_components,
+                                                   const std::string& spectra_path,
+                                                   const std::string& components_file);
 
 /// UTC time stamp, ISO 8601 to the second ("2026-12-01T19:30:00Z").
 std::string utc_now();

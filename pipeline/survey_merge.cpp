@@ -211,13 +211,6 @@ fs::path merge_root(const SurveyConfig& cfg) { return fs::path(cfg.output_root) 
 fs::path scatter_dir(const SurveyConfig& cfg, const std::string& tile) { return merge_root(cfg) / "scatter" / tile; }
 std::string pixel_file(std::int64_t pixel, const char* ext) { return "p" + std::to_string(pixel) + ext; }
 
-void fsync_path(const fs::path& p, bool dir) {
-  int fd = ::open(p.c_str(), (dir ? O_RDONLY | O_DIRECTORY : O_RDONLY) | O_CLOEXEC);
-  if (fd < 0) return;
-  ::fsync(fd);
-  ::close(fd);
-}
-
 /// Fault injection for the kill -9 tests (DEVELOPERS.md): the process kills
 /// itself with SIGKILL right after the named step when SKERRY_SURVEY_KILL_AFTER
 /// names it. Not set in production: no effect.
@@ -286,18 +279,7 @@ Table tile_rows(const SurveyConfig& cfg, const MergeTile& tile, std::vector<doub
     if (rep->spectra_file.empty()) throw InputError(rep_path, "names no spectra table (the survey has several bands)");
     const std::string sp = (tdir / rep->spectra_file).string();
     Table st = read_table(sp);
-    const Column* id = st.find("component_id");
-    if (!id || id->type != ColumnType::Int64) throw InputError(sp, "has no integer column 'component_id'");
-    std::vector<std::int64_t> at(rows.size(), -1);
-    for (std::size_t i = 0; i < st.rows(); ++i) {
-      const std::int64_t c = id->i64[i];
-      if (c < 1 || c > static_cast<std::int64_t>(rows.size()) || at[static_cast<std::size_t>(c - 1)] >= 0)
-        throw InputError(sp, "row " + std::to_string(i + 1) + ": component_id " + std::to_string(c) +
-                                 " is not a distinct row of " + rep->components_file);
-      at[static_cast<std::size_t>(c - 1)] = static_cast<std::int64_t>(i);
-    }
-    for (std::size_t i = 0; i < at.size(); ++i)
-      if (at[i] < 0) throw InputError(sp, "has no row for component " + std::to_string(i + 1));
+    const std::vector<std::int64_t> at = spectra_row_of_component(st, rows.size(), sp, rep->components_file);
     for (const auto& proto : st.columns()) {
       if (proto.name == "component_id" || proto.name == "ra_deg" || proto.name == "dec_deg") continue;
       Column col = empty_like(proto);
@@ -653,20 +635,7 @@ MergeSummary concatenate_partitions(const SurveyConfig& cfg, const MergePlan& pl
     for (const auto& b : cfg.bands) bl += (bl.empty() ? "" : ",") + b;
     proto.set_meta("bands", bl);
   }
-  std::ostringstream radius;
-  radius.precision(17);
-  radius << cfg.merge.match_radius_arcsec;
-  proto.set_meta("survey", cfg.name);
-  proto.set_meta("tool", "skerry survey " + tool_version());
-  proto.set_meta("tiles", std::to_string(plan.tiles.size()));
-  proto.set_meta("merge_rule", "a component is kept only by the tile whose centre is nearest to it (great-circle distance; ties to the first tile by name)");
-  proto.set_meta("self_match_radius_arcsec", radius.str());
-  proto.set_meta("input_rows", std::to_string(sum.input_rows));
-  proto.set_meta("dropped_outside_cell", std::to_string(sum.dropped_by_cell));
-  proto.set_meta("residual_duplicate_pairs", std::to_string(sum.residual_duplicate_pairs));
-  proto.set_meta("designation", cfg.merge.designation_prefix + " JHHMMSS.s+DDMMSS, truncated");
-  proto.set_meta("row_order", "HEALPix NESTED index at order 29, then RA, Dec, tile, row");
-  proto.set_meta("merge_fingerprint", sum.fingerprint);
+  set_catalogue_meta(proto, cfg, plan.tiles.size(), sum);
 
   const std::string cat = catalogue_path(cfg);
   auto part_table = [&](std::size_t i) {

@@ -43,14 +43,42 @@ std::string utc_now() {
 
 std::string json_str(const std::string& s) { return json(s).dump(); }
 
-namespace {
-
-void fsync_path(const fs::path& p, bool dir) {
-  int fd = ::open(p.c_str(), (dir ? O_RDONLY | O_DIRECTORY : O_RDONLY) | O_CLOEXEC);
-  if (fd < 0) return;
-  ::fsync(fd);
-  ::close(fd);
+void set_catalogue_meta(Table& catalogue, const SurveyConfig& cfg, std::size_t n_tiles, const MergeSummary& sum) {
+  std::ostringstream radius;
+  radius.precision(17);
+  radius << cfg.merge.match_radius_arcsec;
+  catalogue.set_meta("survey", cfg.name);
+  catalogue.set_meta("tool", "skerry survey " + tool_version());
+  catalogue.set_meta("tiles", std::to_string(n_tiles));
+  catalogue.set_meta("merge_rule", "a component is kept only by the tile whose centre is nearest to it (great-circle distance; ties to the first tile by name)");
+  catalogue.set_meta("self_match_radius_arcsec", radius.str());
+  catalogue.set_meta("input_rows", std::to_string(sum.input_rows));
+  catalogue.set_meta("dropped_outside_cell", std::to_string(sum.dropped_by_cell));
+  catalogue.set_meta("residual_duplicate_pairs", std::to_string(sum.residual_duplicate_pairs));
+  catalogue.set_meta("designation", cfg.merge.designation_prefix + " JHHMMSS.s+DDMMSS, truncated");
+  catalogue.set_meta("row_order", "HEALPix NESTED index at order 29, then RA, Dec, tile, row");
+  catalogue.set_meta("merge_fingerprint", sum.fingerprint);
 }
+
+std::vector<std::int64_t> spectra_row_of_component(const Table& spectra, std::size_t n_components,
+                                                   const std::string& spectra_path,
+                                                   const std::string& components_file) {
+  const Column* id = spectra.find("component_id");
+  if (!id || id->type != ColumnType::Int64) throw InputError(spectra_path, "has no integer column 'component_id'");
+  std::vector<std::int64_t> at(n_components, -1);
+  for (std::size_t i = 0; i < spectra.rows(); ++i) {
+    const std::int64_t c = id->i64[i];
+    if (c < 1 || c > static_cast<std::int64_t>(n_components) || at[static_cast<std::size_t>(c - 1)] >= 0)
+      throw InputError(spectra_path, "row " + std::to_string(i + 1) + ": component_id " + std::to_string(c) +
+                                         " is not a distinct row of " + components_file);
+    at[static_cast<std::size_t>(c - 1)] = static_cast<std::int64_t>(i);
+  }
+  for (std::size_t i = 0; i < at.size(); ++i)
+    if (at[i] < 0) throw InputError(spectra_path, "has no row for component " + std::to_string(i + 1));
+  return at;
+}
+
+namespace {
 
 std::string self_exe() {
   std::error_code ec;
@@ -396,18 +424,7 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
       const std::string sp = (fs::path(tiles_dir(cfg)) / tiles[t].name / rep->spectra_file).string();
       if (spectra_error[t]) std::rethrow_exception(spectra_error[t]);
       Table st = std::move(read_spectra[t]);
-      const Column* id = st.find("component_id");
-      if (!id || id->type != ColumnType::Int64) throw InputError(sp, "has no integer column 'component_id'");
-      std::vector<std::int64_t> at(tab.rows(), -1);
-      for (std::size_t i = 0; i < st.rows(); ++i) {
-        const std::int64_t c = id->i64[i];
-        if (c < 1 || c > static_cast<std::int64_t>(tab.rows()) || at[static_cast<std::size_t>(c - 1)] >= 0)
-          throw InputError(sp, "row " + std::to_string(i + 1) + ": component_id " + std::to_string(c) +
-                                   " is not a distinct row of " + rep->components_file);
-        at[static_cast<std::size_t>(c - 1)] = static_cast<std::int64_t>(i);
-      }
-      for (std::size_t i = 0; i < at.size(); ++i)
-        if (at[i] < 0) throw InputError(sp, "has no row for component " + std::to_string(i + 1));
+      std::vector<std::int64_t> at = spectra_row_of_component(st, tab.rows(), sp, rep->components_file);
       if (!spectra.empty()) {
         const auto& a = spectra.front().columns();
         const auto& b = st.columns();
@@ -493,20 +510,7 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
     for (const auto& b : cfg.bands) bl += (bl.empty() ? "" : ",") + b;
     out.set_meta("bands", bl);
   }
-  std::ostringstream radius;
-  radius.precision(17);
-  radius << cfg.merge.match_radius_arcsec;
-  out.set_meta("survey", cfg.name);
-  out.set_meta("tool", "skerry survey " + tool_version());
-  out.set_meta("tiles", std::to_string(tiles.size()));
-  out.set_meta("merge_rule", "a component is kept only by the tile whose centre is nearest to it (great-circle distance; ties to the first tile by name)");
-  out.set_meta("self_match_radius_arcsec", radius.str());
-  out.set_meta("input_rows", std::to_string(sum.input_rows));
-  out.set_meta("dropped_outside_cell", std::to_string(sum.dropped_by_cell));
-  out.set_meta("residual_duplicate_pairs", std::to_string(sum.residual_duplicate_pairs));
-  out.set_meta("designation", cfg.merge.designation_prefix + " JHHMMSS.s+DDMMSS, truncated");
-  out.set_meta("row_order", "HEALPix NESTED index at order 29, then RA, Dec, tile, row");
-  out.set_meta("merge_fingerprint", sum.fingerprint);
+  set_catalogue_meta(out, cfg, tiles.size(), sum);
   write_table(out, catalogue_path(cfg));
   sum.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
   json j;

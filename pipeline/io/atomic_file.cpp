@@ -16,14 +16,14 @@ namespace fs = std::filesystem;
 
 namespace {
 std::atomic<unsigned> g_counter{0};
+}  // namespace
 
-void fsync_path(const std::string& p, bool dir) {
-  int fd = ::open(p.c_str(), dir ? (O_RDONLY | O_DIRECTORY) : O_RDONLY);
+void fsync_path(const std::string& path, bool is_folder) {
+  int fd = ::open(path.c_str(), (is_folder ? (O_RDONLY | O_DIRECTORY) : O_RDONLY) | O_CLOEXEC);
   if (fd < 0) return;
   ::fsync(fd);
   ::close(fd);
 }
-}  // namespace
 
 bool is_temporary_name(const std::string& n) {
   return n.size() > 8 && n.front() == '.' && n.ends_with(".partial");

@@ -33,6 +33,10 @@ class AtomicOutput {
 /// (including a short write on a full disk).
 void write_text_atomic(const std::string& path, const std::string& content);
 
+/// fsync of a file (`is_folder` false) or of a folder's entries (true); a path
+/// that cannot be opened is skipped (the rename or the next step reports it).
+void fsync_path(const std::string& path, bool is_folder);
+
 /// True for names this project uses for temporary files.
 bool is_temporary_name(const std::string& file_name);
 

@@ -32,6 +32,7 @@
 
 #include "errors.h"
 #include "io/atomic_file.h"
+#include "io/header_text.h"
 #include "io/wcs.h"
 #include "skerry/constants.h"
 
@@ -157,24 +158,12 @@ struct CfitsioGuard {
   bool locked;
 };
 
-std::string trim(const std::string& s) {
-  std::size_t b = s.find_first_not_of(' ');
-  if (b == std::string::npos) return "";
-  std::size_t e = s.find_last_not_of(' ');
-  return s.substr(b, e - b + 1);
-}
-std::string upper(std::string s) {
-  for (char& c : s) c = static_cast<char>(std::toupper(static_cast<unsigned char>(c)));
-  return s;
-}
+using header_text::one_line;
+using header_text::trim;
+using header_text::upper;
 std::string lower(std::string s) {
   for (char& c : s) c = static_cast<char>(std::tolower(static_cast<unsigned char>(c)));
   return s;
-}
-std::string one_line(std::string s) {
-  for (char& c : s)
-    if (c == '\n' || c == '\r' || c == '\t') c = ' ';
-  return trim(s);
 }
 
 /// CFITSIO status and its first stacked message as one line (the stack is cleared).

@@ -31,6 +31,7 @@
 #include <stdexcept>
 #include <vector>
 
+#include "io/header_text.h"
 #include "skerry/constants.h"
 
 namespace skerry {
@@ -40,23 +41,9 @@ namespace {
 // wcspih/wcserr_enable touch global state in WCSLIB; parsing is serialised.
 std::mutex g_parse_mutex;
 
-std::string trim(const std::string& s) {
-  std::size_t b = s.find_first_not_of(' ');
-  if (b == std::string::npos) return "";
-  std::size_t e = s.find_last_not_of(' ');
-  return s.substr(b, e - b + 1);
-}
-
-std::string upper(std::string s) {
-  for (char& c : s) c = static_cast<char>(std::toupper(static_cast<unsigned char>(c)));
-  return s;
-}
-
-std::string one_line(std::string s) {
-  for (char& c : s)
-    if (c == '\n' || c == '\r' || c == '\t') c = ' ';
-  return trim(s);
-}
+using header_text::one_line;
+using header_text::trim;
+using header_text::upper;
 
 struct WcsDeleter {
   void operator()(wcsprm* w) const {
