@@ -15,6 +15,7 @@
 #include <vector>
 
 #include "skerry/constants.h"
+#include "skerry/fft_lock.h"
 #include "skerry/resolution.h"
 
 namespace skerry {
@@ -22,10 +23,8 @@ namespace skerry {
 namespace {
 
 // FFTW's planner is not thread-safe (FFTW manual, "Thread safety"); execution is.
-std::mutex& planner_mutex() {
-  static std::mutex m;
-  return m;
-}
+// Plans are made and destroyed under the process-wide lock of skerry/fft_lock.h.
+std::mutex& planner_mutex() { return fftw_planner_mutex(); }
 
 struct PlanDeleter {
   void operator()(fftwf_plan_s* p) const {

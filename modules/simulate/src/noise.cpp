@@ -38,6 +38,7 @@
 #include <vector>
 
 #include "skerry/constants.h"
+#include "skerry/fft_lock.h"
 #include "skerry/simulate.h"
 #include "stream.h"
 
@@ -45,11 +46,8 @@ namespace skerry::sim {
 
 namespace {
 
-/// FFTW's planner is not thread-safe: plans are made and destroyed under this lock.
-std::mutex& fftw_planner_mutex() {
-  static std::mutex m;
-  return m;
-}
+// FFTW's planner is not thread-safe: plans are made and destroyed under the
+// process-wide skerry::fftw_planner_mutex() (skerry/fft_lock.h).
 
 struct FftwFree {
   void operator()(void* p) const { fftwf_free(p); }
