@@ -267,12 +267,16 @@ ReportResult write_report(const ReportOptions& opt) {
     try { image = read_sky_image(image_path, ro); } catch (const std::exception& e) {
       res.missing.push_back("input image unreadable: " + std::string(e.what()));
     }
-  } else if (residual && fs::exists(P(".model.fits")) && fs::exists(P(".background.fits"))) {
-    // The input image is residual + model + background (what extract subtracted).
-    image = *residual;
-    const SkyImage m = read_sky_image(P(".model.fits"), ro), b = read_sky_image(P(".background.fits"), ro);
-    if (m.pixels.rows() == image->pixels.rows() && m.pixels.cols() == image->pixels.cols())
-      image->pixels = residual->pixels + m.pixels + b.pixels;
+  } else if (residual && fs::exists(P(".model.fits"))) {
+    // The input image is residual + model: extract's residual is image - model, with
+    // the background left in it (README, "What skerry extract writes").
+    const SkyImage m = read_sky_image(P(".model.fits"), ro);
+    if (m.pixels.rows() == residual->pixels.rows() && m.pixels.cols() == residual->pixels.cols()) {
+      image = *residual;
+      image->pixels = residual->pixels + m.pixels;
+    } else {
+      res.missing.push_back("input image not found, and " + N + ".model.fits differs in shape from the residual");
+    }
   } else {
     res.missing.push_back("input image not found" + (image_path.empty() ? std::string() : " (" + image_path + ")"));
   }
@@ -319,7 +323,7 @@ ReportResult write_report(const ReportOptions& opt) {
     body << image_panel("img-image", "Image with fitted components", image->pixels, *image, plot::ColourMap::Grey,
                         plot::auto_stretch(image->pixels), "mJy/beam", 1e3, have_comps ? &ell : nullptr, opt.thumbnail_px);
   if (residual)
-    body << image_panel("img-residual", "Residual (image - background - model)", residual->pixels, *residual,
+    body << image_panel("img-residual", "Residual (image - model)", residual->pixels, *residual,
                         plot::ColourMap::Diverging, plot::auto_stretch(residual->pixels, true), "mJy/beam", 1e3,
                         have_comps ? &ell : nullptr, opt.thumbnail_px);
   if (rms)

@@ -151,6 +151,50 @@ TEST(Outputs, RunRecord) {
 
 // CONVENTIONS "Determinism": byte-identical catalogues and images for any thread
 // count (the run record differs: timings, thread count).
+TEST(Outputs, ResidualIsImageMinusModelWithTheBackgroundKept) {
+  // The documented definition (README, "What skerry extract writes"): residual =
+  // image - model, where the model is the sum of the fitted Gaussians and the
+  // background stays in the residual. A smooth 0.3 mJy/beam background (3 x the
+  // rms) is added to the field so that the two candidate definitions differ.
+  TempDir tmp("residual");
+  const std::string img = write_field(tmp, 21);
+  SkyImage sky = read_sky_image(img);
+  const long n = sky.pixels.cols();
+  for (long y = 0; y < n; ++y)
+    for (long x = 0; x < n; ++x) sky.pixels(y, x) += 3e-4f * (1.0f + 0.2f * std::sin(0.01f * static_cast<float>(x + y)));
+  write_fits_image(img, sky.pixels, sky);
+  const RunResult r = run_skerry({"extract", img, "--out", tmp / "out"}, tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  const SkyImage im = read_sky_image(img);
+  const ImageF res = read_sky_image(tmp / "out/field.residual.fits").pixels;
+  const ImageF mod = read_sky_image(tmp / "out/field.model.fits").pixels;
+  const ImageF bg = read_sky_image(tmp / "out/field.background.fits").pixels;
+  double worst = 0.0, mean_res = 0.0, mean_bg = 0.0, model_sum = 0.0;
+  for (Eigen::Index i = 0; i < im.pixels.size(); ++i) {
+    // float32 image - float32 model, rounded once: exact to half an ulp of the image.
+    worst = std::max(worst, std::fabs(static_cast<double>(res.data()[i]) -
+                                      (static_cast<double>(im.pixels.data()[i]) - mod.data()[i])) /
+                                (std::fabs(static_cast<double>(im.pixels.data()[i])) + 1e-12));
+    mean_res += res.data()[i];
+    mean_bg += bg.data()[i];
+    model_sum += mod.data()[i];
+  }
+  mean_res /= static_cast<double>(im.pixels.size());
+  mean_bg /= static_cast<double>(im.pixels.size());
+  EXPECT_LT(worst, 1e-6);
+  EXPECT_GT(model_sum, 0.0) << "no model: the check above would be trivial";
+  EXPECT_NEAR(mean_res, mean_bg, 0.2 * mean_bg) << "the residual should keep the background";
+  EXPECT_GT(mean_bg, 2.5e-4) << "the background map should hold the added 0.3 mJy/beam";
+
+  // The report, when the input image is gone, rebuilds it as residual + model.
+  fs::remove(img);
+  const RunResult rep = run_skerry({"report", tmp / "out"}, tmp.path());
+  ASSERT_EQ(rep.code, 0) << rep.err;
+  const std::string html = slurp(tmp / "out/field.report.html");
+  EXPECT_NE(html.find("Residual (image - model)"), std::string::npos);
+  EXPECT_NE(html.find("Image with fitted components"), std::string::npos) << "image not rebuilt from residual + model";
+}
+
 TEST(Outputs, IdenticalForAnyThreadCount) {
   TempDir tmp("threads");
   const std::string img = write_field(tmp, 13);
