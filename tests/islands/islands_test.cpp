@@ -202,4 +202,15 @@ TEST(Islands, EdgeCasesGiveNoIslands) {
   bad.grow_snr = 6.0;
   EXPECT_EQ(bad.validate(), "grow_snr = 6 breaks grow_snr <= peak_snr (5)");
   EXPECT_THROW(find_islands(flat, NoiseMaps::constant(30, 20, 0.0f, 1.0f), bad), std::invalid_argument);
+  // Thresholds at or below zero (every pixel above the mean would grow islands).
+  IslandOptions neg;
+  neg.peak_snr = -3.0;
+  neg.grow_snr = -4.0;
+  EXPECT_EQ(neg.validate(), "peak_snr = -3 breaks 0 < peak_snr < infinity");
+  neg.peak_snr = 5.0;
+  EXPECT_EQ(neg.validate(), "grow_snr = -4 breaks 0 < grow_snr < infinity");
+  neg.grow_snr = 0.0;
+  EXPECT_EQ(neg.validate(), "grow_snr = 0 breaks 0 < grow_snr < infinity");
+  neg.peak_threshold = PeakThreshold::fdr;  // the FDR threshold still needs a positive growth threshold
+  EXPECT_EQ(neg.validate(), "grow_snr = 0 breaks 0 < grow_snr < infinity");
 }

@@ -24,12 +24,16 @@ std::string fmt(double v) {
 
 std::string IslandOptions::validate() const {
   if (peak_threshold == PeakThreshold::fixed) {
-    if (!std::isfinite(peak_snr)) return "peak_snr = " + fmt(peak_snr) + " breaks peak_snr finite";
+    if (!(std::isfinite(peak_snr) && peak_snr > 0.0))
+      return "peak_snr = " + fmt(peak_snr) + " breaks 0 < peak_snr < infinity";
     if (!(grow_snr <= peak_snr)) return "grow_snr = " + fmt(grow_snr) + " breaks grow_snr <= peak_snr (" + fmt(peak_snr) + ")";
   } else {
     if (!(fdr_alpha > 0.0 && fdr_alpha < 1.0)) return "fdr_alpha = " + fmt(fdr_alpha) + " breaks 0 < fdr_alpha < 1";
   }
-  if (!std::isfinite(grow_snr)) return "grow_snr = " + fmt(grow_snr) + " breaks grow_snr finite";
+  // A growth threshold at or below zero would join every pixel above the mean
+  // into islands: refused rather than run for hours on one island.
+  if (!(std::isfinite(grow_snr) && grow_snr > 0.0))
+    return "grow_snr = " + fmt(grow_snr) + " breaks 0 < grow_snr < infinity";
   if (min_pixels < 1) return "min_pixels = " + fmt(static_cast<double>(min_pixels)) + " breaks min_pixels >= 1";
   if (strip_rows < 1) return "strip_rows = " + fmt(strip_rows) + " breaks strip_rows >= 1";
   return {};

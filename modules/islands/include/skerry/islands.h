@@ -34,8 +34,8 @@ enum class PeakThreshold {
 };
 
 struct IslandOptions {
-  double peak_snr = 5.0;       ///< seed threshold (PeakThreshold::fixed) [SNR]
-  double grow_snr = 3.0;       ///< growth threshold [SNR]; must be <= peak_snr (fixed)
+  double peak_snr = 5.0;       ///< seed threshold (PeakThreshold::fixed) [SNR]; > 0
+  double grow_snr = 3.0;       ///< growth threshold [SNR]; > 0 and <= peak_snr (fixed)
   PeakThreshold peak_threshold = PeakThreshold::fixed;
   double fdr_alpha = 0.05;     ///< allowed false discovery rate (PeakThreshold::fdr), 0 < alpha < 1
   /// Benjamini & Yekutieli (2001, Ann. Stat. 29, 1165) constant c_N = sum 1/j for
