@@ -222,8 +222,9 @@ class SurveyLog {
   int plain_ = -1, json_ = -1;
 };
 
-/// The merged catalogue's provenance (survey, tool, merge rule, counts, row
-/// order, fingerprint), the same for the in-memory and the on-disk merge.
+/// The merged catalogue's provenance (bands when there are several, survey,
+/// tool, merge rule, counts, row order, fingerprint), the same for the in-memory
+/// and the on-disk merge.
 void set_catalogue_meta(Table& catalogue, const SurveyConfig& cfg, std::size_t n_tiles, const MergeSummary& sum);
 
 /// For a tile's spectra table `spectra` (read from `spectra_path`), the row that

@@ -630,11 +630,6 @@ MergeSummary concatenate_partitions(const SurveyConfig& cfg, const MergePlan& pl
     sum.name_collisions += j->at("name_collisions").get<std::size_t>();
     pj.push_back(*j);
   }
-  if (cfg.bands.size() >= 2 && !plan.tiles.empty()) {  // as merge_tiles: with spectra tables only
-    std::string bl;
-    for (const auto& b : cfg.bands) bl += (bl.empty() ? "" : ",") + b;
-    proto.set_meta("bands", bl);
-  }
   set_catalogue_meta(proto, cfg, plan.tiles.size(), sum);
 
   const std::string cat = catalogue_path(cfg);

@@ -44,6 +44,11 @@ std::string utc_now() {
 std::string json_str(const std::string& s) { return json(s).dump(); }
 
 void set_catalogue_meta(Table& catalogue, const SurveyConfig& cfg, std::size_t n_tiles, const MergeSummary& sum) {
+  if (cfg.bands.size() >= 2 && n_tiles > 0) {  // the catalogue then carries spectra columns
+    std::string bl;
+    for (const auto& b : cfg.bands) bl += (bl.empty() ? "" : ",") + b;
+    catalogue.set_meta("bands", bl);
+  }
   std::ostringstream radius;
   radius.precision(17);
   radius << cfg.merge.match_radius_arcsec;
@@ -506,9 +511,6 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
       }
       out.add(std::move(col));
     }
-    std::string bl;
-    for (const auto& b : cfg.bands) bl += (bl.empty() ? "" : ",") + b;
-    out.set_meta("bands", bl);
   }
   set_catalogue_meta(out, cfg, tiles.size(), sum);
   write_table(out, catalogue_path(cfg));

@@ -25,6 +25,21 @@ void fsync_path(const std::string& path, bool is_folder) {
   ::close(fd);
 }
 
+int write_fully_at(int fd, const char* data, std::size_t len, long long offset) {
+  while (len > 0) {
+    const ssize_t w = ::pwrite(fd, data, len, static_cast<off_t>(offset));
+    if (w < 0) {
+      if (errno == EINTR) continue;
+      return errno;
+    }
+    if (w == 0) return EIO;
+    data += w;
+    len -= static_cast<std::size_t>(w);
+    offset += w;
+  }
+  return 0;
+}
+
 bool is_temporary_name(const std::string& n) {
   return n.size() > 8 && n.front() == '.' && n.ends_with(".partial");
 }
@@ -62,16 +77,9 @@ void write_text_atomic(const std::string& path, const std::string& content) {
   AtomicOutput out(path);
   int fd = ::open(out.temp_path().c_str(), O_WRONLY | O_CREAT | O_TRUNC | O_CLOEXEC, 0644);
   if (fd < 0) throw OutputError(path, std::string("cannot create: ") + std::strerror(errno));
-  std::size_t done = 0;
-  while (done < content.size()) {
-    ssize_t n = ::write(fd, content.data() + done, content.size() - done);
-    if (n < 0) {
-      if (errno == EINTR) continue;
-      int e = errno;
-      ::close(fd);
-      throw OutputError(path, std::string("write failed: ") + std::strerror(e));
-    }
-    done += static_cast<std::size_t>(n);
+  if (const int e = write_fully_at(fd, content.data(), content.size(), 0)) {
+    ::close(fd);
+    throw OutputError(path, std::string("write failed: ") + std::strerror(e));
   }
   if (::fsync(fd) != 0 || ::close(fd) != 0)
     throw OutputError(path, std::string("write failed: ") + std::strerror(errno));

@@ -3,6 +3,7 @@
 /// renamed into place only when complete (fsync of the file, then of the folder),
 /// so a run killed at any moment leaves either the old file or the new one,
 /// never a half-written one. Temporary names start with '.' and end in '.partial'.
+#include <cstddef>
 #include <string>
 
 namespace skerry {
@@ -36,6 +37,10 @@ void write_text_atomic(const std::string& path, const std::string& content);
 /// fsync of a file (`is_folder` false) or of a folder's entries (true); a path
 /// that cannot be opened is skipped (the rename or the next step reports it).
 void fsync_path(const std::string& path, bool is_folder);
+
+/// pwrite of all `len` bytes at `offset`, retried after EINTR and short writes.
+/// Returns 0, or the errno of the failure (EIO for a write of nothing).
+int write_fully_at(int fd, const char* data, std::size_t len, long long offset);
 
 /// True for names this project uses for temporary files.
 bool is_temporary_name(const std::string& file_name);

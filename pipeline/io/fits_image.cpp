@@ -682,20 +682,6 @@ void write_data_unit(const std::string& path, const std::string& temp, std::int6
   // The zero padding (and the whole data unit, until written) comes from extending the file.
   if (::ftruncate(buffered.fd, file_end) != 0) fail("write failed", errno);
 
-  auto put = [](int fd, const char* buf, std::int64_t len, std::int64_t offset) -> int {
-    while (len > 0) {
-      const ssize_t w = ::pwrite(fd, buf, static_cast<std::size_t>(len), offset);
-      if (w < 0) {
-        if (errno == EINTR) continue;
-        return errno;
-      }
-      if (w == 0) return EIO;
-      buf += w;
-      len -= w;
-      offset += w;
-    }
-    return 0;
-  };
   // Big-endian copy of pixels [first, first + count) into dst (4-byte words).
   auto encode = [words](std::int64_t first, std::int64_t count, std::uint32_t* dst) {
     const std::uint32_t* src = words + first;
@@ -723,7 +709,8 @@ void write_data_unit(const std::string& path, const std::string& temp, std::int6
     for (std::int64_t off = lo; off < hi; off += kChunk) {
       const std::int64_t len = std::min(kChunk, hi - off);
       encode((off - data_start) / 4, len / 4, buf.get());
-      if (const int e = put(fd, reinterpret_cast<const char*>(buf.get()), len, off)) return e;
+      if (const int e = write_fully_at(fd, reinterpret_cast<const char*>(buf.get()), static_cast<std::size_t>(len), off))
+        return e;
     }
     return 0;
   };
@@ -738,7 +725,7 @@ void write_data_unit(const std::string& path, const std::string& temp, std::int6
   if (::close(std::exchange(buffered.fd, -1)) != 0) fail("write failed", errno);
 }
 
-void write_image(const std::string& path, int bitpix, int datatype, const void* data, long nx,
+void write_image(const std::string& path, int bitpix, const void* data, long nx,
                  long ny, const SkyImage& like, const std::string* bunit,
                  const std::vector<std::pair<std::string, std::string>>& extra) {
   if (nx < 1 || ny < 1) throw OutputError(path, "image has no pixels");
@@ -787,8 +774,7 @@ void write_image(const std::string& path, int bitpix, int datatype, const void* 
   }
   // CFITSIO writes the header; the data unit is written below (write_data_unit).
   static_assert(sizeof(float) == 4 && sizeof(std::int32_t) == 4);
-  if ((datatype != TFLOAT || bitpix != FLOAT_IMG) && (datatype != TINT || bitpix != LONG_IMG))
-    throw std::logic_error("write_image: only float32 and int32 images");
+  if (bitpix != FLOAT_IMG && bitpix != LONG_IMG) throw std::logic_error("write_image: only float32 and int32 images");
   LONGLONG head_start = 0, data_start = 0, data_end = 0;
   if (fits_flush_file(f, &status)) fail("write failed");
   if (fits_get_hduaddrll(f, &head_start, &data_start, &data_end, &status)) fail("write failed");
@@ -807,14 +793,14 @@ void write_image(const std::string& path, int bitpix, int datatype, const void* 
 void write_fits_image(const std::string& path, const ImageF& pixels, const SkyImage& like,
                       const std::string& bunit,
                       const std::vector<std::pair<std::string, std::string>>& extra_cards) {
-  write_image(path, FLOAT_IMG, TFLOAT, pixels.data(), static_cast<long>(pixels.cols()),
+  write_image(path, FLOAT_IMG, pixels.data(), static_cast<long>(pixels.cols()),
               static_cast<long>(pixels.rows()), like, &bunit, extra_cards);
 }
 
 void write_fits_labels(const std::string& path, const LabelsI32& labels, const SkyImage& like,
                        const std::vector<std::pair<std::string, std::string>>& extra_cards) {
   static_assert(sizeof(int) == sizeof(std::int32_t), "TINT must be 32-bit");
-  write_image(path, LONG_IMG, TINT, labels.data(), static_cast<long>(labels.cols()),
+  write_image(path, LONG_IMG, labels.data(), static_cast<long>(labels.cols()),
               static_cast<long>(labels.rows()), like, nullptr, extra_cards);
 }
 

@@ -24,11 +24,10 @@ namespace {
 
 // FFTW's planner is not thread-safe (FFTW manual, "Thread safety"); execution is.
 // Plans are made and destroyed under the process-wide lock of skerry/fft_lock.h.
-std::mutex& planner_mutex() { return fftw_planner_mutex(); }
 
 struct PlanDeleter {
   void operator()(fftwf_plan_s* p) const {
-    std::lock_guard<std::mutex> lock(planner_mutex());
+    std::lock_guard<std::mutex> lock(fftw_planner_mutex());
     fftwf_destroy_plan(p);
   }
 };
@@ -37,7 +36,7 @@ using Plan = std::unique_ptr<fftwf_plan_s, PlanDeleter>;
 // 1-D in-place complex plan of length n, usable on any array (FFTW_UNALIGNED),
 // ESTIMATE: no timing measurements, so the same plan (and bits) on every run.
 Plan make_plan(int n, int sign) {
-  std::lock_guard<std::mutex> lock(planner_mutex());
+  std::lock_guard<std::mutex> lock(fftw_planner_mutex());
   fftwf_complex* tmp = fftwf_alloc_complex(static_cast<size_t>(n));
   fftwf_plan p = fftwf_plan_dft_1d(n, tmp, tmp, sign, FFTW_ESTIMATE | FFTW_UNALIGNED);
   fftwf_free(tmp);
