@@ -56,7 +56,8 @@ void check_fits_header_text(const std::string& path) {
   if (in.gcount() == 2 && static_cast<unsigned char>(head[0]) == 0x1f && static_cast<unsigned char>(head[1]) == 0x8b)
     return;  // gzip: CFITSIO decompresses it
   auto int_value = [](std::string_view card, long long& out) {
-    std::string_view v = card.substr(10, 20);  // fixed format: value in columns 11-30
+    std::string_view v = card.substr(10);  // the value: column 11 up to a comment
+    if (const auto slash = v.find('/'); slash != std::string_view::npos) v = v.substr(0, slash);
     while (!v.empty() && v.front() == ' ') v.remove_prefix(1);
     while (!v.empty() && v.back() == ' ') v.remove_suffix(1);
     if (!v.empty() && v.front() == '+') v.remove_prefix(1);
@@ -68,7 +69,8 @@ void check_fits_header_text(const std::string& path) {
   for (int hdu = 1; hdu <= 10000 && offset < size; ++hdu) {
     long long bitpix = 0, naxis = -1, pcount = 0, gcount = 1;
     std::vector<long long> naxes;
-    bool groups = false, end = false, readable = true;
+    bool groups = false, end = false;
+    std::string unreadable;  // the first structural card whose value is not a valid integer
     for (std::uint64_t card_no = 0; !end;) {
       in.seekg(static_cast<std::streamoff>(offset));
       in.read(block.data(), 2880);
@@ -111,16 +113,16 @@ void check_fits_header_text(const std::string& path) {
         }
         long long v = 0;
         if (key == "BITPIX  ") {
-          readable &= int_value(card, bitpix);
+          if (!(int_value(card, bitpix)) && unreadable.empty()) unreadable = where();
         } else if (key == "NAXIS   ") {
-          readable &= int_value(card, naxis) && naxis >= 0 && naxis <= 999;
+          if (!(int_value(card, naxis) && naxis >= 0 && naxis <= 999) && unreadable.empty()) unreadable = where();
         } else if (key.substr(0, 5) == "NAXIS") {
-          readable &= int_value(card, v) && v >= 0;
+          if (!(int_value(card, v) && v >= 0) && unreadable.empty()) unreadable = where();
           naxes.push_back(v);
         } else if (key == "PCOUNT  ") {
-          readable &= int_value(card, pcount) && pcount >= 0;
+          if (!(int_value(card, pcount) && pcount >= 0) && unreadable.empty()) unreadable = where();
         } else if (key == "GCOUNT  ") {
-          readable &= int_value(card, gcount) && gcount >= 0;
+          if (!(int_value(card, gcount) && gcount >= 0) && unreadable.empty()) unreadable = where();
         } else if (key == "GROUPS  ") {
           groups = card.substr(10, 20).find('T') != std::string_view::npos;
         }
@@ -128,7 +130,15 @@ void check_fits_header_text(const std::string& path) {
     }
     // Data size, FITS Standard 4.0 eq. 2: |BITPIX| x GCOUNT x (PCOUNT + NAXIS1 x
     // ... x NAXISm) bits, NAXIS1 left out of the product for random groups.
-    if (!readable || naxis < 0 || bitpix == 0 || static_cast<long long>(naxes.size()) != naxis) return;
+    // Mandatory structural keywords are integers (FITS Standard 4.0 sec. 4.4.1).
+    // A header whose structure cannot be read is refused here: CFITSIO would go on
+    // to parse what follows it (fuzzing found a CFITSIO buffer overflow in a
+    // binary-table header reached past an unreadable NAXIS).
+    if (!unreadable.empty())
+      throw InputError(path, unreadable + " has no valid non-negative integer value (FITS Standard 4.0 sec. 4.4.1)");
+    if (naxis < 0 || bitpix == 0 || static_cast<long long>(naxes.size()) != naxis)
+      throw InputError(path, "HDU " + std::to_string(hdu) +
+                                 " lacks BITPIX, NAXIS or one of its NAXISn cards (FITS Standard 4.0 sec. 4.4.1)");
     long double bits = 0;
     if (naxis > 0) {
       long double prod = 1;
