@@ -7,10 +7,11 @@
 #
 # Needs root and Debian's slurm-wlm and munge. No systemd: munged (as the munge
 # user), slurmctld (SlurmUser=slurm) and slurmd are started as background
-# daemons with a minimal configuration in $SKERRY_SLURM_DIR (default
-# /tmp/skerry-slurm), and stopped by the PIDs recorded there: only the daemons
-# this script started are stopped. Nothing under /etc is changed; commands find
-# the configuration through SLURM_CONF.
+# daemons with a minimal configuration and state in $SKERRY_SLURM_DIR (default
+# /tmp/skerry-slurm), on TCP ports free at start, and stopped by the PIDs
+# recorded there: only the daemons this script started are stopped, and a record
+# whose daemons are all gone is treated as stale. Nothing under /etc is changed;
+# commands find the configuration through SLURM_CONF.
 #
 # Configuration notes (Slurm 22.05): proctrack/linuxproc and task/none need no
 # cgroups, but slurmd loads a cgroup plugin anyway and its auto-detection fails
@@ -31,6 +32,10 @@ wait_gone() {  # pid, seconds
   ! kill -0 "$pid" 2>/dev/null
 }
 
+free_port() {  # a TCP port on 127.0.0.1 that nothing listens on now
+  python3 -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])'
+}
+
 read_pid() {  # file, seconds to wait for it
   local f=$1 n=$(( $2 * 10 ))
   while [ ! -s "$f" ] && [ $n -gt 0 ]; do sleep 0.1; n=$((n - 1)); done
@@ -40,8 +45,15 @@ read_pid() {  # file, seconds to wait for it
 start() {
   [ "$(id -u)" -eq 0 ] || die "must run as root"
   for c in munged slurmctld slurmd sinfo; do command -v $c >/dev/null || die "$c not found (apt-get install slurm-wlm munge)"; done
-  if [ -s "$PIDS" ]; then die "already started (see $PIDS); run '$0 stop' first"; fi
-  mkdir -p "$DIR/slurmd"
+  if [ -s "$PIDS" ]; then
+    # A record whose daemons are all gone (a machine reset, a killed run) is stale.
+    local alive=0
+    while read -r _ pid _; do kill -0 "$pid" 2>/dev/null && alive=1; done < "$PIDS"
+    [ $alive -eq 0 ] || die "already started (see $PIDS); run '$0 stop' first"
+    echo "slurm-cluster: removing a stale record of daemons no longer running ($PIDS)" >&2
+    rm -f "$PIDS"
+  fi
+  mkdir -p "$DIR/slurmd" "$DIR/state"
   : > "$PIDS"
 
   # munge: the key comes with the package; the socket folder belongs to munge.
@@ -55,8 +67,12 @@ start() {
   fi
   munge -n | unmunge >/dev/null || die "munge does not work"
 
-  install -d -o slurm -g slurm -m 0755 /var/spool/slurmctld
-  chown slurm:slurm "$DIR"
+  chown slurm:slurm "$DIR" "$DIR/state"
+  # Ports free now, so that a cluster already running on this machine (another
+  # CI run, another folder) does not collide with this one.
+  local ctld_port slurmd_port
+  ctld_port=$(free_port) && slurmd_port=$(free_port) || die "no free TCP port found"
+  [ "$ctld_port" != "$slurmd_port" ] || slurmd_port=$(free_port)
   local node host
   node=$(slurmd -C | head -n 1)
   host=$(echo "$node" | sed -n 's/^NodeName=\([^ ]*\).*/\1/p')
@@ -65,9 +81,11 @@ start() {
 # One-node test cluster (tests/cluster/slurm-cluster.sh).
 ClusterName=skerrytest
 SlurmctldHost=localhost(127.0.0.1)
+SlurmctldPort=$ctld_port
+SlurmdPort=$slurmd_port
 SlurmUser=slurm
 AuthType=auth/munge
-StateSaveLocation=/var/spool/slurmctld
+StateSaveLocation=$DIR/state
 SlurmdSpoolDir=$DIR/slurmd
 SlurmctldPidFile=$DIR/slurmctld.pid
 SlurmdPidFile=$DIR/slurmd.pid
