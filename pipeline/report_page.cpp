@@ -370,7 +370,14 @@ ReportResult write_report(const ReportOptions& opt) {
 
   // ---- source counts
   section("counts", "Source counts");
-  std::vector<double> count_flux = have_sources ? column(sources, "s_int_jy") : s_int;
+  // Counting rule (modules/quality, count_flux_jy): an unresolved component counts by its
+  // peak, a resolved one by S_int, a source by the sum over its components. A catalogue
+  // without the resolved column (not written by extract) counts by S_int.
+  const bool have_rule = comps.find("resolved") != nullptr;
+  const std::vector<double> comp_count_flux = have_rule ? count_flux_jy(s_peak, s_int, resolved) : s_int;
+  const bool by_source = have_sources && comps.find("source_id") && sources.find("source_id");
+  const std::vector<double> count_flux =
+      by_source ? sum_by_group(comp_count_flux, column(comps, "source_id"), column(sources, "source_id")) : comp_count_flux;
   std::size_t n_counted = 0;
   for (double s : count_flux) if (std::isfinite(s) && s > 0) ++n_counted;
   if (n_counted == 0) {
@@ -393,16 +400,19 @@ ReportResult write_report(const ReportOptions& opt) {
     Plot p;
     p.id = "plot-counts";
     p.title = "Euclidean-normalised differential counts";
-    p.x_label = "S_int at bin centre [mJy]";
+    p.x_label = "S at bin centre [mJy]";
     p.y_label = "S^2.5 dN/dS [Jy^1.5 sr^-1]";
     p.x_log = p.y_log = true;
     p.series.push_back(pts);
     body << "<div class=\"row\">"
          << figure(plot::render_svg(p),
-                   "Counts of " + std::string(have_sources ? "sources" : "components") +
+                   "Counts of " + std::string(by_source ? "sources" : "components") +
+                       std::string(have_rule ? (by_source ? " by the sum over each source's components of S_peak (unresolved) or S_int (resolved)"
+                                                          : " by S_peak (unresolved) or S_int (resolved)")
+                                             : " by S_int") +
                        " in logarithmic bins (" + std::to_string(co.bins_per_decade) +
                        " per decade), each divided by the visibility area at S/" + fmt("%.3g", k_sigma) +
-                       "; bin centres are geometric means of the edges; errors are 1σ Poisson limits after Gehrels (1986, ApJ 303, 336, eqs. 7 and 11).")
+                       "; bin centres are geometric means of the edges; errors are 1σ Poisson limits after Gehrels (1986, ApJ 303, 336, eqs. 7 and 12). For a point source S_int = S_peak, and the peak's error is √3 times smaller (Condon 1997, PASP 109, 166); counting faint point sources by S_int would lift more of them into brighter bins (Eddington bias). Near the threshold the S_int/S_peak test still calls some point sources resolved, so the faintest bins can lie above the true counts (by about 20 % at 10–30σ in a simulated field of point sources).")
          << "<table class=\"data\" id=\"counts-table\"><tr><th>S lo [Jy]</th><th>S hi [Jy]</th><th>centre [Jy]</th><th>N</th><th>area [sr]</th><th>S^2.5 dN/dS</th><th>−1σ</th><th>+1σ</th></tr>\n";
     for (const auto& b : bins)
       body << "<tr><td>" << fmt("%.6e", b.lo_jy) << "</td><td>" << fmt("%.6e", b.hi_jy) << "</td><td>" << fmt("%.6e", b.centre_jy)

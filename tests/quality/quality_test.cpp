@@ -3,6 +3,8 @@
 #include <gtest/gtest.h>
 
 #include <cmath>
+#include <limits>
+#include <stdexcept>
 #include <random>
 
 #include "skerry/quality.h"
@@ -70,6 +72,32 @@ TEST(Counts, PowerLawRecovered) {
     const double expect_n = k * A / 1.5 * (std::pow(bin.lo_jy, -1.5) - std::pow(bin.hi_jy, -1.5));
     EXPECT_NEAR(static_cast<double>(bin.n), expect_n, 3 * std::sqrt(expect_n));
   }
+}
+
+// The counting rule (quality.h): the peak for an unresolved component (S_int = S_peak
+// by the definition of Jy/beam for a point source, common practice), S_int for a
+// resolved one; a source counts by the sum over its components.
+TEST(Counts, CountFluxTakesPeakForUnresolvedAndSumsPerSource) {
+  const double nan = std::numeric_limits<double>::quiet_NaN();
+  const std::vector<double> peak{1e-3, 2e-3, 3e-3, nan, 5e-3};
+  const std::vector<double> sint{1.2e-3, 4e-3, 3.1e-3, 7e-3, 6e-3};
+  const std::vector<double> resolved{0, 1, 0, 0, nan};
+  const auto f = count_flux_jy(peak, sint, resolved);
+  ASSERT_EQ(f.size(), 5u);
+  EXPECT_EQ(f[0], 1e-3);
+  EXPECT_EQ(f[1], 4e-3);
+  EXPECT_EQ(f[2], 3e-3);
+  EXPECT_TRUE(std::isnan(f[3]));  // unresolved without a peak
+  EXPECT_TRUE(std::isnan(f[4]));  // no decision
+  // Sources 7 (components 0, 1), 9 (component 2), 8 (component 3: NaN), 4 (none).
+  const auto s = sum_by_group(f, {7, 7, 9, 8, 11}, {7, 8, 9, 4});
+  ASSERT_EQ(s.size(), 4u);
+  EXPECT_DOUBLE_EQ(s[0], 5e-3);
+  EXPECT_TRUE(std::isnan(s[1]));
+  EXPECT_EQ(s[2], 3e-3);
+  EXPECT_TRUE(std::isnan(s[3]));
+  EXPECT_THROW(count_flux_jy(peak, sint, {0, 1}), std::invalid_argument);
+  EXPECT_THROW(sum_by_group(f, {1, 2}, {1}), std::invalid_argument);
 }
 
 TEST(VisibilityArea, MatchesPixelCount) {

@@ -36,6 +36,38 @@ std::vector<double> log_bin_edges(const std::vector<double>& values, int bins_pe
   return e;
 }
 
+std::vector<double> count_flux_jy(const std::vector<double>& s_peak_jy_per_beam, const std::vector<double>& s_int_jy,
+                                  const std::vector<double>& resolved) {
+  if (s_peak_jy_per_beam.size() != s_int_jy.size() || s_int_jy.size() != resolved.size())
+    throw std::invalid_argument("count_flux_jy: peak, integrated and resolved columns differ in length");
+  std::vector<double> out(resolved.size(), kNaN);
+  for (std::size_t i = 0; i < resolved.size(); ++i) {
+    if (!std::isfinite(resolved[i])) continue;
+    const double s = resolved[i] != 0 ? s_int_jy[i] : s_peak_jy_per_beam[i];
+    if (std::isfinite(s)) out[i] = s;
+  }
+  return out;
+}
+
+std::vector<double> sum_by_group(const std::vector<double>& value, const std::vector<double>& member_group,
+                                 const std::vector<double>& group_id) {
+  if (value.size() != member_group.size())
+    throw std::invalid_argument("sum_by_group: values and their group ids differ in length");
+  std::unordered_map<double, std::size_t> slot;
+  for (std::size_t g = 0; g < group_id.size(); ++g) slot.emplace(group_id[g], g);
+  std::vector<double> sum(group_id.size(), 0.0);
+  std::vector<char> seen(group_id.size(), 0);
+  for (std::size_t i = 0; i < value.size(); ++i) {
+    const auto it = slot.find(member_group[i]);
+    if (it == slot.end()) continue;
+    sum[it->second] += value[i];  // a NaN member makes the group NaN
+    seen[it->second] = 1;
+  }
+  for (std::size_t g = 0; g < sum.size(); ++g)
+    if (!seen[g] || !std::isfinite(sum[g])) sum[g] = kNaN;
+  return sum;
+}
+
 std::vector<CountsBin> euclidean_counts(const std::vector<double>& flux_jy, const CountsOptions& options,
                                         const std::function<double(double)>& area_sr_of_flux) {
   std::vector<double> edges = options.edges_jy.empty() ? log_bin_edges(flux_jy, options.bins_per_decade)

@@ -46,6 +46,27 @@ std::vector<CountsBin> euclidean_counts(const std::vector<double>& flux_jy,
                                         const CountsOptions& options,
                                         const std::function<double(double)>& area_sr_of_flux);
 
+/// The flux density [Jy] by which a component is counted: its fitted peak
+/// [Jy/beam] when it is unresolved, its integrated flux density when resolved.
+/// For a point source the two are equal by the definition of Jy/beam (common
+/// practice), and the peak is the better measured: sigma(S_int) = sqrt(3)
+/// sigma(S_peak) for a point source (Condon 1997, PASP 109, 166, eqs. 41-42: for
+/// theta_M = theta_m = theta_N the three rho^2 are equal, so sigma_A = sigma and
+/// sigma_S = sqrt(3) sigma). Counting faint point sources
+/// by S_int spreads them over wider bins of noise and, with steep counts, lifts
+/// more faint sources into a bin than it takes out (Eddington bias). Per entry:
+/// resolved[i] != 0 takes s_int_jy[i]; otherwise s_peak_jy_per_beam[i]; NaN where
+/// the chosen value or the resolved flag is not finite. Sizes must agree.
+std::vector<double> count_flux_jy(const std::vector<double>& s_peak_jy_per_beam, const std::vector<double>& s_int_jy,
+                                  const std::vector<double>& resolved);
+
+/// Per group: the sum of `value` over the entries whose `member_group` equals
+/// the group's id (e.g. a source's flux density from its components). Groups
+/// with no member, or with a non-finite member value, get NaN. Sizes of value
+/// and member_group must agree.
+std::vector<double> sum_by_group(const std::vector<double>& value, const std::vector<double>& member_group,
+                                 const std::vector<double>& group_id);
+
 /// Bin edges used when options.edges_jy is empty (log bins over the data).
 std::vector<double> log_bin_edges(const std::vector<double>& values, int bins_per_decade);
 
