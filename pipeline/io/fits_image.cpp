@@ -74,7 +74,15 @@ void check_fits_header_text(const std::string& path) {
     for (std::uint64_t card_no = 0; !end;) {
       in.seekg(static_cast<std::streamoff>(offset));
       in.read(block.data(), 2880);
-      if (in.gcount() != 2880) return;  // truncated header: CFITSIO reports it
+      if (in.gcount() != 2880) {
+        // A header is a whole number of 2880-byte blocks ending in END (FITS Standard
+        // 4.0 sec. 3.3.1). Past the first HDU, CFITSIO reports it for the HDU read.
+        if (hdu == 1)
+          throw InputError(path, "is truncated: the file (" + std::to_string(size) +
+                                     " bytes) ends inside the primary header, before its END card"
+                                     " (FITS Standard 4.0 sec. 3.3.1: whole 2880-byte header blocks)");
+        return;
+      }
       offset += 2880;
       for (int c = 0; c < 36; ++c) {
         const std::string_view card(block.data() + 80 * c, 80);
