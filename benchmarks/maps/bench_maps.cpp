@@ -26,7 +26,7 @@
 #include <string>
 #include <vector>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/fits_image.h"
 #include "io/wcs.h"
 #include "skerry/background.h"

@@ -41,10 +41,10 @@
 #include <nlohmann/json.hpp>
 
 #include "io/table_io.h"
-#include "options.h"
-#include "run_record.h"
+#include "app/options.h"
+#include "app/run_record.h"
 #include "skerry/survey.h"
-#include "survey_engine.h"
+#include "survey/engine.h"
 
 namespace fs = std::filesystem;
 using namespace skerry::survey;

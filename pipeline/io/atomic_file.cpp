@@ -8,7 +8,7 @@
 #include <cstring>
 #include <filesystem>
 
-#include "errors.h"
+#include "app/errors.h"
 
 namespace skerry {
 

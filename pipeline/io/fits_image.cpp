@@ -30,7 +30,7 @@
 #include <string_view>
 #include <utility>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
 #include "io/header_text.h"
 #include "io/wcs.h"

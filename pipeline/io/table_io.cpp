@@ -30,7 +30,7 @@
 #include <string>
 #include <vector>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
 #include "io/fits_image.h"
 #include "skerry/table_text.h"

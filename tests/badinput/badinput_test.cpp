@@ -1,7 +1,7 @@
 // The README's bad-input table: one test per row. Each test makes its bad input
 // (FITS through CFITSIO, catalogues and configurations as text), runs the real
 // `skerry` binary in a child process, and checks the documented exit code
-// (pipeline/errors.h), that stderr is exactly one line naming the file (or the
+// (pipeline/app/errors.h), that stderr is exactly one line naming the file (or the
 // option) and what is wrong, and that nothing is left in the output folder --
 // no output and no temporary *.partial (pipeline/io/atomic_file.h). Inputs that
 // are usable must give a catalogue (with the flag set where one applies).
@@ -27,7 +27,7 @@
 #include <string>
 #include <vector>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/table_io.h"
 #include "skerry/table.h"
 

@@ -1,11 +1,11 @@
 // Bad input: each case gets a clear one-line message naming the file (or the
-// option) and the documented exit code (pipeline/errors.h: 2 usage, 3 bad input,
+// option) and the documented exit code (pipeline/app/errors.h: 2 usage, 3 bad input,
 // 8 no usable data), and no output file -- or, where the input is usable, flags.
 #include <gtest/gtest.h>
 
 #include <algorithm>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "extract_helpers.h"
 #include "skerry/catalogue.h"
 

@@ -8,7 +8,7 @@
 #include <random>
 #include <set>
 
-#include "catalogue.h"
+#include "extract/catalogue_tables.h"
 #include "skerry/catalogue.h"
 #include "skerry/constants.h"
 #include "skerry/gaussian.h"

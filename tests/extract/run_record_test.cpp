@@ -4,8 +4,8 @@
 #include <nlohmann/json.hpp>
 
 #include "extract_helpers.h"
-#include "errors.h"
-#include "run_record.h"
+#include "app/errors.h"
+#include "app/run_record.h"
 
 namespace skerry::test {
 namespace {

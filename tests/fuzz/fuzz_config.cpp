@@ -3,9 +3,9 @@
 // Expected outcomes: parsed options, or a UsageError / InputError naming the problem.
 #include <cstdint>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "fuzz_util.h"
-#include "options.h"
+#include "app/options.h"
 
 extern "C" int LLVMFuzzerTestOneInput(const std::uint8_t* data, std::size_t size) {
   skerry::fuzz::TempInput in(data, size, ".ini");

@@ -3,7 +3,7 @@
 // Anything else (a crash, a sanitizer report, another exception type) is a bug.
 #include <cstdint>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "fuzz_util.h"
 #include "io/fits_image.h"
 

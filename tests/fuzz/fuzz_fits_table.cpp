@@ -2,7 +2,7 @@
 // table, or an InputError naming the file.
 #include <cstdint>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "fuzz_util.h"
 #include "io/table_io.h"
 

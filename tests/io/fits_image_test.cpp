@@ -19,7 +19,7 @@
 #include <thread>
 #include <vector>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
 #include "io/fits_image.h"
 #include "io/wcs.h"

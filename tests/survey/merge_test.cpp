@@ -245,7 +245,7 @@ TEST(MergeOptionsValidate, NamesTheOption) {
   }
 }
 
-// The scatter's shortcut (one disc query per cell, survey_merge.cpp) gives the
+// The scatter's shortcut (one disc query per cell, pipeline/survey/merge.cpp) gives the
 // same partitions as partitions_of for every component, and the home partition
 // is the sort key's prefix (a NESTED pixel at order k is the order-29 index
 // shifted right by 2 (29 - k) bits: Gorski et al. 2005, REF-HEALPIX-01) and is

@@ -1,5 +1,5 @@
 // The on-disk merge of `skerry survey` (scatter -> partition merge ->
-// concatenation, survey_merge.cpp) end to end on the small simulated survey:
+// concatenation, pipeline/survey/merge.cpp) end to end on the small simulated survey:
 // byte-identical to the in-memory merge in every catalogue format, independent
 // of the worker count, complete after kill -9 between its steps, and a failed
 // partition is reported and retried. The tiles of each test are processed once;

@@ -11,7 +11,7 @@
 #include <fstream>
 #include <sstream>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/table_io.h"
 #include "skerry/table_text.h"
 

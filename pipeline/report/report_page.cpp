@@ -1,6 +1,6 @@
 // The run report page (report_page.h). Everything drawn here is computed from
 // the run folder's own files; formulas live in modules/quality and modules/plot.
-#include "report_page.h"
+#include "report/report_page.h"
 
 #include <Eigen/Eigenvalues>
 #include <algorithm>
@@ -13,7 +13,7 @@
 #include <nlohmann/json.hpp>
 #include <sstream>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
 #include "io/fits_image.h"
 #include "io/table_io.h"
@@ -22,7 +22,7 @@
 #include "skerry/plot.h"
 #include "skerry/quality.h"
 #include "skerry/sky.h"
-#include "version.h"
+#include "app/version.h"
 
 namespace skerry {
 namespace {

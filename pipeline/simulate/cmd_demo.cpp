@@ -20,10 +20,10 @@
 #include <string>
 #include <vector>
 
-#include "command.h"
-#include "errors.h"
+#include "app/command.h"
+#include "app/errors.h"
 #include "io/table_io.h"
-#include "options.h"
+#include "app/options.h"
 #include "skerry/constants.h"
 #include "skerry/sky.h"
 

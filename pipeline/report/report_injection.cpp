@@ -1,5 +1,5 @@
 // Completeness by injection, reliability from the negated image (report_injection.h).
-#include "report_injection.h"
+#include "report/report_injection.h"
 
 #include <spawn.h>
 #include <sys/wait.h>
@@ -18,11 +18,11 @@
 #include <random>
 #include <sstream>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
 #include "io/fits_image.h"
 #include "io/table_io.h"
-#include "progress.h"
+#include "app/progress.h"
 #include "skerry/gaussian.h"
 #include "skerry/plot.h"
 #include "skerry/sky.h"

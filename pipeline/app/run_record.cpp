@@ -1,5 +1,5 @@
 // The JSON run record and a small SHA-256 (FIPS PUB 180-4, Secure Hash Standard).
-#include "run_record.h"
+#include "app/run_record.h"
 
 #include <immintrin.h>
 #include <unistd.h>
@@ -12,9 +12,9 @@
 #include <fstream>
 #include <nlohmann/json.hpp>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
-#include "version.h"
+#include "app/version.h"
 
 namespace skerry {
 

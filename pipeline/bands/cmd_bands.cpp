@@ -68,12 +68,12 @@
 #include <string>
 #include <vector>
 
-#include "command.h"
-#include "errors.h"
+#include "app/command.h"
+#include "app/errors.h"
 #include "io/fits_image.h"
 #include "io/table_io.h"
-#include "options.h"
-#include "run_record.h"
+#include "app/options.h"
+#include "app/run_record.h"
 #include "skerry/background.h"
 #include "skerry/catalogue.h"
 #include "skerry/constants.h"

@@ -8,11 +8,11 @@
 #include <set>
 #include <sstream>
 
-#include "errors.h"
-#include "options.h"
-#include "run_record.h"
-#include "survey_engine.h"
-#include "version.h"
+#include "app/errors.h"
+#include "app/options.h"
+#include "app/run_record.h"
+#include "survey/engine.h"
+#include "app/version.h"
 
 namespace skerry::surveyrun {
 

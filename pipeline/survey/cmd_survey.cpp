@@ -1,5 +1,5 @@
 // `skerry survey CONFIG`: unattended, incremental reduction of a survey's tiles
-// and the merged survey catalogue. See survey_engine.h for the files it keeps.
+// and the merged survey catalogue. See pipeline/survey/engine.h for the files it keeps.
 //
 // Exit codes (errors.h): 0 work done, 5 nothing to do, 6 some tiles failed
 // (the others were processed and merged; the failed ones are retried on the next
@@ -20,13 +20,13 @@
 #include <sstream>
 #include <thread>
 
-#include "command.h"
-#include "errors.h"
+#include "app/command.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
-#include "options.h"
-#include "progress.h"
-#include "run_record.h"
-#include "survey_engine.h"
+#include "app/options.h"
+#include "app/progress.h"
+#include "app/run_record.h"
+#include "survey/engine.h"
 
 namespace skerry {
 

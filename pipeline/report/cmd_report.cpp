@@ -5,10 +5,10 @@
 // 2 bad options; 4 the page could not be written.
 #include <iostream>
 
-#include "command.h"
-#include "errors.h"
-#include "options.h"
-#include "report_page.h"
+#include "app/command.h"
+#include "app/errors.h"
+#include "app/options.h"
+#include "report/report_page.h"
 
 namespace skerry {
 namespace {

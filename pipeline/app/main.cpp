@@ -7,10 +7,10 @@
 #include <string>
 #include <vector>
 
-#include "command.h"
-#include "errors.h"
+#include "app/command.h"
+#include "app/errors.h"
 #include "io/fits_image.h"
-#include "version.h"
+#include "app/version.h"
 
 namespace {
 void usage(std::ostream& os) {

@@ -1,4 +1,4 @@
-#include "command.h"
+#include "app/command.h"
 
 namespace skerry {
 std::vector<CommandInfo>& command_registry() {

@@ -23,9 +23,9 @@
 #include <sstream>
 #include <thread>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
-#include "survey_engine.h"
+#include "survey/engine.h"
 
 namespace skerry::surveyrun {
 

@@ -34,23 +34,23 @@
 #include <iostream>
 #include <sstream>
 
-#include "catalogue.h"
-#include "command.h"
-#include "errors.h"
+#include "extract/catalogue_tables.h"
+#include "app/command.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
 #include "io/fits_image.h"
 #include "io/table_io.h"
 #include "io/wcs.h"
-#include "options.h"
-#include "progress.h"
-#include "run_record.h"
+#include "app/options.h"
+#include "app/progress.h"
+#include "app/run_record.h"
 #include "skerry/background.h"
 #include "skerry/catalogue.h"
 #include "skerry/constants.h"
 #include "skerry/fitting.h"
 #include "skerry/gaussian.h"
 #include "skerry/islands.h"
-#include "version.h"
+#include "app/version.h"
 
 namespace skerry {
 namespace {

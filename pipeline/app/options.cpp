@@ -1,4 +1,4 @@
-#include "options.h"
+#include "app/options.h"
 
 #include <oneapi/tbb/global_control.h>
 #include <oneapi/tbb/info.h>
@@ -8,7 +8,7 @@
 #include <iostream>
 #include <sstream>
 
-#include "errors.h"
+#include "app/errors.h"
 
 namespace skerry {
 

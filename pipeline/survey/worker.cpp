@@ -20,12 +20,12 @@
 #include <fstream>
 #include <sstream>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
 #include "io/fits_image.h"
 #include "io/table_io.h"
-#include "run_record.h"
-#include "survey_engine.h"
+#include "app/run_record.h"
+#include "survey/engine.h"
 
 namespace skerry::surveyrun {
 

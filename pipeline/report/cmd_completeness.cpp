@@ -2,10 +2,10 @@
 // from the negated image (report_injection.h). Exit codes: errors.h.
 #include <iostream>
 
-#include "command.h"
-#include "errors.h"
-#include "options.h"
-#include "report_injection.h"
+#include "app/command.h"
+#include "app/errors.h"
+#include "app/options.h"
+#include "report/report_injection.h"
 
 namespace skerry {
 namespace {

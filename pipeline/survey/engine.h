@@ -153,7 +153,7 @@ struct MergeSummary {
 /// order. Throws InputError / OutputError.
 MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& tiles);
 
-// ---- On-disk merge (survey_merge.cpp): scatter, partition merge, concatenation
+// ---- On-disk merge (pipeline/survey/merge.cpp): scatter, partition merge, concatenation
 //
 // The survey never sits in one process's memory: (a) scatter cuts each tile's
 // rows by HEALPix partition (home pixel plus the pixels whose margin holds the

@@ -1,6 +1,6 @@
 // `skerry survey`: the on-disk merge. Scatter (per tile), partition merge (per
 // HEALPix partition), concatenation (partitions in pixel order). See
-// survey_engine.h for the layout and the guarantees.
+// pipeline/survey/engine.h for the layout and the guarantees.
 //
 // Intermediate format: a small documented binary table (".stab", below), not
 // FITS or CSV. The intermediates must carry every cell bit for bit, because the
@@ -43,12 +43,12 @@
 #include <sstream>
 #include <unordered_map>
 
-#include "errors.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
 #include "io/table_io.h"
-#include "run_record.h"
+#include "app/run_record.h"
 #include "skerry/table_text.h"
-#include "survey_engine.h"
+#include "survey/engine.h"
 
 namespace skerry::surveyrun {
 

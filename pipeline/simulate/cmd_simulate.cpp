@@ -20,12 +20,12 @@
 #include <string>
 #include <vector>
 
-#include "command.h"
-#include "errors.h"
+#include "app/command.h"
+#include "app/errors.h"
 #include "io/fits_image.h"
 #include "io/table_io.h"
 #include "io/wcs.h"
-#include "options.h"
+#include "app/options.h"
 #include "skerry/constants.h"
 #include "skerry/simulate.h"
 

@@ -23,15 +23,15 @@
 #include <string>
 #include <vector>
 
-#include "command.h"
-#include "errors.h"
+#include "app/command.h"
+#include "app/errors.h"
 #include "io/atomic_file.h"
 #include "io/table_io.h"
-#include "options.h"
-#include "run_record.h"
+#include "app/options.h"
+#include "app/run_record.h"
 #include "skerry/crossmatch.h"
 #include "skerry/table.h"
-#include "version.h"
+#include "app/version.h"
 
 namespace skerry {
 

@@ -1,8 +1,8 @@
 // `skerry survey`: the SQLite state record (controller only).
 #include <sqlite3.h>
 
-#include "errors.h"
-#include "survey_engine.h"
+#include "app/errors.h"
+#include "survey/engine.h"
 
 namespace skerry::surveyrun {
 

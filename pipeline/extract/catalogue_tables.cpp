@@ -1,6 +1,6 @@
 // Component, island and source tables: column names, units, UCD1+ words and
 // descriptions (IVOA UCD1+ controlled vocabulary 1.6, REF-VO-02).
-#include "catalogue.h"
+#include "extract/catalogue_tables.h"
 
 #include <algorithm>
 #include <cmath>
