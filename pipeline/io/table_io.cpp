@@ -451,17 +451,35 @@ Table read_fits_table(const std::string& path) {
 TableFormat table_format_from_name(const std::string& path) {
   std::string p = lower_ending(path);
   if (ends_with(p, ".csv")) return TableFormat::Csv;
+  if (ends_with(p, ".ecsv")) return TableFormat::Ecsv;
   if (ends_with(p, ".fits") || ends_with(p, ".fit") || ends_with(p, ".fts")) return TableFormat::Fits;
   if (ends_with(p, ".vot") || ends_with(p, ".xml") || ends_with(p, ".votable")) return TableFormat::VOTable;
-  throw UsageError(path + ": unknown table format (expected a name ending in .csv, .fits, .fit, .vot or .xml)");
+  throw UsageError(path + ": unknown table format (expected a name ending in .csv, .ecsv, .fits, .fit, .vot or .xml)");
 }
 
-Table read_table(const std::string& path) {
+Table read_table(const std::string& path_with_selection) {
+  // "FILE[SEL]" chooses one TABLE of a VOTable (SEL: 0-based index or name),
+  // when FILE itself is not a file of that whole name.
+  std::string path = path_with_selection, selection;
+  if (!path.empty() && path.back() == ']' && !std::filesystem::exists(path)) {
+    const std::size_t open = path.rfind('[');
+    if (open != std::string::npos && open > 0) {
+      selection = path.substr(open + 1, path.size() - open - 2);
+      path.resize(open);
+    }
+  }
   const TableFormat fmt = table_format_from_name(path);
+  if (!selection.empty() && fmt != TableFormat::VOTable)
+    throw UsageError(path_with_selection + ": a table selection [" + selection +
+                     "] applies to VOTable files (several TABLEs); this file holds one table");
   if (fmt == TableFormat::Fits) return read_fits_table(path);
   std::string text = read_file(path);
   try {
-    Table t = fmt == TableFormat::Csv ? parse_csv(text) : parse_votable(text);
+    VotableReadOptions vo;
+    vo.table = selection;
+    Table t = fmt == TableFormat::Csv    ? parse_csv(text)
+              : fmt == TableFormat::Ecsv ? parse_ecsv(text)
+                                         : parse_votable(text, vo);
     if (t.name.empty()) {
       std::string base = path.substr(path.find_last_of('/') == std::string::npos ? 0 : path.find_last_of('/') + 1);
       t.name = base.substr(0, base.find('.'));
@@ -477,6 +495,7 @@ void write_table(const Table& table, const std::string& path) {
   switch (fmt) {
     case TableFormat::Csv: write_text_atomic(path, format_csv(table)); break;
     case TableFormat::VOTable: write_text_atomic(path, format_votable(table)); break;
+    case TableFormat::Ecsv: throw UsageError(path + ": ECSV is read, not written (write .csv, .fits or .vot)");
     case TableFormat::Fits: write_fits_table(table, path); break;
   }
 }

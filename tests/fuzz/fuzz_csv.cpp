@@ -1,5 +1,5 @@
-// Fuzz target: the CSV parser (modules/table). Expected outcomes: a table whose
-// columns all have the same length, or a TableParseError.
+// Fuzz target: the CSV and ECSV parsers (modules/table). Expected outcomes: a
+// table whose columns all have the same length, or a TableParseError.
 #include <cstdint>
 #include <string_view>
 
@@ -13,6 +13,10 @@ extern "C" int LLVMFuzzerTestOneInput(const std::uint8_t* data, std::size_t size
     // What we parse we can write, and what we write parses back to the same shape.
     skerry::Table back = skerry::parse_csv(skerry::format_csv(t));
     if (back.ncols() != t.ncols() || back.rows() != t.rows()) __builtin_trap();
+  } catch (const skerry::TableParseError&) {
+  }
+  try {
+    skerry::parse_ecsv(text).check_consistent();
   } catch (const skerry::TableParseError&) {
   }
   return 0;

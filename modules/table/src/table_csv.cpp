@@ -287,7 +287,8 @@ Table parse_csv(std::string_view text, const CsvReadOptions& opt) {
         c.len = pos - c.begin;
         ++pos;  // closing quote
         // Only blanks may follow a closing quote before the delimiter.
-        while (pos < n && (text[pos] == ' ' || text[pos] == '\t')) ++pos;
+        // (A blank that is itself the delimiter, as in space-separated ECSV, ends the field.)
+        while (pos < n && text[pos] != d && (text[pos] == ' ' || text[pos] == '\t')) ++pos;
         if (pos < n && text[pos] != d && text[pos] != '\n' && text[pos] != '\r')
           throw TableParseError("line " + std::to_string(line) + ": unexpected character after a closing quote");
       } else {
@@ -405,6 +406,7 @@ Table parse_csv(std::string_view text, const CsvReadOptions& opt) {
   }
 
   std::unordered_set<std::string> must_num(opt.numeric_columns.begin(), opt.numeric_columns.end());
+  std::unordered_set<std::string> must_text(opt.text_columns.begin(), opt.text_columns.end());
   for (const auto& m : opt.numeric_columns)
     if (std::find(names.begin(), names.end(), m) == names.end())
       throw TableParseError("missing column '" + shorten(m) + "'", 0, m);
@@ -420,8 +422,8 @@ Table parse_csv(std::string_view text, const CsvReadOptions& opt) {
     std::vector<double>& dv = st.dv;
     Column col;
     col.name = names[j];
-    if (!all_num) {
-      if (must_num.count(names[j]))
+    if (!all_num || must_text.count(names[j])) {
+      if (must_num.count(names[j]) && !all_num)
         throw TableParseError(where(bad_row, names[j]) + ": '" + shorten(bad_text) + "' is not a number", bad_row,
                               names[j]);
       col.type = ColumnType::Text;

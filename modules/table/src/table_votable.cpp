@@ -1,5 +1,7 @@
 // IVOA VOTable 1.4 (Ochsenbein et al. 2019, IVOA Recommendation "VOTable Format
-// Definition Version 1.4"), TABLEDATA serialisation only. The reader is a small
+// Definition Version 1.4"): written as TABLEDATA; read from TABLEDATA, BINARY and
+// BINARY2 (section 5 of the Recommendation: base64 streams of big-endian values,
+// BINARY2 with a per-row null bit mask) and from any TABLE of the document. The reader is a small
 // non-validating XML 1.0 tokenizer (Bray et al., W3C XML 1.0 5th ed.): elements,
 // attributes, the five predefined entities and character references, comments,
 // CDATA, processing instructions and a DOCTYPE without internal subset. It is
@@ -7,6 +9,7 @@
 #include <cmath>
 #include <climits>
 #include <cstdint>
+#include <cstring>
 #include <string>
 #include <string_view>
 #include <unordered_set>
@@ -252,9 +255,159 @@ ColumnType type_of(const FieldDef& f, std::size_t line) {
   fail("FIELD '" + shorten(f.name) + "': unknown datatype '" + shorten(d) + "'", line);
 }
 
+
+/// RFC 4648 section 4 base64 (the VOTable STREAM encoding); white space between
+/// characters is ignored, as the VOTable Recommendation (section 5.3) allows.
+std::vector<unsigned char> decode_base64(std::string_view s, std::size_t line) {
+  std::vector<unsigned char> out;
+  out.reserve(s.size() * 3 / 4);
+  std::uint32_t acc = 0;
+  int bits = 0;
+  bool padded = false;
+  for (char ch : s) {
+    int v;
+    if (ch >= 'A' && ch <= 'Z') v = ch - 'A';
+    else if (ch >= 'a' && ch <= 'z') v = ch - 'a' + 26;
+    else if (ch >= '0' && ch <= '9') v = ch - '0' + 52;
+    else if (ch == '+') v = 62;
+    else if (ch == '/') v = 63;
+    else if (ch == '=') { padded = true; continue; }
+    else if (ch == ' ' || ch == '\n' || ch == '\r' || ch == '\t') continue;
+    else fail("STREAM: '" + shorten(std::string_view(&ch, 1)) + "' is not a base64 character", line);
+    if (padded) fail("STREAM: base64 data after the '=' padding", line);
+    acc = (acc << 6) | static_cast<std::uint32_t>(v);
+    bits += 6;
+    if (bits >= 8) {
+      bits -= 8;
+      out.push_back(static_cast<unsigned char>((acc >> bits) & 0xFF));
+    }
+  }
+  return out;
+}
+
+/// Reads big-endian values from a decoded BINARY/BINARY2 stream; every read is
+/// bounds-checked (a short stream is an error naming the row and FIELD).
+struct StreamReader {
+  const std::vector<unsigned char>& b;
+  std::size_t pos = 0;
+  std::size_t line = 0;
+  void need(std::size_t k, std::size_t row, const std::string& field) const {
+    if (k > b.size() - pos)
+      fail("STREAM ends inside row " + std::to_string(row) + ", FIELD '" + shorten(field) + "'", line);
+  }
+  std::uint64_t uint(int bytes, std::size_t row, const std::string& field) {
+    need(static_cast<std::size_t>(bytes), row, field);
+    std::uint64_t v = 0;
+    for (int k = 0; k < bytes; ++k) v = (v << 8) | b[pos++];
+    return v;
+  }
+};
+
+/// Bytes of one scalar of a VOTable datatype (Recommendation table 1).
+int binary_width(const std::string& d) {
+  if (d == "double" || d == "long") return 8;
+  if (d == "float" || d == "int") return 4;
+  if (d == "short" || d == "unicodeChar") return 2;
+  return 1;  // unsignedByte, char, boolean
+}
+
+/// The number of values of a FIELD in a row: a fixed arraysize "N" (or "NxM":
+/// the product), or, for "*" / "N*", a 4-byte count before the values.
+std::size_t binary_count(const FieldDef& f, StreamReader& r, std::size_t row) {
+  const std::string& a = f.arraysize;
+  if (a.empty()) return 1;
+  if (a.back() == '*') return static_cast<std::size_t>(r.uint(4, row, f.name));
+  std::size_t n = 1, cur = 0;
+  bool any = false;
+  for (char ch : a) {
+    if (ch >= '0' && ch <= '9') {
+      cur = cur * 10 + static_cast<std::size_t>(ch - '0');
+      any = true;
+      if (cur > (1u << 24)) fail("FIELD '" + shorten(f.name) + "': arraysize too large", r.line);
+    } else if (ch == 'x') {
+      n *= cur;
+      cur = 0;
+      if (n > (1u << 24)) fail("FIELD '" + shorten(f.name) + "': arraysize too large", r.line);
+    } else {
+      fail("FIELD '" + shorten(f.name) + "': bad arraysize '" + shorten(a) + "'", r.line);
+    }
+  }
+  if (!any) fail("FIELD '" + shorten(f.name) + "': bad arraysize '" + shorten(a) + "'", r.line);
+  return n * cur;
+}
+
+/// Decode the rows of a BINARY (binary2 = false) or BINARY2 stream into the
+/// columns (Recommendation section 5.4: values big-endian in FIELD order; BINARY2
+/// rows start with ceil(nfields/8) bytes whose bits, most significant first,
+/// flag null values). Floating-point nulls are NaN; integer nulls are the FIELD's
+/// VALUES null (BINARY) or the mask bit (BINARY2).
+void decode_binary_rows(const std::vector<unsigned char>& bytes, bool binary2, const std::vector<FieldDef>& fields,
+                        std::vector<Column>& cols, std::vector<std::vector<char>>& int_null, std::size_t& row,
+                        std::size_t line) {
+  StreamReader r{bytes, 0, line};
+  const std::size_t mask_bytes = binary2 ? (fields.size() + 7) / 8 : 0;
+  while (r.pos < bytes.size()) {
+    const std::size_t row_start = r.pos;
+    ++row;
+    std::vector<unsigned char> mask(mask_bytes, 0);
+    for (auto& m : mask) m = static_cast<unsigned char>(r.uint(1, row, "(null mask)"));
+    for (std::size_t j = 0; j < fields.size(); ++j) {
+      const FieldDef& f = fields[j];
+      Column& c = cols[j];
+      const bool masked = binary2 && (mask[j / 8] & (0x80u >> (j % 8)));
+      const std::size_t count = binary_count(f, r, row);
+      const int w = binary_width(f.datatype);
+      r.need(count * static_cast<std::size_t>(w), row, f.name);
+      if (c.type == ColumnType::Text) {
+        std::string v;
+        for (std::size_t k = 0; k < count; ++k) {
+          const std::uint64_t u = r.uint(w, row, f.name);
+          if (f.datatype == "unicodeChar") append_utf8(v, static_cast<unsigned long>(u));
+          else if (f.datatype == "boolean") v.push_back(u == 'T' || u == 't' || u == '1' ? 'T' : u == 'F' || u == 'f' || u == '0' ? 'F' : '?');
+          else v.push_back(static_cast<char>(u));
+        }
+        if (f.datatype == "char" || f.datatype == "unicodeChar") {
+          const std::size_t nul = v.find('\0');  // fixed-size strings are NUL padded
+          if (nul != std::string::npos) v.resize(nul);
+        }
+        c.text.push_back(masked ? std::string() : v);
+        continue;
+      }
+      if (count != 1) fail("FIELD '" + shorten(f.name) + "': array values are not supported", line);
+      const std::uint64_t u = r.uint(w, row, f.name);
+      if (c.type == ColumnType::Float64) {
+        double d;
+        if (w == 8) {
+          std::memcpy(&d, &u, 8);
+        } else {
+          const std::uint32_t u32 = static_cast<std::uint32_t>(u);
+          float fl;
+          std::memcpy(&fl, &u32, 4);
+          d = fl;
+        }
+        c.f64.push_back(masked ? std::nan("") : d);
+      } else {
+        std::int64_t iv;
+        if (f.datatype == "long") iv = static_cast<std::int64_t>(u);
+        else if (f.datatype == "int") iv = static_cast<std::int32_t>(static_cast<std::uint32_t>(u));
+        else if (f.datatype == "short") iv = static_cast<std::int16_t>(static_cast<std::uint16_t>(u));
+        else iv = static_cast<std::int64_t>(u);  // unsignedByte
+        bool is_null = masked;
+        if (!is_null && f.has_null) {
+          std::int64_t nv = 0;
+          is_null = parse_int(trim(f.null_value), nv) && nv == iv;
+        }
+        c.i64.push_back(iv);
+        int_null[j].push_back(is_null ? 1 : 0);
+      }
+    }
+    if (r.pos == row_start) fail("STREAM rows hold no bytes (every FIELD has arraysize 0)", line);
+  }
+}
+
 }  // namespace
 
-Table parse_votable(std::string_view text) {
+Table parse_votable(std::string_view text, const VotableReadOptions& opt) {
   const std::size_t n = text.size();
   std::size_t pos = 0, line = 1;
   if (text.substr(0, 3) == "\xEF\xBB\xBF") pos = 3;
@@ -276,6 +429,18 @@ Table parse_votable(std::string_view text) {
   bool in_table = false, table_done = false, in_data = false, got_votable = false;
   bool in_tr = false, in_td = false;
   std::size_t table_depth = 0;
+  // TABLE selection (opt.table): "" = the first TABLE; all digits = 0-based index
+  // in document order; otherwise the TABLE's name or ID. Other TABLEs are skipped
+  // (still checked as XML).
+  const bool select_by_index =
+      !opt.table.empty() && opt.table.find_first_not_of("0123456789") == std::string::npos && opt.table.size() < 10;
+  const std::size_t wanted_index = select_by_index ? std::stoul(opt.table) : 0;
+  std::size_t tables_seen = 0;
+  std::size_t skip_depth = 0;  // > 0 while inside a TABLE that is not the selected one
+  std::vector<std::string> table_names;
+  // BINARY / BINARY2 streams.
+  bool in_stream = false, stream_binary2 = false, in_binary = false;
+  std::string stream_text;
   std::size_t row = 0, cell = 0;
   std::string td_text;
   std::string desc_text;
@@ -371,6 +536,9 @@ Table parse_votable(std::string_view text) {
       std::string_view raw = text.substr(pos, lt - pos);
       if (in_td) {
         unescape_into(td_text, raw, line);
+      } else if (in_stream) {
+        if (stream_text.size() + raw.size() > (std::size_t{1} << 34)) fail("STREAM too large", line);
+        unescape_into(stream_text, raw, line);
       } else if (in_field_desc) {
         unescape_into(desc_text, raw, line);
       } else if (stack.empty() || table_done) {
@@ -473,7 +641,22 @@ Table parse_votable(std::string_view text) {
              tag_line);
       stack.pop_back();
       if (stack.empty()) root_closed = true;
+      if (skip_depth > 0) {
+        if (stack.size() < skip_depth) skip_depth = 0;
+        continue;
+      }
       if (table_done) continue;
+      if (name == "STREAM" && in_stream) {
+        in_stream = false;
+        decode_binary_rows(decode_base64(stream_text, tag_line), stream_binary2, fields, cols, int_null, row,
+                           tag_line);
+        stream_text.clear();
+        continue;
+      }
+      if ((name == "BINARY" || name == "BINARY2") && in_binary) {
+        in_binary = false;
+        continue;
+      }
       if (name == "TD" && in_td) {
         end_cell();
         in_td = false;
@@ -506,8 +689,24 @@ Table parse_votable(std::string_view text) {
     seen_root = true;
     if (stack.size() > 256) fail("elements nested too deeply", tag_line);
     if (!self_close) stack.push_back(name);
+    if (skip_depth > 0) continue;
+    if (name == "TABLE" && !in_table) {
+      const std::string* tn = attr_value(attrs, "name");
+      const std::string* tid = attr_value(attrs, "ID");
+      table_names.push_back(tn ? *tn : tid ? *tid : std::string());
+      const std::size_t index = tables_seen++;
+      const bool selected = table_done ? false
+                            : opt.table.empty() ? true
+                            : select_by_index  ? index == wanted_index
+                                               : (tn && *tn == opt.table) || (tid && *tid == opt.table);
+      if (!selected) {
+        if (!self_close) skip_depth = stack.size();
+        continue;
+      }
+    }
     if (table_done) continue;
     if (in_td) fail("element <" + shorten(qname) + "> inside a TD", tag_line);
+    if (in_stream) fail("element <" + shorten(qname) + "> inside a STREAM", tag_line);
 
     if (name == "TABLE") {
       if (!in_table) {
@@ -549,9 +748,20 @@ Table parse_votable(std::string_view text) {
     } else if (name == "DATA" && in_table) {
       in_data = true;
       start_data();
-    } else if ((name == "BINARY" || name == "BINARY2" || name == "FITS") && in_data) {
-      fail("<" + name + "> serialisation is not supported; only TABLEDATA can be read (convert with a VOTable tool)",
-           tag_line);
+    } else if ((name == "BINARY" || name == "BINARY2") && in_data) {
+      in_binary = !self_close;
+      stream_binary2 = name == "BINARY2";
+    } else if (name == "STREAM" && in_binary) {
+      if (attr_value(attrs, "href"))
+        fail("<STREAM href=...>: data in another file or URL is not read; only inline streams are", tag_line);
+      const std::string* enc = attr_value(attrs, "encoding");
+      if (!enc || *enc != "base64")
+        fail("<STREAM> encoding '" + shorten(enc ? *enc : std::string()) + "' is not supported; only base64 is",
+             tag_line);
+      in_stream = !self_close;
+      stream_text.clear();
+    } else if (name == "FITS" && in_data) {
+      fail("<FITS> serialisation is not supported; TABLEDATA, BINARY and BINARY2 can be read", tag_line);
     } else if (name == "TR" && in_data) {
       if (in_tr) fail("TR inside TR", tag_line);
       ++row;
@@ -568,7 +778,15 @@ Table parse_votable(std::string_view text) {
   }
   if (!got_votable) throw TableParseError("not a VOTable: no <VOTABLE> element");
   if (!stack.empty()) fail("document ends inside <" + shorten(stack.back()) + ">", line);
-  if (!table_done) throw TableParseError("VOTable has no TABLE");
+  if (!table_done) {
+    if (opt.table.empty() || tables_seen == 0) throw TableParseError("VOTable has no TABLE");
+    std::string list;
+    for (std::size_t k = 0; k < table_names.size() && k < 20; ++k)
+      list += (k ? ", " : "") + std::to_string(k) + (table_names[k].empty() ? "" : " '" + shorten(table_names[k]) + "'");
+    throw TableParseError("VOTable has no TABLE " + std::string(select_by_index ? "number " : "named ") +
+                          shorten(opt.table) + " (its " + std::to_string(tables_seen) +
+                          " TABLEs, numbered from 0: " + list + ")");
+  }
   if (cols.empty() && !fields.empty()) start_data();  // TABLE without DATA: zero rows
   // Integer columns with null cells become Float64 with NaN.
   for (std::size_t j = 0; j < cols.size(); ++j) {

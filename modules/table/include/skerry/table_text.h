@@ -45,6 +45,8 @@ struct CsvReadOptions {
   /// Columns that must be numeric: a non-numeric (non-empty) cell there is a
   /// TableParseError naming row and column. Others are inferred.
   std::vector<std::string> numeric_columns;
+  /// Columns kept as Text even when every cell reads as a number (cells as written).
+  std::vector<std::string> text_columns;
   /// Lines starting with this character before the header are skipped (0 = none).
   char comment = '#';
 };
@@ -67,12 +69,32 @@ Table parse_csv(std::string_view text, const CsvReadOptions& opt = {});
 /// allowed in XML 1.0 are replaced by U+FFFD.
 std::string format_votable(const Table& t);
 
-/// Parse a VOTable with TABLEDATA serialisation (the first TABLE found).
+struct VotableReadOptions {
+  /// Which TABLE: "" = the first; all digits = 0-based index in document order
+  /// (as astropy.io.votable counts); otherwise the TABLE's name or ID attribute.
+  std::string table;
+};
+
+/// Parse a VOTable with TABLEDATA, BINARY or BINARY2 serialisation (inline
+/// base64 STREAMs), one TABLE chosen by `opt`.
 /// FIELD datatypes: double/float -> Float64; long/int/short/unsignedByte ->
 /// Int64 (null cells of integer columns -> the column becomes Float64 with NaN);
 /// boolean/char/unicodeChar -> Text; arrays other than strings -> error.
 /// INFO and PARAM elements of the RESOURCE/TABLE become meta (key=name).
-/// BINARY/BINARY2/FITS serialisation -> TableParseError saying so.
-Table parse_votable(std::string_view text);
+/// FITS serialisation, external STREAMs and a TABLE that is not there ->
+/// TableParseError saying so (the latter listing the TABLEs there are).
+Table parse_votable(std::string_view text, const VotableReadOptions& opt = {});
+
+// ---- ECSV 1.0 -----------------------------------------------------------------
+
+/// Parse an ECSV file (Enhanced Character Separated Values, version 1.0:
+/// "# %ECSV" line, a YAML header in '# ' comment lines giving every column's
+/// name, datatype, unit and description, the delimiter (space or comma) and
+/// table meta, then a header row and the data rows). Datatypes float16/32/64 ->
+/// Float64; int8..uint64 -> Int64 (empty cells -> Float64 with NaN); string and
+/// bool -> Text. Simple `key: value` pairs of the header's meta become meta.
+/// Throws TableParseError when the header is not ECSV, the header row does not
+/// match the declared columns, or a cell is not of its declared type.
+Table parse_ecsv(std::string_view text);
 
 }  // namespace skerry
