@@ -2,7 +2,7 @@
 // Test helper: Gaussian noise correlated like a circular beam.
 //
 // White noise convolved with a Gaussian kernel of FWHM beam / sqrt 2 has an
-// autocorrelation of FWHM = beam (CONVENTIONS.md "Noise"; a Gaussian convolved
+// autocorrelation of FWHM = beam (docs/CONVENTIONS.md "Noise"; a Gaussian convolved
 // with itself has sqrt 2 its width). The separable 1-D kernel k is normalised to
 // sum k^2 = 1, so the 2-D kernel (k x k) has sum of squares 1 and unit white
 // noise becomes noise of unit variance exactly (in expectation); it is then

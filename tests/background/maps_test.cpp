@@ -26,7 +26,7 @@ BackgroundOptions default_options() {
   return o;
 }
 
-// Independent samples in a box of n pixels: n / Omega_beam_pix (CONVENTIONS.md
+// Independent samples in a box of n pixels: n / Omega_beam_pix (docs/CONVENTIONS.md
 // "Noise"). Sample standard deviation: relative scatter 1 / sqrt(2 N_ind);
 // median: 1.2533 sigma / sqrt(N_ind) (asymptotic efficiency of the median,
 // common practice). Iterated 3-sigma clipping loses a little efficiency: x1.25.

@@ -18,7 +18,7 @@ namespace {
 constexpr double kBeamPix = 4.0;
 const double kBeamAreaPix = kGaussAreaFactor * kBeamPix * kBeamPix;  // REF-GAUSS-03
 // Relative scatter of a clipped rms from n pixels: 1.25 / sqrt(2 n / Omega)
-// (independent samples n / Omega, CONVENTIONS.md "Noise"; x1.25 for clipping).
+// (independent samples n / Omega, docs/CONVENTIONS.md "Noise"; x1.25 for clipping).
 double rms_rel_scatter(double npix) { return 1.25 / std::sqrt(2.0 * npix / kBeamAreaPix); }
 
 struct TwoPass {

@@ -16,10 +16,10 @@ namespace {
 using namespace skerry::testing;
 const double kRa = 201.25, kDec = -38.6;
 
-// Source: definition of integrated flux density (CONVENTIONS.md "Fitting":
+// Source: definition of integrated flux density (docs/CONVENTIONS.md "Fitting and errors":
 // S = peak (M m)/(b_M b_m)); a noiseless image of the exact model gives the
 // flux density back. Grid with east to the right, rotated 20 deg, non-square
-// pixels (CONVENTIONS.md "Angles on the sky").
+// pixels (docs/CONVENTIONS.md "Angles on the sky").
 TEST(Forced, NoiselessPointAndExtendedOnOddGrid) {
   const TanSky g = TanSky::simple(kRa, kDec, 100, 100, 1.2, 20.0, false, 1.5);
   const Beam beam{8, 5, 30};
@@ -82,7 +82,7 @@ TEST(Forced, IsolatedPointSourceErrorIdentity) {
   EXPECT_NEAR(r2[0].flux_err_total_jy, std::hypot(r2[0].flux_err_jy, 0.05 * r2[0].flux_jy), 1e-12);
 }
 
-// Source: CONVENTIONS.md "Fitting and errors": reported errors must describe
+// Source: docs/CONVENTIONS.md "Fitting and errors": reported errors must describe
 // the actual scatter in correlated noise; 900 isolated sources (point and
 // resolved) in one noise realisation: the normalised residuals have a robust
 // standard deviation within 0.88..1.12 (the standard error of 1.4826 MAD is

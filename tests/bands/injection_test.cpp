@@ -220,7 +220,7 @@ TEST(PerleyButler, FourBands) {
   }
 }
 
-// Source: the acceptance criterion with CONVENTIONS.md "Signal-to-noise"
+// Source: the acceptance criterion with docs/CONVENTIONS.md "Signal-to-noise"
 // (select by the TRUE SNR): power-law sources at 0.9, 1.4 and 3.0 GHz, drawn by
 // the simulator (20 % resolved), measured with their true intrinsic shapes in
 // each band's own grid: for true SNR > 20 in all bands, |median(alpha - alpha_true)|

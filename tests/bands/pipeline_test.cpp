@@ -148,7 +148,7 @@ class BandsCommand : public ::testing::Test {
   fs::path dir_;
 };
 
-// Source: end-to-end check against the simulator's truth (CONVENTIONS.md
+// Source: end-to-end check against the simulator's truth (docs/CONVENTIONS.md
 // "Spectra"): three bands, detection by extract on the finest band (the
 // default), forced measurement, spectra, maps. The median alpha error of the
 // sources detected in all bands is below 0.05 (their SNR is >= 20, so sigma_alpha

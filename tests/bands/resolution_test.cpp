@@ -60,7 +60,7 @@ Moments moments(const ImageF& im) {
 
 // ---- Common beam --------------------------------------------------------------
 
-// Source: definition (CONVENTIONS.md "Spectra"): a beam containing all others is
+// Source: definition (docs/CONVENTIONS.md "Spectra"): a beam containing all others is
 // itself the smallest containing ellipse; enlargement multiplies both axes.
 TEST(CommonBeam, NestedBeamsGiveTheLargest) {
   CommonBeamOptions o;
@@ -190,7 +190,7 @@ TEST(Convolve, KernelTakesBeamAToBeamB_FFT) {
 TEST(Convolve, KernelTakesBeamAToBeamB_Direct) {
   check_kernel_on_image(TanSky::simple(kRa, kDec, 80, 80, 0.5), 1);
 }
-// Source: CONVENTIONS.md "Angles on the sky": east to the right and a rotated,
+// Source: docs/CONVENTIONS.md "Angles on the sky": east to the right and a rotated,
 // non-square grid must give the same sky result.
 TEST(Convolve, KernelTakesBeamAToBeamB_OddParityRotated) {
   check_kernel_on_image(TanSky::simple(kRa, kDec, 80, 80, 0.45, 20.0, false, 0.6), 2);
@@ -255,7 +255,7 @@ TEST(Convolve, FftAndDirectAgree) {
 
 // ---- Reprojection ---------------------------------------------------------------
 
-// Source: CONVENTIONS.md "Spectra" (Jy/beam regridded without a pixel-area
+// Source: docs/CONVENTIONS.md "Spectra" (Jy/beam regridded without a pixel-area
 // factor). A point source (beam 6"x5" PA 20) on grid 1 (1" pixels) moved to grid
 // 2 (0.7" x 0.9" pixels, rotated 25 deg, east right) and convolved to the common
 // beam keeps its peak flux density within 1 % of the analytic value (1 Jy point

@@ -83,7 +83,7 @@ inline void add_gaussian(ImageF& img, const PixelSky& wcs, double ra, double dec
 
 namespace skerry::testing {
 
-/// Beam-correlated noise of the given rms (CONVENTIONS.md "Noise": white noise
+/// Beam-correlated noise of the given rms (docs/CONVENTIONS.md "Noise": white noise
 /// convolved with a Gaussian of the beam's FWHMs / sqrt(2), same PA, rescaled to
 /// the target rms by its sample standard deviation).
 inline ImageF correlated_noise(long ny, long nx, const PixelSky& wcs, const Beam& beam, double rms,

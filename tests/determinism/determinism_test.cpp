@@ -1,4 +1,4 @@
-// Determinism (CONVENTIONS "Determinism", common practice): the same inputs give
+// Determinism (docs/CONVENTIONS.md "Determinism", common practice): the same inputs give
 // byte-identical catalogues and images whatever the thread count, and on every
 // repeated run. Time stamps and host names belong only in the run record
 // (NAME.run.json), the one file not compared. Raw bytes are compared, FITS

@@ -34,7 +34,7 @@ TEST(Flags, BitsAndNamesAreUnique) {
 }
 
 // Source: IAU recommendations for nomenclature (designation JHHMMSS.s+DDMMSS,
-// truncated, never rounded; CONVENTIONS "Catalogues and names"). RA 201.25 deg =
+// truncated, never rounded; docs/CONVENTIONS.md "Catalogues and names"). RA 201.25 deg =
 // 13h25m00s exactly; Dec -38.6 deg = -38d36m00s.
 TEST(Designation, TruncatesNeverRounds) {
   EXPECT_EQ(designation("SKDC", 201.25, -38.6), "SKDC J132500.0-383600");
@@ -210,7 +210,7 @@ TEST(PositionFlags, EdgeBlankAndBrighterNeighbour) {
   EXPECT_EQ(c[7].flags & kFlagNearBright, 0u);
 }
 
-// CONVENTIONS "Noise": sigma_S = sqrt(sum_ij s_i s_j rho_ij) / Omega_beam_pix.
+// docs/CONVENTIONS.md "Noise": sigma_S = sqrt(sum_ij s_i s_j rho_ij) / Omega_beam_pix.
 TEST(PixelSumError, ExactSmallCases) {
   const Eigen::Matrix2d C = (Eigen::Matrix2d() << 4.0, 1.0, 1.0, 3.0).finished();
   const double omega = 2.0 * kPi * std::sqrt(C.determinant());
@@ -224,7 +224,7 @@ TEST(PixelSumError, ExactSmallCases) {
   EXPECT_NEAR(pixel_sum_flux_error(rms, m, C, omega), std::sqrt(4.0 + 9.0 + 2 * 2 * 3 * rho) / omega, 1e-14);
 }
 
-// Large island, constant rms: tends to s sqrt(N / Omega) (CONVENTIONS "Noise"),
+// Large island, constant rms: tends to s sqrt(N / Omega) (docs/CONVENTIONS.md "Noise"),
 // short by the border pixels' missing partners: for a square of side L the
 // deficit is about 2 (perimeter / L^2) x sigma/sqrt(2 pi) ~ 1 % here.
 TEST(PixelSumError, LargeIslandApproachesConventionFormula) {

@@ -94,7 +94,7 @@ TEST_P(GoldenNoiseless, RecoversTruthExactly) {
     ASSERT_LT(i, comps.rows());
     double tx, ty;
     ASSERT_TRUE(img.wcs->sky_to_pix(t.ra, t.dec, tx, ty));
-    // Catalogue pixels are 1-based FITS pixels (CONVENTIONS "Pixels and axes").
+    // Catalogue pixels are 1-based FITS pixels (docs/CONVENTIONS.md "Pixels and axes").
     EXPECT_NEAR(col(comps, "x_pix1", i) - 1.0, tx, 1e-4);
     EXPECT_NEAR(col(comps, "y_pix1", i) - 1.0, ty, 1e-4);
     const auto lg = local_geometry(*img.wcs, tx, ty);

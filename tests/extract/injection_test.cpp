@@ -3,7 +3,7 @@
 // simulations. Point sources on a jittered lattice (isolated: 64 pixels = 9 beams
 // apart, none within 48 pixels of the edge) on the simulator's beam-correlated
 // noise, 1024^2 pixels of 1 arcsec, beam 7 x 5 arcsec at PA 30 deg, 6 seeds.
-// Sources are selected by their TRUE SNR (CONVENTIONS "Signal-to-noise").
+// Sources are selected by their TRUE SNR (docs/CONVENTIONS.md "Signal-to-noise").
 #include <gtest/gtest.h>
 
 #include <cmath>

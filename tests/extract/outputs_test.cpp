@@ -138,7 +138,7 @@ TEST(Outputs, RunRecord) {
     EXPECT_NE(std::find(stages.begin(), stages.end(), s), stages.end()) << "stage " << s;
   EXPECT_TRUE(j.contains("host"));
   EXPECT_TRUE(j.contains("started_utc"));
-  // Time stamps and host names only in the run record (CONVENTIONS "Determinism").
+  // Time stamps and host names only in the run record (docs/CONVENTIONS.md "Determinism").
   const std::string host = j["host"];
   for (const auto& f : list_files(tmp / "out")) {
     if (f.ends_with(".run.json")) continue;
@@ -149,7 +149,7 @@ TEST(Outputs, RunRecord) {
   }
 }
 
-// CONVENTIONS "Determinism": byte-identical catalogues and images for any thread
+// docs/CONVENTIONS.md "Determinism": byte-identical catalogues and images for any thread
 // count (the run record differs: timings, thread count).
 TEST(Outputs, ResidualIsImageMinusModelWithTheBackgroundKept) {
   // The documented definition (README, "What skerry extract writes"): residual =

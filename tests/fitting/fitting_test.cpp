@@ -156,7 +156,7 @@ TEST(FitIsland, CondonFisherMatrixWhiteNoise) {
 
 // Sky measurements on grids of both parities, rotated CD matrices and non-square
 // pixels: the same sky source (positions, FWHMs, PA east of north) must come back
-// from every grid (CONVENTIONS "Angles on the sky"; parity through the local
+// from every grid (docs/CONVENTIONS.md "Angles on the sky"; parity through the local
 // Jacobian). Noiseless, rendered on the sky pixel by pixel: positions within 1e-4
 // pixel, sizes rel 1e-5, PA within 1e-3 deg, S_int rel 1e-5 (the golden-image
 // tolerances of the reference data).
@@ -235,7 +235,7 @@ TEST(MeasureOnSky, DeconvolutionWorkedExample) {
   EXPECT_TRUE(s.resolved);  // S_int / S_peak = 2.54, far above the envelope at SNR ~ 200
 }
 
-// An unresolved component gives upper limits (CONVENTIONS "Fitting and errors");
+// An unresolved component gives upper limits (docs/CONVENTIONS.md "Fitting and errors");
 // REF-DECONV-01: a fit identical to the beam deconvolves to a point.
 TEST(MeasureOnSky, PointSourceGivesUpperLimits) {
   const Beam beam{6.0, 5.0, 60.0};
@@ -322,7 +322,7 @@ TEST(FitIsland, BadInputIsFlagged) {
   EXPECT_EQ(f.components[0].status, skerry::ComponentStatus::kMoments);
 }
 
-// Derivation check behind the sandwich covariance (CONVENTIONS "Noise"): white
+// Derivation check behind the sandwich covariance (docs/CONVENTIONS.md "Noise"): white
 // noise convolved with a Gaussian kernel of covariance C_beam / 2 has the
 // autocorrelation rho(d) = exp(-d^T C_beam^-1 d / 2). Direct convolution here (not
 // the simulator); sample autocorrelation of 256 x 256 pixels, whose standard error is

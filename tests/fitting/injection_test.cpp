@@ -2,7 +2,7 @@
 // noise with the simulator (modules/simulate: analytic sky rendering, noise with the
 // beam's autocorrelation), then cut into stamps, fitted and measured on the sky.
 // Truth is known by construction; sources are selected by their TRUE SNR
-// (CONVENTIONS "Signal-to-noise": measured values are Eddington-biased).
+// (docs/CONVENTIONS.md "Signal-to-noise": measured values are Eddington-biased).
 #include <gtest/gtest.h>
 
 #include <cmath>

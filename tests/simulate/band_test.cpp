@@ -148,7 +148,7 @@ TEST(SimulateBand, PrimaryBeamNoiseRisesAndBlanks) {
   // Noise rms / pb: image x pb has the target rms everywhere. Compare the centre
   // (pb > 0.9) and an annulus where pb ~ 0.3-0.5: each holds > 25,000 pixels, about
   // 1,800 independent beams (beam area 15 pixels), so the relative error of the rms
-  // is 0.5 sqrt(Omega / N) ~ 1.2 % (CONVENTIONS.md "Noise"); tolerance 5 % (4 sigma).
+  // is 0.5 sqrt(Omega / N) ~ 1.2 % (docs/CONVENTIONS.md "Noise"); tolerance 5 % (4 sigma).
   double s_in = 0, n_in = 0, s_out = 0, n_out = 0, raw_out = 0;
   for (long y = 0; y < n; ++y)
     for (long x = 0; x < n; ++x) {

@@ -41,7 +41,7 @@ void moments(const ImageF& n, double& mean, double& var) {
 }
 
 // Expected: rho(d) = exp(-0.5 d^T C^-1 d), i.e. exp(-4 ln 2 r^2 / theta^2) along each
-// axis (CONVENTIONS.md "Noise"; Gaussian beam, REF-GAUSS-01).
+// axis (docs/CONVENTIONS.md "Noise"; Gaussian beam, REF-GAUSS-01).
 // Tolerance: the sampling error of a correlation coefficient estimated from N
 // pixels of a Gaussian field is about sqrt(sum_k rho(k)^2 / N) (Bartlett 1946,
 // J. R. Stat. Soc. Suppl. 8, 27, large-lag form; from memory), and sum_k rho^2 is
@@ -93,7 +93,7 @@ TEST(CorrelatedNoise, AutocorrelationOfARotatedBeamAtEveryLag) {
 // The rms equals the target within the sampling error of a standard deviation
 // from N pixels of correlated noise: relative sigma = 0.5 sqrt(2 sum rho^2 / N)
 // = 0.5 sqrt(Omega_beam_pix / N) (N / Omega_beam_pix independent samples,
-// CONVENTIONS.md "Noise"). 4 sigma allowed.
+// docs/CONVENTIONS.md "Noise"). 4 sigma allowed.
 TEST(CorrelatedNoise, RmsEqualsTheTarget) {
   const Beam beam{6.0, 5.0, 70.0};
   const double pix = 1.5;
@@ -153,7 +153,7 @@ namespace {
 // the flat-grid form for both parities, and with the direct construction
 // C_pix = 1/(8 ln 2) R diag(M^2, m^2) R^T, the major axis pointing to pixel
 // direction (-sin PA, cos PA) when east is -x and (sin PA, cos PA) when east is +x
-// (CONVENTIONS.md "Angles on the sky").
+// (docs/CONVENTIONS.md "Angles on the sky").
 TEST(BeamCovariance, ParityAndRotationInThePixelFrame) {
   const Beam beam{8.0, 4.0, 30.0};
   for (bool east_right : {false, true}) {

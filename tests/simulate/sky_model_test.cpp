@@ -150,12 +150,12 @@ TEST(SkyModel, ShapesDoublesAndSpectraAreAsDrawn) {
 
 // Spectra: S(nu) = S_ref 10^(alpha t + beta t^2), t = log10(nu / nu_ref), written
 // here with natural logarithms as S_ref (nu/nu_ref)^alpha exp(beta ln(10) t^2)
-// (definition of the log-parabola, base 10; CONVENTIONS.md "Spectra").
+// (definition of the log-parabola, base 10; docs/CONVENTIONS.md "Spectra").
 TEST(Spectrum, PowerLawAndLogParabola) {
   Spectrum p{0.01, 1.4e9, -0.7, 0.0};
   EXPECT_NEAR(p.flux_at(1.4e9), 0.01, 1e-17);
   EXPECT_NEAR(p.flux_at(2.8e9), 0.01 * std::pow(2.0, -0.7), 1e-15);
-  // Two-point index recovers alpha: ln(S1/S2) / ln(nu1/nu2) (CONVENTIONS.md).
+  // Two-point index recovers alpha: ln(S1/S2) / ln(nu1/nu2) (docs/CONVENTIONS.md).
   EXPECT_NEAR(std::log(p.flux_at(0.9e9) / p.flux_at(3.0e9)) / std::log(0.9 / 3.0), -0.7, 1e-12);
   Spectrum c{0.02, 1.0e9, 0.3, -0.25};
   for (double nu : {0.3e9, 0.9e9, 1.4e9, 3.0e9, 10e9}) {

@@ -31,7 +31,7 @@ TEST(TwoPoint, WorkedExample) {
   expect_rel(r.alpha_err, 0.11827062709079779, 1e-12);
   EXPECT_TRUE(std::isnan(r.chi2_power_law));  // 2 bands: no goodness of fit
   EXPECT_EQ(r.dof_power_law, 0);
-  // nu0 = weighted log mean: w = (S/sigma)^2 = 400 and 177.78 (CONVENTIONS.md).
+  // nu0 = weighted log mean: w = (S/sigma)^2 = 400 and 177.78 (docs/CONVENTIONS.md).
   const double w1 = 400.0, w2 = (4.0 / 0.3) * (4.0 / 0.3);
   expect_rel(r.ref_freq_hz, std::exp((w1 * std::log(1.4e9) + w2 * std::log(3.0e9)) / (w1 + w2)),
              1e-13);
@@ -49,7 +49,7 @@ TEST(TwoPoint, FluxScaleTermWidensError) {
 }
 
 // Source: REF-SPIX-02 example 1 (weighted least squares in log space, common
-// practice; numpy.polyfit agrees per REFERENCES.md): exact power law
+// practice; numpy.polyfit agrees per docs/REFERENCES.md): exact power law
 // S = 20 mJy (nu/GHz)^-0.7 with 5 % errors.
 TEST(PowerLaw, ExactPowerLaw) {
   std::vector<BandFlux> b;
@@ -123,7 +123,7 @@ TEST(LogParabola, Base10WorkedExample) {
   expect_rel(std::exp(-c[1] / (2.0 * c[2])), 0.05623413251903491, 1e-10);
 }
 
-// Source: CONVENTIONS.md "Spectra": three bands give alpha with 1 dof and a
+// Source: docs/CONVENTIONS.md "Spectra": three bands give alpha with 1 dof and a
 // log-parabola with 0 dof (no goodness of fit).
 TEST(LogParabola, ThreeBandsNoGoodnessOfFit) {
   SpectrumResult r = fit_spectrum({{1e9, 1.0, 0.01}, {2e9, 0.7, 0.01}, {4e9, 0.4, 0.01}});
@@ -136,7 +136,7 @@ TEST(LogParabola, ThreeBandsNoGoodnessOfFit) {
   EXPECT_LT(r.curv_q, 0.0);  // ln 0.7 - ln 1 > ln 0.4 - ln 0.7 over equal log steps: convex down
 }
 
-// Source: CONVENTIONS.md "Spectra": a band below detect_snr * rms is an upper
+// Source: docs/CONVENTIONS.md "Spectra": a band below detect_snr * rms is an upper
 // limit, never logged; alpha limits follow from alpha = ln(U/S_d)/ln(nu_u/nu_d)
 // (REF-SPIX-01 form).
 TEST(Limits, UpperLimitBandsGiveAlphaLimits) {

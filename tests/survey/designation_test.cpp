@@ -1,6 +1,6 @@
 // Designations: IAU-recommended style PREFIX JHHMMSS.s+DDMMSS, truncated, never
 // rounded (IAU Commission 5 recommendations on designations, common practice;
-// CONVENTIONS "Catalogues and names"). Sexagesimal conversions of the inputs come
+// docs/CONVENTIONS.md "Catalogues and names"). Sexagesimal conversions of the inputs come
 // from ERFA (eraTf2a, eraAf2a: the IAU SOFA routines), not from our own code.
 #include <erfa.h>
 #include <gtest/gtest.h>
