@@ -5,7 +5,7 @@ set -euo pipefail
 pkgs=(build-essential cmake ninja-build pkg-config git
       libcfitsio-dev wcslib-dev liberfa-dev libeigen3-dev libtbb-dev
       libboost-program-options-dev libgtest-dev libpng-dev libsqlite3-dev
-      libfftw3-dev libnanoflann-dev libchealpix-dev libhealpix-cxx-dev nlohmann-json3-dev
+      libfftw3-dev libhealpix-cxx-dev nlohmann-json3-dev
       python3 python3-numpy python3-scipy python3-astropy chromium "$@")
 missing=()
 for p in "${pkgs[@]}"; do

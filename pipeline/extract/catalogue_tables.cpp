@@ -88,7 +88,7 @@ void sort_components(std::vector<ComponentRecord>& rows) {
 
 std::string designation(const std::string& prefix, double ra_deg, double dec_deg) {
   if (!std::isfinite(ra_deg) || !std::isfinite(dec_deg)) return "";
-  // Truncated, never rounded (IAU recommendations for nomenclature; CONVENTIONS).
+  // Truncated, never rounded (IAU recommendations for nomenclature; docs/CONVENTIONS.md).
   double ra = std::fmod(ra_deg, 360.0);
   if (ra < 0) ra += 360.0;
   // Tenths of a second of time; the small relative guard keeps exact values

@@ -54,7 +54,7 @@ struct IslandRecord {
   std::int64_t n_components = 0;
   std::int64_t n_pixels = 0;
   double s_pix_jy = 0.0;        ///< pixel sum of (image - background) / beam area in pixels
-  double s_pix_err_jy = 0.0;    ///< its error (CONVENTIONS "Noise", correlated pixels)
+  double s_pix_err_jy = 0.0;    ///< its error (docs/CONVENTIONS.md "Noise", correlated pixels)
   double peak_jy_per_beam = 0.0;  ///< largest (image - background)
   double peak_snr = 0.0;          ///< island SNR: largest (I - B)/sigma
   double peak_x_pix = 0.0, peak_y_pix = 0.0;  ///< 0-based (written 1-based)
@@ -88,7 +88,7 @@ Table make_source_table(const std::vector<CatalogueSource>& sources, const Prove
 void sort_components(std::vector<ComponentRecord>& rows);
 
 /// Designation in IAU style from the position, truncated not rounded:
-/// PREFIX JHHMMSS.s+DDMMSS (CONVENTIONS "Catalogues and names").
+/// PREFIX JHHMMSS.s+DDMMSS (docs/CONVENTIONS.md "Catalogues and names").
 std::string designation(const std::string& prefix, double ra_deg, double dec_deg);
 
 }  // namespace skerry

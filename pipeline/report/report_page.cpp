@@ -313,7 +313,7 @@ ReportResult write_report(const ReportOptions& opt) {
   if (have_comps) {
     ell.x = column(comps, "x_pix1");
     ell.y = column(comps, "y_pix1");
-    for (double& v : ell.x) v -= 1.0;  // FITS 1-based -> 0-based (CONVENTIONS "Pixels and axes")
+    for (double& v : ell.x) v -= 1.0;  // FITS 1-based -> 0-based (docs/CONVENTIONS.md "Pixels and axes")
     for (double& v : ell.y) v -= 1.0;
     ell.maj_arcsec = column(comps, "maj_arcsec");
     ell.min_arcsec = column(comps, "min_arcsec");

@@ -1,4 +1,4 @@
-// Determinism (CONVENTIONS "Determinism", common practice): the same inputs give
+// Determinism (docs/CONVENTIONS.md "Determinism", common practice): the same inputs give
 // byte-identical catalogues and images whatever the thread count, and on every
 // repeated run. Time stamps and host names belong only in the run record
 // (NAME.run.json), the one file not compared. Raw bytes are compared, FITS
@@ -15,6 +15,7 @@
 #include <sstream>
 #include <string>
 #include <vector>
+#include "skerry_test_support.h"
 
 namespace {
 
@@ -22,16 +23,10 @@ namespace fs = std::filesystem;
 
 int run(const std::string& args, const fs::path& dir) {
   const std::string cmd = std::string(SKERRY_BINARY) + " " + args + " > /dev/null 2> " + (dir / "stderr.txt").string();
-  const int st = std::system(cmd.c_str());
-  return WIFEXITED(st) ? WEXITSTATUS(st) : -1;
+  return skerry::test::shell(cmd);
 }
 
-std::string slurp(const fs::path& p) {
-  std::ifstream in(p, std::ios::binary);
-  std::stringstream ss;
-  ss << in.rdbuf();
-  return ss.str();
-}
+using skerry::test::slurp;
 
 /// Every file of a folder (relative name -> bytes), the run records left out.
 std::map<std::string, std::string> contents(const fs::path& dir) {

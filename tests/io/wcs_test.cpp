@@ -398,7 +398,7 @@ TEST(WcsGeometry, NorthAngleAgainstEraPasAndCd) {
 }
 
 TEST(WcsGeometry, EastRightParity) {
-  // CDELT1 > 0: east towards +x (unusual parity, CONVENTIONS.md "Angles on the sky").
+  // CDELT1 > 0: east towards +x (unusual parity, docs/CONVENTIONS.md "Angles on the sky").
   const double cd_right[2][2] = {{+2.0 / 3600, 0}, {0, 2.0 / 3600}};
   const double cd_left[2][2] = {{-2.0 / 3600, 0}, {0, 2.0 / 3600}};
   auto wr = wcs_from_header(header(base_cards("SIN", 201.25, -38.6, 50, 50, cd_right)));

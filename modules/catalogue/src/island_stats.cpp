@@ -18,7 +18,7 @@ double pixel_sum_flux_error(const ImageF& rms, const MaskU8& in_island, const Ei
   if (in_island.rows() != ny || in_island.cols() != nx) return NAN;
   if (!(C.determinant() > 0.0) || !(beam_area_pix > 0.0) || !std::isfinite(C.sum())) return NAN;
   // rho(d) = exp(-1/2 d^T C^-1 d): the noise autocorrelation has the beam's
-  // shape with unit value at zero lag (CONVENTIONS "Noise"). Truncated where
+  // shape with unit value at zero lag (docs/CONVENTIONS.md "Noise"). Truncated where
   // rho < 1e-4, i.e. d^T C^-1 d > 2 ln 1e4. Taps over a half plane
   // (dy > 0, or dy == 0 and dx > 0); each pair is counted twice below.
   const double q_max = 2.0 * std::log(1e4);

@@ -1,4 +1,4 @@
-// Cross-matching by sky separation: k-d tree on unit vectors (nanoflann), chord
+// Cross-matching by sky separation: a 3-D cell grid on unit vectors, chord
 // search, Vincenty separation. See skerry/crossmatch.h for the contract.
 //
 // Why a grid on 3-vectors: Euclidean distance between unit vectors is the chord

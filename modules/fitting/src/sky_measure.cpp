@@ -224,7 +224,7 @@ SkyComponent measure_on_sky(const PixelComponent& comp, const PixelSky& wcs, con
   // Deconvolution (REF-DECONV-01, Wild 1970): an axis is resolved when C_fit -
   // C_beam is positive along it also after shrinking the fitted FWHMs by
   // unresolved_nsigma errors; otherwise it is an upper limit, the deconvolved size
-  // at FWHMs enlarged by unresolved_nsigma errors (CONVENTIONS "Fitting and errors").
+  // at FWHMs enlarged by unresolved_nsigma errors (docs/CONVENTIONS.md "Fitting and errors").
   const Ellipse be = to_ellipse(beam);
   const double ns = opt.unresolved_nsigma;
   const double me = std::isfinite(maj_err) ? maj_err : 0.0, mi = std::isfinite(min_err) ? min_err : 0.0;

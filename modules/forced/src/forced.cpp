@@ -132,7 +132,7 @@ std::vector<ForcedMeasurement> forced_measure_masked(const ImageF& image, const 
       p.cb = g->sky_cov_to_pixel(cbeam_sky);
       p.c = g->sky_cov_to_pixel(cconv_sky);
       p.ci = p.c.inverse();
-      // S = a (M m)/(b_M b_m) = a sqrt(det C_conv / det C_beam) (CONVENTIONS.md).
+      // S = a (M m)/(b_M b_m) = a sqrt(det C_conv / det C_beam) (docs/CONVENTIONS.md).
       p.flux_factor = std::sqrt(cconv_sky.determinant() / cbeam_sky.determinant());
       p.rms = rms_at(iy, ix);
       const double hx = R * std::sqrt(p.c(0, 0)), hy = R * std::sqrt(p.c(1, 1));

@@ -10,7 +10,7 @@
 
 namespace skerry::detail {
 
-/// snr[x] = (I - B) / rms in float (island SNR, CONVENTIONS.md "Signal-to-noise").
+/// snr[x] = (I - B) / rms in float (island SNR, docs/CONVENTIONS.md "Signal-to-noise").
 /// NaN where I, B or rms is not finite or rms <= 0 (blank). bg and rms receive
 /// the maps' row y (the image width each); I - B is recomputed from them where
 /// needed with the same float subtraction.

@@ -1,7 +1,7 @@
 // Beam-correlated Gaussian noise (simulate.h, correlated_noise).
 //
 // Method. Let w be white noise and g the Gaussian kernel of covariance C/2
-// (the beam's FWHMs / sqrt 2, same PA; CONVENTIONS.md "Noise"). Then n = g * w has
+// (the beam's FWHMs / sqrt 2, same PA; docs/CONVENTIONS.md "Noise"). Then n = g * w has
 // autocorrelation (g * g)(d), a Gaussian of covariance C: the beam's shape,
 // exp(-0.5 d^T C^-1 d). In the Fourier domain the transform of w is again white
 // (complex, Hermitian) noise and convolution is a product with the kernel's

@@ -69,7 +69,7 @@ void destination(double ra0_deg, double dec0_deg, double r, double pa, double& r
 }
 
 /// Uniform on the sphere within a cap of radius R: cos r uniform in [cos R, 1],
-/// direction uniform (CONVENTIONS.md: uniform in RA and sin Dec, here about the
+/// direction uniform (docs/CONVENTIONS.md: uniform in RA and sin Dec, here about the
 /// cap centre).
 void draw_in_cap(Stream& rng, const SkyModelOptions& o, double& ra, double& dec) {
   const double cos_R = std::cos(o.radius_deg * kDegToRad);

@@ -136,7 +136,7 @@ SpectrumResult fit_spectrum(const std::vector<BandFlux>& bands, const SpectraOpt
       w.push_back(wi);
       y.push_back(std::log(d.s));
     }
-    // Reference frequency: weighted logarithmic mean (CONVENTIONS.md "Spectra").
+    // Reference frequency: weighted logarithmic mean (docs/CONVENTIONS.md "Spectra").
     const double ln_nu0 = swx / sw;
     r.ref_freq_hz = std::exp(ln_nu0);
     for (const Det& d : det) x.push_back(std::log(d.nu) - ln_nu0);

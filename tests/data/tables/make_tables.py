@@ -1,4 +1,4 @@
-"""Writes the reference tables of tests/table/foreign_formats_test.cpp with astropy
+"""Writes the reference tables of tests/io/foreign_formats_test.cpp with astropy
 (Debian's python3-astropy 5.2.1): a VOTable in each serialisation, one with two
 TABLEs, and ECSV with space and comma delimiters. Run from this folder:
     /usr/bin/python3 make_tables.py

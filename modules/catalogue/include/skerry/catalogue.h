@@ -162,7 +162,7 @@ std::vector<CatalogueSource> group_sources(const std::vector<CatalogueComponent>
 /// True when the island counts as "diffuse" under `options` (rule above).
 bool island_is_diffuse(const CatalogueIsland& island, const GroupingOptions& options);
 
-/// Error of an island's pixel-sum flux density [Jy], CONVENTIONS "Noise":
+/// Error of an island's pixel-sum flux density [Jy], docs/CONVENTIONS.md "Noise":
 ///   sigma_S = sqrt(sum_i sum_j s_i s_j rho_ij) / Omega_beam_pix,
 /// the sums over the island's pixels (in_island != 0 and rms finite), s the
 /// local rms [Jy/beam], rho_ij = exp(-1/2 d^T C^-1 d) the beam-shaped noise

@@ -168,7 +168,7 @@ struct FluxRatioSummary {
 };
 
 /// Flux ratio of matched pairs, S_A / (S_B (nu_A / nu_B)^alpha) with S ∝ nu^alpha
-/// (CONVENTIONS.md sign). Pairs with non-finite or non-positive flux are skipped.
+/// (docs/CONVENTIONS.md sign). Pairs with non-finite or non-positive flux are skipped.
 /// freq_a_hz / freq_b_hz <= 0 or equal: no spectral correction.
 FluxRatioSummary flux_ratio_summary(const std::vector<double>& flux_a, const std::vector<double>& flux_b,
                                     const std::vector<MatchPair>& pairs, double freq_a_hz, double freq_b_hz,

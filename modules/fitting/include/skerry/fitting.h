@@ -15,7 +15,7 @@
 /// towards +y. After the fit each component is normalised so that sa >= sb
 /// (sigma_major_pix >= sigma_minor_pix) and t in [0, pi).
 ///
-/// Errors (CONVENTIONS.md "Fitting and errors"): the fit is weighted pixel by
+/// Errors (docs/CONVENTIONS.md "Fitting and errors"): the fit is weighted pixel by
 /// pixel with W = 1/rms^2; the covariance is the sandwich
 ///   V = (J^T W J)^-1 J^T W C W J (J^T W J)^-1,   C_ij = s_i s_j rho(d_ij),
 /// with the beam-shaped noise correlation rho(d) = exp(-d^T C_beam^-1 d / 2)
@@ -78,7 +78,7 @@ struct FitOptions {
   /// rms. The island's highest maximum always starts one.
   double prominence_snr = 3.0;
   /// Lower bound on both fitted sigmas, as a fraction of the beam's minor-axis
-  /// sigma in the pixel frame (CONVENTIONS: fitted sizes may go below the beam).
+  /// sigma in the pixel frame (docs/CONVENTIONS.md: fitted sizes may go below the beam).
   double min_size_beam_fraction = 0.5;
   /// Fit only amplitude and position, the shape fixed to the beam.
   bool fix_shape_to_beam = false;
@@ -174,7 +174,7 @@ struct IslandFit {
 /// prominent maxima) are compared by
 ///   BIC_eff = chi2 / Omega_beam_pix + n_par ln(N_pix / Omega_beam_pix),
 /// the Bayesian information criterion (Schwarz 1978, Ann. Stat. 6, 461) with the
-/// number of effectively independent pixels N_pix / Omega_beam_pix (CONVENTIONS
+/// number of effectively independent pixels N_pix / Omega_beam_pix (docs/CONVENTIONS.md
 /// "Noise") and chi2 scaled to it; the lowest wins; (5) covariance per
 /// error_model. A fit is unusable on numerical failure or when a component's
 /// amplitude dies on its bound; with no usable fit the island gets one
@@ -233,7 +233,7 @@ struct SkyOptions {
   /// Astrometric floor added in quadrature to RA and Dec errors [arcsec].
   double astrometric_floor_arcsec = 0.0;
   /// Unresolved when the fitted size is within this many of its own errors of the
-  /// beam along an axis (CONVENTIONS: about two), or not positive definite.
+  /// beam along an axis (docs/CONVENTIONS.md: about two), or not positive definite.
   double unresolved_nsigma = 2.0;
   /// Resolved by S_int/S_peak > 1 + a SNR^-b (SNR = peak / local rms). Default:
   /// for a beam-sized component Condon (1997) gives sigma(ln S_int/S_peak) =

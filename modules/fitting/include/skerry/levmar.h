@@ -117,7 +117,7 @@ bool lm_covariance(const Eigen::MatrixXd& jac, Eigen::MatrixXd& cov,
 /// correlation matrix R (R_ij = rho_ij = C_ij / (s_i s_j)):
 ///   V = (J^T J)^-1 (J^T R J) (J^T J)^-1,
 /// which with J the whitened Jacobian is (J^T W J)^-1 J^T W C W J (J^T W J)^-1 for the
-/// raw Jacobian (White 1980, Econometrica 48, 817; CONVENTIONS "Fitting and errors").
+/// raw Jacobian (White 1980, Econometrica 48, 817; docs/CONVENTIONS.md "Fitting and errors").
 /// `meat` is J^T R J supplied by the caller (it knows R's structure).
 bool lm_sandwich_covariance(const Eigen::MatrixXd& jac, const Eigen::MatrixXd& meat,
                             Eigen::MatrixXd& cov,

@@ -10,10 +10,10 @@
 /// whose model footprints overlap (within `blend_radius_sigma`) form one group
 /// fitted together by linear weighted least squares, weights 1/rms^2 from the rms
 /// map. Integrated flux density S_k = a_k sqrt(det C_conv / det C_beam) =
-/// a_k (M m)/(b_M b_m) (CONVENTIONS.md "Fitting").
+/// a_k (M m)/(b_M b_m) (docs/CONVENTIONS.md "Fitting and errors").
 ///
 /// Error: the noise of a restored image is correlated with the beam's shape
-/// (CONVENTIONS.md "Noise"), so the covariance of the weighted least-squares
+/// (docs/CONVENTIONS.md "Noise"), so the covariance of the weighted least-squares
 /// amplitudes is the sandwich form (G^T W G)^-1 G^T W N W G (G^T W G)^-1 (N the
 /// pixel noise covariance). G^T W G is summed over the pixels; G^T W N W G is
 /// evaluated in closed form in the continuous limit (pixel units):

@@ -2,7 +2,7 @@
 /// Islands: connected regions of significant emission, found with hysteresis
 /// thresholds in signal-to-noise.
 ///
-///   snr(x, y) = (I - B) / rms          (island SNR convention, CONVENTIONS.md)
+///   snr(x, y) = (I - B) / rms          (island SNR convention, docs/CONVENTIONS.md)
 ///
 /// A pixel is a seed when snr >= peak threshold and belongs to the foreground
 /// when snr >= grow threshold; an island is an 8-connected component of

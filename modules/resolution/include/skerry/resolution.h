@@ -108,7 +108,7 @@ struct ReprojectOptions {
 
 /// Regrid an image onto a target grid (nx x ny pixels described by `target`).
 /// Values are Jy/beam and are interpolated without a pixel-area factor
-/// (CONVENTIONS.md "Spectra": a surface brightness per beam does not depend on
+/// (docs/CONVENTIONS.md "Spectra": a surface brightness per beam does not depend on
 /// the pixel size). Pixels that map outside the source image are NaN. Parallel
 /// over rows; independent of the thread count.
 ImageF reproject(const ImageF& source, const PixelSky& source_wcs, const PixelSky& target_wcs,

@@ -22,7 +22,7 @@
 /// in source order; so images and truth are bit-identical for any thread count
 /// (oneTBB) and on reruns with the same seed.
 ///
-/// Conventions (CONVENTIONS.md): pixels 0-based (x, y) = (column, row); sizes are
+/// Conventions (docs/CONVENTIONS.md): pixels 0-based (x, y) = (column, row); sizes are
 /// FWHM; PA east of north; S proportional to nu^alpha; curvature in base 10:
 ///   log10(S(nu)/S_ref) = alpha log10(nu/nu_ref) + curvature [log10(nu/nu_ref)]^2.
 /// Pure computation: no files, no headers.
@@ -237,7 +237,7 @@ std::vector<BandSource> add_sources(ImageD& image, const PixelSky& sky,
 
 /// Gaussian noise of rms `rms` whose autocorrelation is the beam:
 ///   <n(p) n(p + d)> = rms^2 exp(-0.5 d^T C_beam_pix^-1 d)
-/// (exp(-4 ln 2 r^2 / theta^2) along each axis; CONVENTIONS.md "Noise"). It is
+/// (exp(-4 ln 2 r^2 / theta^2) along each axis; docs/CONVENTIONS.md "Noise"). It is
 /// white noise convolved with a Gaussian kernel of covariance C_beam_pix / 2
 /// (FWHMs / sqrt 2, same PA), done in the Fourier domain: complex white noise
 /// times the kernel's analytic transfer function exp(-pi^2 k^T C_beam_pix k)

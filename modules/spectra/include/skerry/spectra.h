@@ -2,7 +2,7 @@
 /// Radio spectra of one source from flux densities in several bands: power-law
 /// spectral index, log-parabola curvature, limits.
 ///
-/// Conventions (CONVENTIONS.md "Spectra"):
+/// Conventions (docs/CONVENTIONS.md "Spectra"):
 ///  - S proportional to nu^alpha (steep spectra have negative alpha).
 ///  - All logarithms here are NATURAL. The curvature q is the coefficient of the
 ///    natural-log parabola  ln S = ln S0 + alpha0 ln(nu/nu0) + q [ln(nu/nu0)]^2 ;

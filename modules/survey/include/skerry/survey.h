@@ -23,7 +23,7 @@
 ///  3. Designations in the IAU-recommended style, PREFIX JHHMMSS.s+DDMMSS, from
 ///     the position truncated, never rounded (IAU Commission 5 "Specifications
 ///     concerning designations for astronomical radiation sources", common
-///     practice in survey catalogues; CONVENTIONS "Catalogues and names").
+///     practice in survey catalogues; docs/CONVENTIONS.md "Catalogues and names").
 #include <cstdint>
 #include <string>
 #include <vector>

@@ -1,0 +1,243 @@
+// Outputs: every file re-read by an independent reader (astropy, Debian's
+// python3-astropy, including its VOTable validation and the UCD1+ controlled
+// vocabulary), the run record, byte-identical results for 1, 2 and 8 threads,
+// and the documented configuration file equal to the built-in defaults.
+#include <gtest/gtest.h>
+
+#include <nlohmann/json.hpp>
+
+#include "extract_helpers.h"
+
+namespace skerry::test {
+namespace {
+
+const Beam kBeam{7.0, 5.0, 30.0};
+
+/// File bytes with the values and comments of the CHECKSUM and DATASUM cards of
+/// FITS files blanked: CFITSIO's fits_write_chksum (used by the FITS table
+/// writer) puts the current date into their comments, so those two cards differ
+/// between any two runs; every other byte must be identical.
+std::string comparable_bytes(const std::string& path) {
+  std::string b = slurp(path);
+  if (!path.ends_with(".fits")) return b;
+  for (const char* key : {"CHECKSUM= ", "DATASUM = "})
+    for (std::size_t pos = b.find(key); pos != std::string::npos; pos = b.find(key, pos + 1))
+      if (pos % 80 == 0) std::fill(b.begin() + static_cast<long>(pos) + 8, b.begin() + static_cast<long>(pos) + 80, ' ');
+  return b;
+}
+
+/// A 512^2 field of the simulator's sky: points, resolved sources, close doubles.
+std::string write_field(const TempDir& tmp, std::uint64_t seed) {
+  const long n = 512;
+  const GridSpec g = lanternfish_grid(n, 1.0, kBeam);
+  SkyImage im = make_sky_image(g, ImageF::Zero(n, n), "Lanternfish Field (simulated)");
+  sim::SkyModelOptions so;
+  so.footprint = im.wcs.get();
+  so.footprint_nx = n;
+  so.footprint_ny = n;
+  so.count = 150;
+  so.s_min_jy = 5e-4;
+  so.s_max_jy = 0.05;
+  so.resolved_fraction = 0.3;
+  so.double_fraction = 0.2;
+  so.unit_beam = kBeam;
+  const sim::SkyModel model = sim::draw_sky_model(so, seed);
+  sim::BandOptions bo;
+  bo.nx = bo.ny = n;
+  bo.beam = kBeam;
+  bo.rms_jy_per_beam = 1e-4;
+  const sim::BandImage band = sim::simulate_band(model, *im.wcs, bo, seed);
+  const std::string path = tmp / "field.fits";
+  write_fits_image(path, band.image, im);
+  return path;
+}
+
+// Independent reader: astropy (FITS binary table, VOTable 1.4 parser with
+// verify='exception', UCD1+ controlled vocabulary of IVOA UCD1+ 1.6, REF-VO-02).
+TEST(Outputs, AstropyReadsEveryTable) {
+  TempDir tmp("astropy");
+  const std::string img = write_field(tmp, 11);
+  const RunResult r = run_skerry({"extract", img, "--out", tmp / "out"}, tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  const Table csv = read_table(tmp / "out/field.components.csv");
+  ASSERT_GT(csv.rows(), 50u);
+  const std::string script = tmp / "check.py";
+  std::ofstream(script) << R"PY(
+import sys, warnings
+import numpy as np
+from astropy.table import Table
+from astropy.io import votable
+from astropy.io.votable import ucd as vucd
+d = sys.argv[1]
+ok = True
+def fail(msg):
+    global ok
+    ok = False
+    print("FAIL", msg)
+for kind in ("components", "sources"):
+    csv = Table.read(f"{d}/field.{kind}.csv", format="ascii.csv")
+    fit = Table.read(f"{d}/field.{kind}.fits")
+    if len(fit) != len(csv): fail(f"{kind}: FITS rows {len(fit)} != CSV rows {len(csv)}")
+    if list(fit.colnames) != list(csv.colnames): fail(f"{kind}: column names differ")
+    if str(fit["ra_deg"].unit) != "deg": fail(f"{kind}: ra_deg unit {fit['ra_deg'].unit}")
+    if str(fit["s_int_jy"].unit) != "Jy": fail(f"{kind}: s_int_jy unit {fit['s_int_jy'].unit}")
+    for c in ("ra_deg", "dec_deg", "s_int_jy"):
+        if not np.allclose(np.asarray(fit[c], float), np.asarray(csv[c], float), rtol=0, atol=0, equal_nan=True):
+            fail(f"{kind}: {c} differs between FITS and CSV")
+for kind in ("components", "islands", "sources"):
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        vt = votable.parse(f"{d}/field.{kind}.vot", verify="exception")
+    tab = vt.get_first_table()
+    csv = Table.read(f"{d}/field.{kind}.csv", format="ascii.csv")
+    if len(tab.array) != len(csv): fail(f"{kind}: VOTable rows differ")
+    for f in tab.fields:
+        if not f.ucd: fail(f"{kind}.{f.name}: no UCD"); continue
+        try:
+            vucd.parse_ucd(f.ucd, check_controlled_vocabulary=True, has_colon=False)
+        except Exception as e:
+            fail(f"{kind}.{f.name}: UCD {f.ucd!r}: {e}")
+        if not f.description: fail(f"{kind}.{f.name}: no description")
+    for c in ("ra_deg",) if kind != "islands" else ("peak_ra_deg",):
+        a = np.asarray(tab.array[c], float); b = np.asarray(csv[c], float)
+        if not np.array_equal(a, b): fail(f"{kind}: {c} differs between VOTable and CSV")
+print("OK" if ok else "FAILED")
+sys.exit(0 if ok else 1)
+)PY";
+  const RunResult py = run_args({python3(), script, tmp / "out"}, tmp.path());
+  EXPECT_EQ(py.code, 0) << py.out << py.err;
+  EXPECT_NE(py.out.find("OK"), std::string::npos) << py.out << py.err;
+}
+
+// The run record: JSON, the resolved configuration, and the input checksum equal
+// to SHA-256 computed by Python's hashlib (FIPS PUB 180-4; independent code).
+TEST(Outputs, RunRecord) {
+  TempDir tmp("record");
+  const std::string img = write_field(tmp, 12);
+  const RunResult r = run_skerry({"extract", img, "--out", tmp / "out", "--detect.peak_snr", "6"}, tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  // One plain summary line when not on a terminal.
+  EXPECT_EQ(std::count(r.out.begin(), r.out.end(), '\n'), 1) << r.out;
+  EXPECT_NE(r.out.find("components"), std::string::npos) << r.out;
+  EXPECT_EQ(r.err, "") << "no progress output when stderr is not a terminal";
+  const auto j = nlohmann::json::parse(slurp(tmp / "out/field.run.json"));
+  EXPECT_EQ(j["configuration"]["detect.peak_snr"], "6");
+  EXPECT_EQ(j["configuration"]["detect.grow_snr"], "3");
+  ASSERT_EQ(j["inputs"].size(), 1u);
+  const RunResult py = run_args({python3(), "-c",
+                                 "import hashlib,sys; print(hashlib.sha256(open(sys.argv[1],'rb').read()).hexdigest())",
+                                 img},
+                                tmp.path());
+  ASSERT_EQ(py.code, 0) << py.err;
+  EXPECT_EQ(j["inputs"][0]["sha256"].get<std::string>() + "\n", py.out);
+  const Table comps = read_table(tmp / "out/field.components.csv");
+  EXPECT_EQ(j["counts"]["components"].get<std::int64_t>(), static_cast<std::int64_t>(comps.rows()));
+  std::vector<std::string> stages;
+  for (const auto& s : j["stages"]) stages.push_back(s["stage"]);
+  for (const char* s : {"read", "noise_pass1", "islands_pass1", "noise_pass2", "islands", "fit", "catalogue", "write"})
+    EXPECT_NE(std::find(stages.begin(), stages.end(), s), stages.end()) << "stage " << s;
+  EXPECT_TRUE(j.contains("host"));
+  EXPECT_TRUE(j.contains("started_utc"));
+  // Time stamps and host names only in the run record (docs/CONVENTIONS.md "Determinism").
+  const std::string host = j["host"];
+  for (const auto& f : list_files(tmp / "out")) {
+    if (f.ends_with(".run.json")) continue;
+    const std::string bytes = slurp(tmp / ("out/" + f));
+    if (host.size() > 3) {
+      EXPECT_EQ(bytes.find(host), std::string::npos) << f << " holds the host name";
+    }
+  }
+}
+
+// docs/CONVENTIONS.md "Determinism": byte-identical catalogues and images for any thread
+// count (the run record differs: timings, thread count).
+TEST(Outputs, ResidualIsImageMinusModelWithTheBackgroundKept) {
+  // The documented definition (README, "What skerry extract writes"): residual =
+  // image - model, where the model is the sum of the fitted Gaussians and the
+  // background stays in the residual. A smooth 0.3 mJy/beam background (3 x the
+  // rms) is added to the field so that the two candidate definitions differ.
+  TempDir tmp("residual");
+  const std::string img = write_field(tmp, 21);
+  SkyImage sky = read_sky_image(img);
+  const long n = sky.pixels.cols();
+  for (long y = 0; y < n; ++y)
+    for (long x = 0; x < n; ++x) sky.pixels(y, x) += 3e-4f * (1.0f + 0.2f * std::sin(0.01f * static_cast<float>(x + y)));
+  write_fits_image(img, sky.pixels, sky);
+  const RunResult r = run_skerry({"extract", img, "--out", tmp / "out"}, tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  const SkyImage im = read_sky_image(img);
+  const ImageF res = read_sky_image(tmp / "out/field.residual.fits").pixels;
+  const ImageF mod = read_sky_image(tmp / "out/field.model.fits").pixels;
+  const ImageF bg = read_sky_image(tmp / "out/field.background.fits").pixels;
+  double worst = 0.0, mean_res = 0.0, mean_bg = 0.0, model_sum = 0.0;
+  for (Eigen::Index i = 0; i < im.pixels.size(); ++i) {
+    // float32 image - float32 model, rounded once: exact to half an ulp of the image.
+    worst = std::max(worst, std::fabs(static_cast<double>(res.data()[i]) -
+                                      (static_cast<double>(im.pixels.data()[i]) - mod.data()[i])) /
+                                (std::fabs(static_cast<double>(im.pixels.data()[i])) + 1e-12));
+    mean_res += res.data()[i];
+    mean_bg += bg.data()[i];
+    model_sum += mod.data()[i];
+  }
+  mean_res /= static_cast<double>(im.pixels.size());
+  mean_bg /= static_cast<double>(im.pixels.size());
+  EXPECT_LT(worst, 1e-6);
+  EXPECT_GT(model_sum, 0.0) << "no model: the check above would be trivial";
+  EXPECT_NEAR(mean_res, mean_bg, 0.2 * mean_bg) << "the residual should keep the background";
+  EXPECT_GT(mean_bg, 2.5e-4) << "the background map should hold the added 0.3 mJy/beam";
+
+  // The report, when the input image is gone, rebuilds it as residual + model.
+  fs::remove(img);
+  const RunResult rep = run_skerry({"report", tmp / "out"}, tmp.path());
+  ASSERT_EQ(rep.code, 0) << rep.err;
+  const std::string html = slurp(tmp / "out/field.report.html");
+  EXPECT_NE(html.find("Residual (image - model)"), std::string::npos);
+  EXPECT_NE(html.find("Image with fitted components"), std::string::npos) << "image not rebuilt from residual + model";
+}
+
+TEST(Outputs, IdenticalForAnyThreadCount) {
+  TempDir tmp("threads");
+  const std::string img = write_field(tmp, 13);
+  std::vector<std::string> ref_files;
+  for (const char* th : {"1", "2", "8"}) {
+    const std::string out = tmp / (std::string("out") + th);
+    const RunResult r = run_skerry({"extract", img, "--out", out, "--threads", th}, tmp.path());
+    ASSERT_EQ(r.code, 0) << r.err;
+    const auto files = list_files(out);
+    if (ref_files.empty()) {
+      ref_files = files;
+      EXPECT_GE(files.size(), 14u);
+      continue;
+    }
+    EXPECT_EQ(files, ref_files);
+    for (const auto& f : files) {
+      if (f.ends_with(".run.json")) continue;
+      EXPECT_TRUE(comparable_bytes(out + "/" + f) == comparable_bytes(tmp / ("out1/" + f)))
+          << f << " differs with " << th << " threads";
+    }
+  }
+}
+
+// configs/extract.ini documents every option with its default: running with it
+// must give the same bytes as running without it.
+TEST(Outputs, DocumentedConfigIsTheDefault) {
+  TempDir tmp("config");
+  const std::string img = write_field(tmp, 14);
+  RunResult r = run_skerry({"extract", img, "--out", tmp / "a"}, tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  r = run_skerry({"extract", img, "--out", tmp / "b", "--config", std::string(SKERRY_SOURCE_DIR) + "/configs/extract.ini"},
+                 tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  auto ja = nlohmann::json::parse(slurp(tmp / "a/field.run.json"));
+  auto jb = nlohmann::json::parse(slurp(tmp / "b/field.run.json"));
+  ja["configuration"].erase("out");
+  jb["configuration"].erase("out");
+  EXPECT_EQ(ja["configuration"], jb["configuration"]);
+  for (const auto& f : list_files(tmp / "a")) {
+    if (f.ends_with(".run.json")) continue;
+    EXPECT_TRUE(comparable_bytes(tmp / ("a/" + f)) == comparable_bytes(tmp / ("b/" + f))) << f;
+  }
+}
+
+}  // namespace
+}  // namespace skerry::test

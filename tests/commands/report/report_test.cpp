@@ -1,0 +1,228 @@
+// skerry report / skerry completeness end to end: a simulated run folder, the page
+// loaded in a real headless browser, its numbers against direct counts, bad input,
+// completeness on pure correlated noise.
+#include <gtest/gtest.h>
+
+#include <cmath>
+#include <cstdlib>
+#include <filesystem>
+#include <fstream>
+#include <map>
+#include <regex>
+#include <sstream>
+#include <string>
+
+#include "io/fits_image.h"
+#include "io/table_io.h"
+#include "skerry/plot.h"
+#include "skerry_test_support.h"
+
+namespace fs = std::filesystem;
+
+namespace skerry {
+namespace {
+
+struct Cmd { int code; std::string out, err; };
+
+using test::slurp;
+
+Cmd run(const std::string& args, const fs::path& tmp) {
+  const std::string o = (tmp / "cmd.out").string(), e = (tmp / "cmd.err").string();
+  const int rc = test::shell(args + " >" + o + " 2>" + e + " </dev/null");
+  return {rc, slurp(o), slurp(e)};
+}
+
+std::string skerry() { return test::skerry_binary(); }
+
+fs::path fresh_dir(const std::string& name) {
+  const fs::path d = fs::temp_directory_path() / ("skerry_report_test_" + name + "_" + std::to_string(::getpid()));
+  fs::remove_all(d);
+  fs::create_directories(d);
+  return d;
+}
+
+// One simulated band of the invented Lanternfish Field: 768 x 768 pixels of 1.5", one
+// band at 1400 MHz, no primary beam, no background; `extra` adds options.
+void simulate(const fs::path& dir, const std::string& extra) {
+  const Cmd c = run(skerry() + " simulate --out " + dir.string() + " --bands.freqs_mhz 1400 --noise.rms_jy_per_beam 2e-5"
+                    " --field.size_pix 768 --primary_beam.fwhm_deg 0 --background.amplitude_jy_per_beam 0"
+                    " --bands.crpix_shift_pix 0 --output.name field " + extra, dir);
+  ASSERT_EQ(c.code, 0) << c.err;
+}
+
+std::vector<std::vector<double>> html_table(const std::string& html, const std::string& id) {
+  std::vector<std::vector<double>> rows;
+  const auto a = html.find("id=\"" + id + "\"");
+  if (a == std::string::npos) return rows;
+  const auto b = html.find("</table>", a);
+  const std::string t = html.substr(a, b - a);
+  std::regex tr("<tr>(.*?)</tr>"), td("<td>([^<]*)</td>");
+  for (std::sregex_iterator it(t.begin(), t.end(), tr), end; it != end; ++it) {
+    const std::string r = (*it)[1];
+    std::vector<double> v;
+    for (std::sregex_iterator jt(r.begin(), r.end(), td); jt != end; ++jt) v.push_back(std::stod((*jt)[1]));
+    if (!v.empty()) rows.push_back(v);
+  }
+  return rows;
+}
+
+class ReportRun : public ::testing::Test {
+ protected:
+  static void SetUpTestSuite() {
+    dir_ = fresh_dir("run");
+    simulate(dir_, "--sources.count 300 --sources.slope 2.5 --sources.s_min_jy 1e-4 --sources.s_max_jy 0.05");
+    const Cmd e = run(skerry() + " extract " + (dir_ / "field_1400MHz.fits").string() + " --out " + (dir_ / "run").string(), dir_);
+    ASSERT_EQ(e.code, 0) << e.err;
+    const Cmd r = run(skerry() + " report " + (dir_ / "run").string(), dir_);
+    ASSERT_EQ(r.code, 0) << r.err;
+    page_ = dir_ / "run" / "field_1400MHz.report.html";
+    html_ = slurp(page_);
+  }
+  static void TearDownTestSuite() { fs::remove_all(dir_); }
+  static fs::path dir_, page_;
+  static std::string html_;
+};
+fs::path ReportRun::dir_, ReportRun::page_;
+std::string ReportRun::html_;
+
+TEST_F(ReportRun, SelfContained) {
+  ASSERT_FALSE(html_.empty());
+  EXPECT_EQ(html_.find("<script"), std::string::npos);  // no JavaScript at all
+  EXPECT_EQ(html_.find("http://"), html_.find("http://www.w3.org/2000/svg"));  // only the SVG namespace name
+  EXPECT_EQ(html_.find("https://"), std::string::npos);
+  EXPECT_NE(html_.find("data:image/png;base64,"), std::string::npos);
+}
+
+TEST_F(ReportRun, CountsMatchDirectCountOfCatalogue) {
+  // A source counts by the sum over its components of the peak (unresolved) or the
+  // integrated flux density (resolved): computed here from the two tables directly.
+  const Table s = read_table((dir_ / "run" / "field_1400MHz.sources.csv").string());
+  const Table c = read_table((dir_ / "run" / "field_1400MHz.components.csv").string());
+  std::map<std::int64_t, double> by_source;
+  std::size_t n_resolved = 0, n_unresolved = 0;
+  for (std::size_t i = 0; i < c.rows(); ++i) {
+    const bool res = c.at("resolved").i64[i] != 0;
+    (res ? n_resolved : n_unresolved)++;
+    by_source[c.at("source_id").i64[i]] += res ? c.at("s_int_jy").f64[i] : c.at("s_peak_jy_per_beam").f64[i];
+  }
+  EXPECT_GT(n_resolved, 0u);
+  EXPECT_GT(n_unresolved, 0u);
+  std::vector<double> f;
+  for (std::size_t i = 0; i < s.rows(); ++i) f.push_back(by_source.at(s.at("source_id").i64[i]));
+  const auto rows = html_table(html_, "counts-table");
+  ASSERT_GE(rows.size(), 3u);
+  std::size_t total = 0;
+  for (const auto& r : rows) {
+    ASSERT_EQ(r.size(), 8u);
+    std::size_t n = 0;
+    for (double v : f) if (v >= r[0] && v < r[1]) ++n;  // direct count in [lo, hi)
+    EXPECT_EQ(static_cast<std::size_t>(r[3]), n) << "bin " << r[0];
+    total += n;
+    // Definition (common practice): S_c^2.5 N / (A dS), S_c = sqrt(lo hi).
+    if (r[4] == 0) {
+      EXPECT_TRUE(std::isnan(r[5])) << "no visibility area: no value";  // sources below every pixel's threshold
+    } else if (n > 0) {
+      EXPECT_NEAR(r[5], std::pow(std::sqrt(r[0] * r[1]), 2.5) * n / (r[4] * (r[1] - r[0])), 1e-5 * r[5]);
+    }
+  }
+  EXPECT_GT(total, 50u);
+}
+
+TEST_F(ReportRun, VisibilityAreaMatchesRmsMap) {
+  ImageReadOptions ro;
+  ro.require_beam = false;
+  const SkyImage rms = read_sky_image((dir_ / "run" / "field_1400MHz.rms.fits").string(), ro);
+  // Pixel solid angle at the tangent point: |CDELT1 CDELT2| (FITS WCS Paper II, SIN at the
+  // reference point); 1.5" pixels of the simulation.
+  const double pix_sr = std::pow(1.5 / 206264.80624709636, 2);
+  const auto rows = html_table(html_, "visibility-table");
+  ASSERT_GE(rows.size(), 5u);
+  for (const auto& r : rows) {
+    std::size_t n = 0;
+    for (Eigen::Index i = 0; i < rms.pixels.size(); ++i)
+      if (std::isfinite(rms.pixels.data()[i]) && rms.pixels.data()[i] <= static_cast<float>(r[0])) ++n;
+    // 1e-4: the pixel area off the tangent point; one pixel: a pixel at the printed
+    // (rounded) rms value may fall on either side of it.
+    EXPECT_NEAR(r[1], n * pix_sr, 1e-4 * n * pix_sr + 1e-6 * r[1] + 1.01 * pix_sr) << "rms " << r[0];
+  }
+  EXPECT_NEAR(rows.back()[1], static_cast<double>(rms.pixels.size()) * pix_sr, 1e-4 * rows.back()[1]);
+}
+
+TEST_F(ReportRun, RendersInHeadlessBrowser) {
+  const char* req = std::getenv("SKERRY_REQUIRE_BROWSER");
+  const bool required = req && std::string(req) == "1";
+  std::string browser;
+  for (const char* b : {"/usr/bin/chromium", "/usr/bin/chromium-browser"}) if (fs::exists(b)) { browser = b; break; }
+  if (browser.empty()) {
+    if (required) FAIL() << "chromium not found but SKERRY_REQUIRE_BROWSER=1";
+    GTEST_SKIP() << "chromium not installed: the page was not rendered (install chromium, or set SKERRY_REQUIRE_BROWSER=1 to fail)";
+  }
+  const fs::path prof = dir_ / "profile";
+  const std::string flags = " --headless --no-sandbox --disable-gpu --disable-quic --no-first-run --disable-background-networking"
+                            " --disable-component-update --disable-sync --user-data-dir=" + prof.string() +
+                            " --window-size=1400,4000 ";
+  const fs::path png = dir_ / "page.png";
+  const Cmd shot = run(browser + flags + "--screenshot=" + png.string() + " file://" + page_.string(), dir_);
+  ASSERT_EQ(shot.code, 0) << shot.err;
+  ASSERT_TRUE(fs::exists(png)) << shot.err;
+  const Cmd dom = run(browser + flags + "--dump-dom file://" + page_.string(), dir_);
+  ASSERT_EQ(dom.code, 0) << dom.err;
+  // The browser parsed the page into the expected elements.
+  for (const char* id : {"img-image", "img-residual", "img-rms", "plot-counts", "plot-visibility", "plot-rms-hist",
+                         "plot-ratio", "plot-fluxerr", "provenance", "counts-table"})
+    EXPECT_NE(dom.out.find(std::string("id=\"") + id + "\""), std::string::npos) << id;
+  EXPECT_NE(dom.out.find("</html>"), std::string::npos);
+  EXPECT_EQ(dom.out.find("This page isn"), std::string::npos);  // no browser error page
+  // The screenshot is not blank: pixel variance well above zero.
+  const std::string bytes = slurp(png);
+  const plot::Raster r = plot::decode_png(std::vector<std::uint8_t>(bytes.begin(), bytes.end()));
+  ASSERT_GT(r.width, 100);
+  double s = 0, s2 = 0;
+  for (auto v : r.rgb) { s += v; s2 += double(v) * v; }
+  const double n = static_cast<double>(r.rgb.size()), var = s2 / n - (s / n) * (s / n);
+  EXPECT_GT(var, 100.0) << "screenshot looks blank";
+}
+
+TEST(ReportBadInput, FolderWithoutRun) {
+  const fs::path d = fresh_dir("empty");
+  const Cmd c = run(skerry() + " report " + d.string(), d);
+  EXPECT_EQ(c.code, 3);
+  EXPECT_NE(c.err.find("no run found"), std::string::npos) << c.err;
+  EXPECT_EQ(c.err.find('\n'), c.err.size() - 1) << "one line: " << c.err;
+  const Cmd m = run(skerry() + " report " + (d / "nope").string(), d);
+  EXPECT_EQ(m.code, 3);
+  EXPECT_NE(m.err.find("not a folder"), std::string::npos) << m.err;
+  fs::remove_all(d);
+}
+
+TEST(ReportBadInput, MissingAndEmptyCatalogue) {
+  const fs::path d = fresh_dir("nocat");
+  simulate(d, "--sources.count 0");
+  const Cmd e = run(skerry() + " extract " + (d / "field_1400MHz.fits").string() + " --out " + (d / "run").string(), d);
+  ASSERT_TRUE(e.code == 0 || e.code == 8) << e.err;
+  const fs::path runp = d / "run";
+  // Pure noise at 5 sigma over 768^2 pixels may yield a false detection or two: empty the catalogue.
+  std::string header = slurp(runp / "field_1400MHz.components.csv");
+  header = header.substr(0, header.find('\n') + 1);
+  { std::ofstream(runp / "field_1400MHz.components.csv") << header; }
+  fs::remove(runp / "field_1400MHz.sources.csv");
+  Cmd c = run(skerry() + " report " + runp.string(), d);
+  EXPECT_EQ(c.code, 8) << c.err;
+  EXPECT_NE(c.err.find("catalogue is empty"), std::string::npos) << c.err;
+  std::string html = slurp(runp / "field_1400MHz.report.html");
+  EXPECT_NE(html.find("is empty: nothing was detected"), std::string::npos);
+  EXPECT_NE(html.find("id=\"warnings\""), std::string::npos);
+  for (const auto& ent : fs::directory_iterator(runp)) {
+    const std::string f = ent.path().filename().string();
+    if (f.find(".components.") != std::string::npos) fs::remove(ent.path());
+  }
+  c = run(skerry() + " report " + runp.string(), d);
+  EXPECT_EQ(c.code, 3) << c.err;
+  EXPECT_NE(c.err.find("no component catalogue"), std::string::npos) << c.err;
+  html = slurp(runp / "field_1400MHz.report.html");
+  EXPECT_NE(html.find("no component catalogue field_1400MHz.components.csv"), std::string::npos);
+  fs::remove_all(d);
+}
+
+}  // namespace
+}  // namespace skerry
