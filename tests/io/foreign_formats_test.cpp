@@ -1,7 +1,7 @@
 // Catalogue files written by another library (astropy 5.2.1, Debian's
 // python3-astropy; tests/data/tables/README.md) read by skerry's readers: VOTable
 // TABLEDATA, BINARY and BINARY2 (IVOA VOTable 1.4, section 5; docs/REFERENCES.md
-// REF-VOTABLE), a VOTable with two TABLEs chosen by index or name, and ECSV 1.0
+// REF-VO-01), a VOTable with two TABLEs chosen by index or name, and ECSV 1.0
 // (REF-ECSV) with space and comma delimiters. The expected values are those
 // make_tables.py gave astropy.
 #include <gtest/gtest.h>
