@@ -166,9 +166,9 @@ TEST(Outputs, ResidualIsImageMinusModelWithTheBackgroundKept) {
   const RunResult r = run_skerry({"extract", img, "--out", tmp / "out"}, tmp.path());
   ASSERT_EQ(r.code, 0) << r.err;
   const SkyImage im = read_sky_image(img);
-  const ImageF res = read_sky_image(tmp / "out/field.residual.fits").pixels;
-  const ImageF mod = read_sky_image(tmp / "out/field.model.fits").pixels;
-  const ImageF bg = read_sky_image(tmp / "out/field.background.fits").pixels;
+  const ImageF res = read_sky_image(tmp / "out/field.residual_map.fits").pixels;
+  const ImageF mod = read_sky_image(tmp / "out/field.model_map.fits").pixels;
+  const ImageF bg = read_sky_image(tmp / "out/field.background_map.fits").pixels;
   double worst = 0.0, mean_res = 0.0, mean_bg = 0.0, model_sum = 0.0;
   for (Eigen::Index i = 0; i < im.pixels.size(); ++i) {
     // float32 image - float32 model, rounded once: exact to half an ulp of the image.
