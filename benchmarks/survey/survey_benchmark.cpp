@@ -196,7 +196,7 @@ void bench_disk_merge(std::size_t n_rows, int order, const std::string& work_roo
       ++n;
     }
   }
-  const std::vector<std::string> ints{"component_id", "island_id", "component", "source_id", "resolved", "flags"};
+  const std::vector<std::string> ints{"component_id", "island_id", "component", "source_id", "resolved", "flags", "info_bits"};
   const std::vector<std::string> floats{
       "ra_err_arcsec", "dec_err_arcsec", "x_pix1", "y_pix1", "s_peak_jy_per_beam", "s_peak_err_jy_per_beam",
       "s_int_jy", "s_int_err_jy", "maj_arcsec", "maj_err_arcsec", "min_arcsec", "min_err_arcsec", "pa_deg",
