@@ -8,8 +8,8 @@
 //     component table, as 64 tile result folders: wall time of each step on 2
 //     threads against the in-memory merge of the same tiles (the catalogues
 //     must be byte-identical: checked and printed), and, per partition, the
-//     wall time and peak RSS of a separate `skerry survey --partition-task`
-//     process (the Slurm task), and of the `--concat-job` process.
+//     wall time and peak RSS of a separate `skerry survey --partition_task`
+//     process (the Slurm task), and of the `--concat_job` process.
 //  3. A survey of T simulated tiles (default 64 of 2048 x 2048 pixels, 8 x 8
 //     grid, overlapping by about 10 %): `skerry survey` cold run, unchanged rerun,
 //     tiles per minute, merge time (from the merge summary), peak RSS of the
@@ -196,12 +196,12 @@ void bench_disk_merge(std::size_t n_rows, int order, const std::string& work_roo
       ++n;
     }
   }
-  const std::vector<std::string> ints{"component_id", "island_id", "component", "source_id", "resolved", "flags"};
+  const std::vector<std::string> ints{"component_id", "island_id", "component", "source_id", "resolved", "flags", "info_bits"};
   const std::vector<std::string> floats{
       "ra_err_arcsec", "dec_err_arcsec", "x_pix1", "y_pix1", "s_peak_jy_per_beam", "s_peak_err_jy_per_beam",
       "s_int_jy", "s_int_err_jy", "maj_arcsec", "maj_err_arcsec", "min_arcsec", "min_err_arcsec", "pa_deg",
-      "pa_err_deg", "dc_maj_arcsec", "dc_maj_err_arcsec", "dc_min_arcsec", "dc_min_err_arcsec", "dc_pa_deg",
-      "dc_pa_err_deg", "background_jy_per_beam", "rms_jy_per_beam", "snr", "chi2_red", "pb",
+      "pa_err_deg", "intrinsic_maj_arcsec", "intrinsic_maj_err_arcsec", "intrinsic_min_arcsec", "intrinsic_min_err_arcsec", "intrinsic_pa_deg",
+      "intrinsic_pa_err_deg", "background_jy_per_beam", "rms_jy_per_beam", "snr", "chi2_red", "pb",
       "s_peak_pbcor_jy_per_beam", "s_int_pbcor_jy", "s_int_pbcor_err_jy"};
   std::ofstream(work + "/survey.ini") << "[survey]\nname = bench\ntiles = none/*.fits\noutput = out\n"
                                          "catalogue = bench.components.csv\nmerge_in_memory_rows = 0\n"
@@ -291,8 +291,8 @@ void bench_disk_merge(std::size_t n_rows, int order, const std::string& work_roo
   const std::string log = work + "/tasks.log";
   for (std::size_t i = 0; i < plan2.partitions.size(); ++i) {
     int code = 0;
-    auto [dt, mb_fork] = run_measured({"survey", work + "/survey.ini", "--partition-task", std::to_string(i),
-                                       "--run-dir", run_dir},
+    auto [dt, mb_fork] = run_measured({"survey", work + "/survey.ini", "--partition_task", std::to_string(i),
+                                       "--run_dir", run_dir},
                                       log, &code);
     (void)mb_fork;  // includes the benchmark's own pages at the fork; the task's VmHWM is in its log
     const long mb = last_peak_rss(log);
@@ -307,7 +307,7 @@ void bench_disk_merge(std::size_t n_rows, int order, const std::string& work_roo
     members.push_back(j.at("members").get<std::size_t>());
   }
   int code = 0;
-  auto [cdt, cmb_fork] = run_measured({"survey", work + "/survey.ini", "--concat-job", "--run-dir", run_dir}, log, &code);
+  auto [cdt, cmb_fork] = run_measured({"survey", work + "/survey.ini", "--concat_job", "--run_dir", run_dir}, log, &code);
   (void)cmb_fork;
   const long cmb = last_peak_rss(log);
   std::size_t max_i = 0, sum_members = 0;
@@ -359,7 +359,7 @@ void bench_survey(int n_tiles, long size, int workers, const std::string& work) 
       // Each tile is its own simulation (independent sky) at its own centre:
       // the overlaps hold the cell geometry, not common sources.
       const int rc = run({"simulate", "--out", d, "--seed", std::to_string(1000 + j * side + i), "--output.name", name,
-                          "--bands.freqs_mhz", "1400", "--bands.crpix_shift_pix", "0", "--field.size_pix",
+                          "--bands.freq_mhz", "1400", "--bands.crpix_shift_pix", "0", "--field.size_pix",
                           std::to_string(size), "--field.ra_deg", std::to_string(ra), "--field.dec_deg",
                           std::to_string(dec), "--primary_beam.fwhm_deg", "0", "--sources.count",
                           std::to_string(size * size / 4000), "--threads", "2"},

@@ -44,12 +44,16 @@ std::string value_text(const po::variable_value& v) {
 ParsedOptions parse_options(const std::string& command, const std::string& usage_line,
                             const po::options_description& desc,
                             const std::vector<std::pair<std::string, int>>& positional,
-                            const std::vector<std::string>& args) {
+                            const std::vector<std::string>& args, const CommonOptions& common_options) {
   po::options_description common("General");
-  common.add_options()
-      ("help,h", "show this help and exit")
-      ("config", po::value<std::string>(), "configuration file ([section] key = value); the command line overrides it")
-      ("threads", po::value<int>()->default_value(0), "worker threads (0 = all cores); results do not depend on it");
+  common.add_options()("help,h", "show this help and exit");
+  if (common_options.config)
+    common.add_options()("config", po::value<std::string>(),
+                         "configuration file ([section] key = value); the command line overrides it");
+  common.add_options()("threads", po::value<int>()->default_value(0),
+                       common_options.threads_help.empty()
+                           ? "worker threads (0 = all cores); results do not depend on it"
+                           : common_options.threads_help.c_str());
   po::options_description all;
   all.add(desc).add(common);
 

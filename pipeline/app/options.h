@@ -23,6 +23,15 @@ struct ParsedOptions {
   bool help = false;
 };
 
+/// How a command uses the common options: one meaning per option in its --help.
+struct CommonOptions {
+  /// Description of --threads; empty = "worker threads (0 = all cores)".
+  std::string threads_help;
+  /// Offer --config FILE (off for a command whose positional argument is
+  /// already its configuration).
+  bool config = true;
+};
+
 /// Parse `args` against `desc` (plus the common --help, --config, --threads).
 /// `positional` names the options that take positional arguments, in order; the
 /// last may take any number (-1). When --help is given, prints usage to stdout
@@ -30,7 +39,7 @@ struct ParsedOptions {
 ParsedOptions parse_options(const std::string& command, const std::string& usage_line,
                             const po::options_description& desc,
                             const std::vector<std::pair<std::string, int>>& positional,
-                            const std::vector<std::string>& args);
+                            const std::vector<std::string>& args, const CommonOptions& common_options = {});
 
 /// Apply --threads (0 = all cores) for the lifetime of the returned object.
 class ThreadLimit {

@@ -14,7 +14,7 @@
 // the spectral index map), its rms is re-estimated after convolution (the
 // background was subtracted before), and the bands are combined into
 //   D = sum_b a_b I_b / sigma_b^2 / sqrt(sum_b a_b^2 / sigma_b^2),
-//   a_b = (nu_b/nu_ref)^detect.alpha,
+//   a_b = (nu_b/nu_ref)^detect.assumed_spectral_index,
 // the matched inverse-variance weighted sum (resolution.h
 // combined_detection_image; Szalay, Connolly & Szokoly 1999, AJ 117, 68;
 // Bevington & Robinson 2003 eqs. 4.17-4.19). With independent noise in the
@@ -47,11 +47,11 @@
 //   NAME.spectra.{csv,fits,vot}  one row per component: per-band flux densities,
 //                                errors and limits, alpha, alpha_err, curvature
 //   NAME.forced.{csv,fits,vot}   one row per component and band: the forced fit
-//   NAME.alpha.fits, NAME.alpha_err.fits  spectral index map and its error on the
+//   NAME.alpha_map.fits, NAME.alpha_err_map.fits  spectral index map and its error on the
 //                                common grid, with the common beam
 //   NAME.detect/                 extract's outputs of the detection (if used);
 //                                with detect.mode combined also
-//                                NAME.detect.snr.fits, the combined image D
+//                                NAME.detect_snr_map.fits, the combined image D
 //   NAME.run.json                run record
 #include <tbb/blocked_range.h>
 #include <tbb/parallel_for.h>
@@ -88,11 +88,11 @@ namespace fs = std::filesystem;
 
 po::options_description bands_options() {
   const ForcedOptions fo{};
-  po::options_description d("bands options (config-file sections in brackets)");
+  po::options_description d("bands options (options are SECTION.KEY; in a config file, KEY goes under [SECTION])");
   d.add_options()
       ("images", po::value<std::vector<std::string>>()->multitoken(), "input FITS images of one field, one per band (Jy/beam)")
       ("out", po::value<std::string>()->default_value(""), "output folder (default: outputs/NAME)")
-      ("catalogue", po::value<std::string>()->default_value(""), "user catalogue (.csv/.fits/.vot) with ra_deg, dec_deg [deg] and optionally dc_maj_arcsec, dc_min_arcsec, dc_pa_deg (intrinsic FWHMs; NaN or absent = point source); replaces detection")
+      ("catalogue", po::value<std::string>()->default_value(""), "user catalogue (.csv/.fits/.vot) with ra_deg, dec_deg [deg] and optionally intrinsic_maj_arcsec, intrinsic_min_arcsec, intrinsic_pa_deg (intrinsic FWHMs; NaN or absent = point source); replaces detection")
       // [bands]
       ("bands.freq_mhz", po::value<std::string>()->default_value(""), "observing frequencies [MHz], comma-separated per band; empty or 0 entries = from the header")
       ("bands.flux_scale_frac", po::value<std::string>()->default_value("0.03"), "fractional flux-scale uncertainty: one value, or one per band (comma-separated)")
@@ -100,10 +100,10 @@ po::options_description bands_options() {
       // [detect]
       ("detect.mode", po::value<std::string>()->default_value("band"), "band = detect in one band (detect.band); combined = detect on the matched signal-to-noise image of all bands at the common resolution")
       ("detect.band", po::value<int>()->default_value(0), "detect.mode band: 1-based band whose `skerry extract` catalogue gives the components; 0 = the band with the smallest beam")
-      ("detect.alpha", po::value<double>()->default_value(-0.7), "detect.mode combined: spectral index assumed by the band weights (S ~ nu^alpha)")
+      ("detect.assumed_spectral_index", po::value<double>()->default_value(-0.7), "detect.mode combined: spectral index assumed by the band weights (S ~ nu^alpha)")
       ("detect.peak_snr", po::value<double>()->default_value(5.0), "detection threshold passed to extract (island peak SNR; for the combined image in units of its N(0,1) noise)")
       // [noise]
-      ("noise.box_beams", po::value<double>()->default_value(30.0), "box side for each band's background/rms maps [beams]")
+      ("noise.window_beams", po::value<double>()->default_value(30.0), "side of the window over which each band's background/rms statistics are taken [beams]")
       // [forced]
       ("forced.detect_snr", po::value<double>()->default_value(fo.detect_snr), "a band detects a component when fitted peak / local rms >= this; otherwise it gives an upper limit")
       ("forced.limit_snr", po::value<double>()->default_value(fo.limit_snr), "upper limit = this x local rms (on the flux scale of the component's shape)")
@@ -111,7 +111,7 @@ po::options_description bands_options() {
       ("forced.blend_radius_sigma", po::value<double>()->default_value(fo.blend_radius_sigma), "components closer than this (sigma units of the summed shapes) are fitted together")
       ("forced.max_shift_arcsec", po::value<double>()->default_value(fo.max_shift_arcsec), "largest centre shift per pixel axis [arcsec] the forced fit may make for components detected in the band; 0 = positions fixed")
       // [maps]
-      ("maps.enabled", po::value<bool>()->default_value(true), "write the spectral index map and its error")
+      ("maps.enabled", po::value<bool>()->default_value(true), "write the images NAME.alpha_map.fits and NAME.alpha_err_map.fits (spectral index and its error)")
       ("maps.min_snr", po::value<double>()->default_value(5.0), "a map pixel needs I / rms >= this in every band (rms re-estimated after convolution)")
       ("maps.grid_band", po::value<int>()->default_value(0), "1-based band whose grid the maps use; 0 = the band with the largest beam")
       ("maps.enlarge_frac", po::value<double>()->default_value(0.02), "the common beam is the smallest ellipse containing every beam, axes enlarged by this fraction")
@@ -199,10 +199,10 @@ std::vector<ForcedSource> read_components(const std::string& path) {
   if (!ra || !dec) throw InputError(path, "has no ra_deg/dec_deg columns (ICRS degrees)");
   if (ra->type != ColumnType::Float64 || dec->type != ColumnType::Float64)
     throw InputError(path, "ra_deg/dec_deg columns are not numeric");
-  const Column* mj = t.find("dc_maj_arcsec");
-  const Column* mn = t.find("dc_min_arcsec");
-  const Column* pa = t.find("dc_pa_deg");
-  const Column* fl = t.find("flags");
+  const Column* mj = t.find("intrinsic_maj_arcsec");
+  const Column* mn = t.find("intrinsic_min_arcsec");
+  const Column* pa = t.find("intrinsic_pa_deg");
+  const Column* info = t.find("info_bits");
   auto num = [](const Column* c, std::size_t i) {
     if (!c) return std::numeric_limits<double>::quiet_NaN();
     if (c->type == ColumnType::Float64) return c->f64[i];
@@ -219,7 +219,7 @@ std::vector<ForcedSource> read_components(const std::string& path) {
     const double M = num(mj, i), m = num(mn, i), p = num(pa, i);
     // Extract marks unresolved components (deconvolved sizes are upper limits):
     // those are measured as point sources.
-    const bool unresolved = fl && fl->type == ColumnType::Int64 && (fl->i64[i] & kFlagUnresolved);
+    const bool unresolved = info && info->type == ColumnType::Int64 && (info->i64[i] & kInfoUnresolved);
     if (!unresolved && std::isfinite(M) && M > 0.0) {
       s.intrinsic.maj = M;
       s.intrinsic.min = (std::isfinite(m) && m > 0.0) ? std::min(m, M) : 0.0;
@@ -277,9 +277,9 @@ int run_bands(const std::vector<std::string>& args) {
     throw UsageError("detect.mode = " + detect_mode + " breaks 'band or combined'");
   const bool combined = detect_mode == "combined" && vm["catalogue"].as<std::string>().empty();
   DetectionImageOptions dio;
-  dio.alpha = vm["detect.alpha"].as<double>();
-  require(std::isfinite(dio.alpha) && std::abs(dio.alpha) <= 10.0, "detect.alpha", std::to_string(dio.alpha),
-          "|detect.alpha| <= 10");
+  dio.alpha = vm["detect.assumed_spectral_index"].as<double>();
+  require(std::isfinite(dio.alpha) && std::abs(dio.alpha) <= 10.0, "detect.assumed_spectral_index", std::to_string(dio.alpha),
+          "|detect.assumed_spectral_index| <= 10");
   require(vm["detect.peak_snr"].as<double>() > 0.0, "detect.peak_snr", std::to_string(vm["detect.peak_snr"].as<double>()),
           "detect.peak_snr > 0");
   require(detect_band >= 0 && detect_band <= static_cast<int>(nb), "detect.band", std::to_string(detect_band),
@@ -307,7 +307,7 @@ int run_bands(const std::vector<std::string>& args) {
   cbo.enlarge_frac = vm["maps.enlarge_frac"].as<double>();
   require(cbo.enlarge_frac > 0.0 && cbo.enlarge_frac < 1.0, "maps.enlarge_frac", std::to_string(cbo.enlarge_frac),
           "0 < maps.enlarge_frac < 1");
-  const double box_beams = vm["noise.box_beams"].as<double>();
+  const double box_beams = vm["noise.window_beams"].as<double>();
   bool fmt_csv = false, fmt_fits = false, fmt_vot = false;
   for (const auto& f : split(vm["output.formats"].as<std::string>(), ',')) {
     if (f == "csv") fmt_csv = true;
@@ -474,7 +474,7 @@ int run_bands(const std::vector<std::string>& args) {
       cards.push_back({"DETALPHA", fits_real(dio.alpha)});
       cards.push_back({"DETKIND", "'matched SNR: sum a I/s^2 / sqrt(sum a^2/s^2)'"});
       fs::create_directories(det_dir);
-      det_image = (fs::path(det_dir) / (name + ".detect.snr.fits")).string();
+      det_image = (fs::path(det_dir) / (name + ".detect_snr_map.fits")).string();
       write_fits_image(det_image, d.snr, bands[cr.g], "", cards);
       // D is N(0,1) on empty sky: no background or rms to estimate.
       extra = {"--noise.fixed_rms", "1", "--noise.fixed_background", "0", "--image.accept_bunit", "true",
@@ -529,19 +529,19 @@ int run_bands(const std::vector<std::string>& args) {
   const auto tags = band_tags(freq);
   std::vector<std::pair<std::string, std::string>> meta{
       {"tool", "skerry bands"},
-      {"conv_spectral_index", "S proportional to nu^alpha (steep spectra negative)"},
-      {"conv_logarithms", "natural; curvature q of ln S = ln S0 + alpha0 ln(nu/nu0) + q ln(nu/nu0)^2; base-10 c2 = q ln 10"},
-      {"conv_ref_freq", "nu0 = weighted logarithmic mean frequency of the detected bands, w = (S/sigma)^2"},
-      {"conv_flux_scale", "fractional flux-scale error per band added in quadrature, independent between bands"},
-      {"conv_limits", "a band with fitted peak < forced.detect_snr x local rms gives an upper limit forced.limit_snr x rms; limits are never logged"},
-      {"conv_positions", "ICRS degrees; pixel columns *_pix1 are 1-based FITS pixels"},
-      {"detection", combined ? ("combined matched SNR image of all bands (alpha " + fits_real(dio.alpha) +
+      {"convention_spectral_index", "S proportional to nu^alpha (steep spectra negative)"},
+      {"convention_logarithms", "natural; curvature q of ln S = ln S0 + alpha0 ln(nu/nu0) + q ln(nu/nu0)^2; base-10 c2 = q ln 10"},
+      {"convention_ref_freq", "nu0 = weighted logarithmic mean frequency of the detected bands, w = (S/sigma)^2"},
+      {"convention_flux_scale", "fractional flux-scale error per band added in quadrature, independent between bands"},
+      {"convention_limits", "a band with fitted peak < forced.detect_snr x local rms gives an upper limit forced.limit_snr x rms; limits are never logged"},
+      {"convention_positions", "ICRS degrees; pixel columns *_pix1 are 1-based FITS pixels"},
+      {"detection", combined ? ("combined matched SNR image of all bands (assumed spectral index " + fits_real(dio.alpha) +
                                 ", grid of band " + std::to_string(cr.g + 1) + ", common beam) via skerry extract")
                     : det_band ? ("band " + std::to_string(det_band) + " (" + paths[det_band - 1] + ") via skerry extract")
                                : ("user catalogue " + catalogue_path)}};
   for (std::size_t b = 0; b < nb; ++b) {
     meta.push_back({"band" + std::to_string(b + 1) + "_file", paths[b]});
-    meta.push_back({"band" + std::to_string(b + 1) + "_freq_hz", fits_real(freq[b])});
+    meta.push_back({"band" + std::to_string(b + 1) + "_freq_mhz", fits_real(freq[b] / 1e6)});
     meta.push_back({"band" + std::to_string(b + 1) + "_beam_arcsec",
                     fits_real(bands[b].beam.maj_arcsec) + "," + fits_real(bands[b].beam.min_arcsec) + "," +
                         fits_real(bands[b].beam.pa_deg)});
@@ -633,7 +633,7 @@ int run_bands(const std::vector<std::string>& args) {
     t.add_i64("n_detected", "", "meta.number", "Bands in which the component is detected (used in the fits)", nd);
     t.add_i64("n_limits", "", "meta.number", "Bands that give an upper limit", nl);
     t.add_text("spec_status", "", "meta.code.status", "fitted | limit_only | no_data", st);
-    t.add_i64("spec_flags", "", "meta.code.qual", "Bitmask: 1 limit bands, 2 poor power law (p < 0.001), 4 curvature fitted, 8 a limit below the power law, 16 a band without a value", fl);
+    t.add_i64("spec_flags", "", "meta.code.qual", "Bitmask: 1 has_limits (some bands are upper limits), 2 poor_power_law (p < 0.001), 4 curvature_fitted, 8 limit_conflict (a limit below the power law), 16 invalid_band (a band without a value)", fl);
     write_all(t, name + ".spectra");
   }
   {
@@ -663,9 +663,9 @@ int run_bands(const std::vector<std::string>& args) {
         grp[r] = m.group >= 0 ? m.group + 1 : 0;
         gsz[r] = m.group_size;
         flg[r] = m.flags;
-        cmj[r] = m.conv_maj_arcsec;
-        cmn[r] = m.conv_min_arcsec;
-        cpa[r] = m.conv_pa_deg;
+        cmj[r] = m.convolved_maj_arcsec;
+        cmn[r] = m.convolved_min_arcsec;
+        cpa[r] = m.convolved_pa_deg;
       }
     t.add_i64("component_id", "", "meta.id", "1-based row of the component in the detection catalogue", id);
     t.add_i64("band", "", "meta.id", "1-based band (order of the images on the command line)", band);
@@ -683,9 +683,9 @@ int run_bands(const std::vector<std::string>& args) {
     t.add_f64("model_maj_arcsec", "arcsec", "phys.angSize.smajAxis", "Model FWHM: intrinsic shape convolved with this band's beam", cmj);
     t.add_f64("model_min_arcsec", "arcsec", "phys.angSize.sminAxis", "Model minor FWHM", cmn);
     t.add_f64("model_pa_deg", "deg", "pos.posAng", "Model PA east of north", cpa);
-    t.add_i64("group_id", "", "meta.id", "Blend group (components fitted together; 1-based id of its first member; 0 = none)", grp);
-    t.add_i64("group_size", "", "meta.number", "Members of the blend group", gsz);
-    t.add_i64("forced_flags", "", "meta.code.qual", "Bitmask: 1 outside/blank, 2 blended, 4 footprint at an edge or blank, 8 not detected, 16 group split, 32 masked, 64 degenerate blend, 128 shift at its bound, 256 shifted fit failed (fixed values kept)", flg);
+    t.add_i64("blend_group_id", "", "meta.id", "Blend group (components fitted together; 1-based id of its first member; 0 = none)", grp);
+    t.add_i64("blend_group_members", "", "meta.number", "Number of components in the blend group", gsz);
+    t.add_i64("forced_flags", "", "meta.code.qual", "Bitmask: no value: 1 off_image (outside or blank), 2 masked, 4 degenerate_blend; caveat: 8 footprint_clipped (edge or blank), 16 shift_failed (fixed values kept), 32 shift_at_bound; information: 64 not_detected (use the upper limit), 128 joint_fit (fitted with its blend group), 256 blend_split", flg);
     if (shift_on) {
       std::vector<double> sh_e(rows), sh_n(rows), sh_ee(rows), sh_ne(rows);
       for (std::size_t i = 0; i < n; ++i)
@@ -731,10 +731,10 @@ int run_bands(const std::vector<std::string>& args) {
         {"BPA", fits_real(common.pa_deg)},
         {"SPIXCONV", "'S proportional to nu^alpha'"},
         {"SPIXSNR", fits_real(map_snr)}};
-    write_fits_image((fs::path(out_dir) / (name + ".alpha.fits")).string(), sm.alpha, grid, "", cards);
-    write_fits_image((fs::path(out_dir) / (name + ".alpha_err.fits")).string(), sm.alpha_err, grid, "", cards);
-    written.push_back(name + ".alpha.fits");
-    written.push_back(name + ".alpha_err.fits");
+    write_fits_image((fs::path(out_dir) / (name + ".alpha_map.fits")).string(), sm.alpha, grid, "", cards);
+    write_fits_image((fs::path(out_dir) / (name + ".alpha_err_map.fits")).string(), sm.alpha_err, grid, "", cards);
+    written.push_back(name + ".alpha_map.fits");
+    written.push_back(name + ".alpha_err_map.fits");
     record.set_value("common_beam_arcsec", fits_real(common.maj_arcsec) + "," + fits_real(common.min_arcsec) + "," +
                                                fits_real(common.pa_deg));
     record.set_value("map_grid_band", std::to_string(g + 1));

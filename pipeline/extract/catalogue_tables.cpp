@@ -62,19 +62,25 @@ std::string radio_band_ucd(double f) {
 
 Provenance convention_meta() {
   Provenance p = {
-      {"conv_frame", "positions are ICRS (degrees)"},
-      {"conv_position_angle", "position angles in degrees east of north; ellipses in [0, 180)"},
-      {"conv_sizes", "sizes are FWHM; maj/min are beam-convolved, dc_* deconvolved"},
-      {"conv_spectral_index", "S proportional to nu^alpha"},
-      {"conv_pixels", "*_pix1 columns are 1-based FITS pixels (1.0 = centre of the first pixel); boxes inclusive"},
-      {"conv_ra_error", "ra_err_arcsec is the error of RA*cos(Dec)"},
-      {"conv_snr", "snr = fitted peak / local rms; peak_snr (islands) = largest (I - B)/rms"},
-      {"conv_flags", "flags is a bitmask; bit k set means flag_bit<k> applies"},
+      {"convention_frame", "positions are ICRS (degrees)"},
+      {"convention_position_angle", "position angles in degrees east of north; ellipses in [0, 180)"},
+      {"convention_sizes", "sizes are FWHM; maj/min are beam-convolved, intrinsic_* deconvolved"},
+      {"convention_spectral_index", "S proportional to nu^alpha"},
+      {"convention_pixels", "*_pix1 columns are 1-based FITS pixels (1.0 = centre of the first pixel); boxes inclusive"},
+      {"convention_ra_error", "ra_err_arcsec is the error of RA*cos(Dec)"},
+      {"convention_snr", "snr = fitted peak / local rms; peak_snr (islands) = largest (I - B)/rms"},
+      {"convention_flags", "flags holds quality warnings (bit k set: flag_bit<k> applies; 0 = no known problem); "
+                           "info_bits holds informational bits (bit k set: info_bit<k> applies)"},
   };
   for (const auto& f : flag_table()) {
     int k = 0;
     while ((1u << k) != f.bit) ++k;
     p.emplace_back("flag_bit" + std::to_string(k), std::string(f.name) + ": " + f.description);
+  }
+  for (const auto& f : info_bit_table()) {
+    int k = 0;
+    while ((1u << k) != f.bit) ++k;
+    p.emplace_back("info_bit" + std::to_string(k), std::string(f.name) + ": " + f.description);
   }
   return p;
 }
@@ -135,12 +141,12 @@ Table make_component_table(const std::vector<ComponentRecord>& rows, const Prove
   auto& mne = c.f("min_err_arcsec", "arcsec", "stat.error;phys.angSize.sminAxis", "1-sigma error of min_arcsec", n);
   auto& pa = c.f("pa_deg", "deg", "pos.posAng", "Position angle of the fitted major axis, east of north, [0, 180)", n);
   auto& pae = c.f("pa_err_deg", "deg", "stat.error;pos.posAng", "1-sigma error of pa_deg", n);
-  auto& dmj = c.f("dc_maj_arcsec", "arcsec", "phys.angSize.smajAxis", "Deconvolved major-axis FWHM; an upper limit when flagged unresolved", n);
-  auto& dmje = c.f("dc_maj_err_arcsec", "arcsec", "stat.error;phys.angSize.smajAxis", "1-sigma error of dc_maj_arcsec (NaN for an upper limit)", n);
-  auto& dmn = c.f("dc_min_arcsec", "arcsec", "phys.angSize.sminAxis", "Deconvolved minor-axis FWHM; an upper limit when flagged unresolved", n);
-  auto& dmne = c.f("dc_min_err_arcsec", "arcsec", "stat.error;phys.angSize.sminAxis", "1-sigma error of dc_min_arcsec (NaN for an upper limit)", n);
-  auto& dpa = c.f("dc_pa_deg", "deg", "pos.posAng", "Position angle of the deconvolved major axis, east of north, [0, 180)", n);
-  auto& dpae = c.f("dc_pa_err_deg", "deg", "stat.error;pos.posAng", "1-sigma error of dc_pa_deg", n);
+  auto& dmj = c.f("intrinsic_maj_arcsec", "arcsec", "phys.angSize.smajAxis", "Deconvolved major-axis FWHM; an upper limit when info_bits has unresolved", n);
+  auto& dmje = c.f("intrinsic_maj_err_arcsec", "arcsec", "stat.error;phys.angSize.smajAxis", "1-sigma error of intrinsic_maj_arcsec (NaN for an upper limit)", n);
+  auto& dmn = c.f("intrinsic_min_arcsec", "arcsec", "phys.angSize.sminAxis", "Deconvolved minor-axis FWHM; an upper limit when info_bits has unresolved", n);
+  auto& dmne = c.f("intrinsic_min_err_arcsec", "arcsec", "stat.error;phys.angSize.sminAxis", "1-sigma error of intrinsic_min_arcsec (NaN for an upper limit)", n);
+  auto& dpa = c.f("intrinsic_pa_deg", "deg", "pos.posAng", "Position angle of the deconvolved major axis, east of north, [0, 180)", n);
+  auto& dpae = c.f("intrinsic_pa_err_deg", "deg", "stat.error;pos.posAng", "1-sigma error of intrinsic_pa_deg", n);
   auto& bg = c.f("background_jy_per_beam", "Jy/beam", "phot.flux.density;instr.skyLevel", "Local background at the centre (subtracted before fitting)", n);
   auto& rms = c.f("rms_jy_per_beam", "Jy/beam", "stat.stdev;phot.flux.density", "Local noise rms at the centre", n);
   auto& snr = c.f("snr", "", "stat.snr", "Component SNR: fitted peak / local rms", n);
@@ -150,7 +156,8 @@ Table make_component_table(const std::vector<ComponentRecord>& rows, const Prove
   auto& spc = c.f("s_peak_pbcor_jy_per_beam", "Jy/beam", flux_ucd("phot.flux.density;stat.max", freq_hz), "Primary-beam corrected peak flux density", n);
   auto& sic = c.f("s_int_pbcor_jy", "Jy", fd, "Primary-beam corrected integrated flux density", n);
   auto& sice = c.f("s_int_pbcor_err_jy", "Jy", "stat.error;phot.flux.density", "1-sigma error of s_int_pbcor_jy", n);
-  auto& fl = c.i("flags", "", "meta.code.qual", "Flag bitmask (meta keys flag_bit<k>)", n);
+  auto& fl = c.i("flags", "", "meta.code.qual", "Quality warnings: bitmask, 0 = none (meta keys flag_bit<k>)", n);
+  auto& ib = c.i("info_bits", "", "meta.code", "Informational bits: bitmask (meta keys info_bit<k>)", n);
   std::int64_t k = 0;
   for (const auto& r : rows) {
     id.i64.push_back(++k);
@@ -173,12 +180,12 @@ Table make_component_table(const std::vector<ComponentRecord>& rows, const Prove
     mne.f64.push_back(r.min_err_arcsec);
     pa.f64.push_back(r.pa_deg);
     pae.f64.push_back(r.pa_err_deg);
-    dmj.f64.push_back(r.dc_maj_arcsec);
-    dmje.f64.push_back(r.dc_maj_err_arcsec);
-    dmn.f64.push_back(r.dc_min_arcsec);
-    dmne.f64.push_back(r.dc_min_err_arcsec);
-    dpa.f64.push_back(r.dc_pa_deg);
-    dpae.f64.push_back(r.dc_pa_err_deg);
+    dmj.f64.push_back(r.intrinsic_maj_arcsec);
+    dmje.f64.push_back(r.intrinsic_maj_err_arcsec);
+    dmn.f64.push_back(r.intrinsic_min_arcsec);
+    dmne.f64.push_back(r.intrinsic_min_err_arcsec);
+    dpa.f64.push_back(r.intrinsic_pa_deg);
+    dpae.f64.push_back(r.intrinsic_pa_err_deg);
     bg.f64.push_back(r.background_jy_per_beam);
     rms.f64.push_back(r.rms_jy_per_beam);
     snr.f64.push_back(r.snr);
@@ -189,6 +196,7 @@ Table make_component_table(const std::vector<ComponentRecord>& rows, const Prove
     sic.f64.push_back(r.s_int_pbcor_jy);
     sice.f64.push_back(r.s_int_pbcor_err_jy);
     fl.i64.push_back(static_cast<std::int64_t>(r.flags));
+    ib.i64.push_back(static_cast<std::int64_t>(r.info_bits));
   }
   if (t.ncols() > kMaxColumns) throw std::logic_error("component table: too many columns");
   t.check_consistent();
@@ -205,7 +213,7 @@ Table make_island_table(const std::vector<IslandRecord>& rows, const Provenance&
   t.columns().reserve(kMaxColumns);
   const std::size_t n = rows.size();
   Columns c{t};
-  auto& id = c.i("island_id", "", "meta.id;meta.main", "Island id = value in the label map (NAME.islands.fits)", n);
+  auto& id = c.i("island_id", "", "meta.id;meta.main", "Island id = value in the label map (NAME.island_map.fits)", n);
   auto& nc = c.i("n_components", "", "meta.number", "Number of fitted components", n);
   auto& np = c.i("n_pixels", "pixel", "meta.number", "Number of pixels of the island", n);
   auto& s = c.f("s_pix_jy", "Jy", flux_ucd("phot.flux.density", freq_hz), "Pixel sum of (image - background) over the island / beam area in pixels", n);
@@ -222,7 +230,7 @@ Table make_island_table(const std::vector<IslandRecord>& rows, const Provenance&
   auto& y1 = c.i("y_max_pix1", "pixel", "pos.cartesian.y;stat.max", "Bounding box: last row, 1-based inclusive", n);
   auto& rr = c.f("residual_rms_jy_per_beam", "Jy/beam", "stat.fit.residual", "rms of (image - background - model) over the island's pixels", n);
   auto& mr = c.f("mean_rms_jy_per_beam", "Jy/beam", "stat.stdev;phot.flux.density", "Mean local noise rms over the island's pixels", n);
-  auto& fl = c.i("flags", "", "meta.code.qual", "Flag bitmask (meta keys flag_bit<k>)", n);
+  auto& fl = c.i("flags", "", "meta.code.qual", "Quality warnings: bitmask, 0 = none (meta keys flag_bit<k>)", n);
   for (const auto& r : rows) {
     id.i64.push_back(r.island_id);
     nc.i64.push_back(r.n_components);
@@ -259,7 +267,7 @@ Table make_source_table(const std::vector<CatalogueSource>& sources,
   const std::size_t n = sources.size();
   Columns c{t};
   auto& id = c.i("source_id", "", "meta.id;meta.main", "Source number, 1-based", n);
-  auto& name = t.add_text("source_name", "", "meta.id", "IAU-style designation from the position, truncated");
+  auto& name = t.add_text("designation", "", "meta.id", "IAU-style designation from the position, truncated");
   auto& nc = c.i("n_components", "", "meta.number", "Number of components grouped into the source", n);
   auto& ni = c.i("n_islands", "", "meta.number", "Number of islands the components come from", n);
   auto& ra = c.f("ra_deg", "deg", "pos.eq.ra;meta.main", "Flux-weighted mean position of the components (ICRS)", n);
@@ -270,9 +278,10 @@ Table make_source_table(const std::vector<CatalogueSource>& sources,
   auto& sie = c.f("s_int_err_jy", "Jy", "stat.error;phot.flux.density", "1-sigma error: components' errors in quadrature", n);
   auto& sp = c.f("s_peak_max_jy_per_beam", "Jy/beam", flux_ucd("phot.flux.density;stat.max", freq_hz), "Peak flux density of the brightest component", n);
   auto& las = c.f("las_arcsec", "arcsec", "phys.angSize", "Largest angular size from the deconvolved component extents (0 for one unresolved component)", n);
-  auto& morph = t.add_text("morphology", "", "src.morph.type", "single (one component), multi (several), diffuse (residuals above the noise)");
+  auto& morph = t.add_text("structure", "", "src.morph.type", "compact (one component), composite (several components), diffuse (island residuals above the noise)");
   auto& isls = t.add_text("island_ids", "", "meta.id.cross", "Islands of the source, ';'-separated");
-  auto& fl = c.i("flags", "", "meta.code.qual", "OR of the components' flag bits plus source bits (meta keys flag_bit<k>)", n);
+  auto& fl = c.i("flags", "", "meta.code.qual", "Quality warnings: OR of the components' warnings plus source warnings, 0 = none (meta keys flag_bit<k>)", n);
+  auto& ib = c.i("info_bits", "", "meta.code", "Informational bits: OR of the components' bits plus source bits (meta keys info_bit<k>)", n);
   for (const auto& s : sources) {
     id.i64.push_back(s.id);
     name.text.push_back(designation(prefix, s.ra_deg, s.dec_deg));
@@ -286,11 +295,12 @@ Table make_source_table(const std::vector<CatalogueSource>& sources,
     sie.f64.push_back(s.s_int_err_jy);
     sp.f64.push_back(s.s_peak_max_jy_per_beam);
     las.f64.push_back(s.las_arcsec);
-    morph.text.push_back(morphology_name(s.morphology));
+    morph.text.push_back(structure_name(s.structure));
     std::string ids;
     for (std::size_t k = 0; k < s.islands.size(); ++k) ids += (k ? ";" : "") + std::to_string(s.islands[k]);
     isls.text.push_back(ids);
     fl.i64.push_back(static_cast<std::int64_t>(s.flags));
+    ib.i64.push_back(static_cast<std::int64_t>(s.info_bits));
   }
   if (t.ncols() > kMaxColumns) throw std::logic_error("source table: too many columns");
   t.check_consistent();

@@ -7,7 +7,7 @@
 /// Conventions, stated in every table's meta as well: positions ICRS degrees;
 /// position angles east of north; sizes FWHM; S proportional to nu^alpha; pixel
 /// columns `*_pix1` are 1-based FITS pixels (bounding boxes inclusive); flags
-/// are the bitmask of skerry/catalogue.h. Rows are sorted by (island_id,
+/// (warnings) and info_bits (information) are the bitmasks of skerry/catalogue.h. Rows are sorted by (island_id,
 /// component index), sources by source_id: a total order.
 #include <cstdint>
 #include <string>
@@ -34,9 +34,9 @@ struct ComponentRecord {
   double maj_arcsec = 0.0, maj_err_arcsec = 0.0;  ///< fitted (beam-convolved) FWHM
   double min_arcsec = 0.0, min_err_arcsec = 0.0;
   double pa_deg = 0.0, pa_err_deg = 0.0;          ///< east of north, [0, 180)
-  double dc_maj_arcsec = 0.0, dc_maj_err_arcsec = 0.0;  ///< deconvolved; upper limit when unresolved
-  double dc_min_arcsec = 0.0, dc_min_err_arcsec = 0.0;
-  double dc_pa_deg = 0.0, dc_pa_err_deg = 0.0;
+  double intrinsic_maj_arcsec = 0.0, intrinsic_maj_err_arcsec = 0.0;  ///< deconvolved; upper limit when unresolved
+  double intrinsic_min_arcsec = 0.0, intrinsic_min_err_arcsec = 0.0;
+  double intrinsic_pa_deg = 0.0, intrinsic_pa_err_deg = 0.0;
   double background_jy_per_beam = 0.0;   ///< local background at the centre
   double rms_jy_per_beam = 0.0;          ///< local rms at the centre
   double snr = 0.0;                      ///< component SNR: fitted peak / local rms
@@ -46,7 +46,8 @@ struct ComponentRecord {
   double s_peak_pbcor_jy_per_beam = 0.0; ///< primary-beam corrected peak (NaN: none)
   double s_int_pbcor_jy = 0.0;           ///< primary-beam corrected integrated (NaN: none)
   double s_int_pbcor_err_jy = 0.0;
-  std::uint32_t flags = 0;
+  std::uint32_t flags = 0;      ///< quality warnings (kFlag*)
+  std::uint32_t info_bits = 0;  ///< informational bits (kInfo*)
 };
 
 struct IslandRecord {
@@ -69,7 +70,8 @@ struct IslandRecord {
 /// tool, version, revision, input file, image frame, beam, conventions, ...
 using Provenance = std::vector<std::pair<std::string, std::string>>;
 
-/// The convention statements every table carries (keys "conv_*").
+/// The convention statements every table carries (keys "convention_*", and the
+/// bit names "flag_bit<k>" and "info_bit<k>").
 Provenance convention_meta();
 
 /// The UCD1+ band word for a frequency ("em.radio.750-1500MHz"); "" when unknown.
@@ -80,9 +82,9 @@ Table make_component_table(const std::vector<ComponentRecord>& rows, const Prove
                            double freq_hz);
 Table make_island_table(const std::vector<IslandRecord>& rows, const Provenance& meta,
                         double freq_hz);
-/// Source names are designation(name_prefix, ra, dec).
+/// The designation column is designation(designation_prefix, ra, dec).
 Table make_source_table(const std::vector<CatalogueSource>& sources, const Provenance& meta,
-                        double freq_hz, const std::string& name_prefix);
+                        double freq_hz, const std::string& designation_prefix);
 
 /// Sorts component records by (island_id, component): the total order of rows.
 void sort_components(std::vector<ComponentRecord>& rows);

@@ -66,7 +66,7 @@ po::options_description extract_options() {
   const SkyOptions sky{};
   const FlagOptions fl{};
   const GroupingOptions gr{};
-  po::options_description d("extract options (config-file sections in brackets)");
+  po::options_description d("extract options (options are SECTION.KEY; in a config file, KEY goes under [SECTION])");
   d.add_options()
       ("image", po::value<std::string>(), "input FITS image (Jy/beam)")
       ("out", po::value<std::string>()->default_value(""), "output folder (default: outputs/NAME)")
@@ -79,9 +79,9 @@ po::options_description extract_options() {
       ("image.primary_beam", po::value<std::string>()->default_value(""), "primary-beam image on the same grid (values in (0, 1]); enables corrected flux densities")
       ("image.pb_cut", po::value<double>()->default_value(0.2), "components where the primary beam is below this get the below_pb_cut flag")
       // [noise]
-      ("noise.box_beams", po::value<double>()->default_value(bg.box_beams), "box side for the background/rms statistics [beams]")
-      ("noise.box_pixels", po::value<int>()->default_value(0), "box side [pixels]; overrides noise.box_beams when > 0")
-      ("noise.step_beams", po::value<double>()->default_value(bg.step_beams), "spacing of the box grid [beams]; 0 = the box side (boxes tile the image)")
+      ("noise.window_beams", po::value<double>()->default_value(bg.box_beams), "side of the window over which each background/rms statistic is taken [beams]")
+      ("noise.window_pixels", po::value<int>()->default_value(0), "window side [pixels]; overrides noise.window_beams when > 0")
+      ("noise.grid_spacing_beams", po::value<double>()->default_value(bg.step_beams), "spacing of the grid of window centres [beams]; 0 = the window side (windows tile the image)")
       ("noise.clip_sigma", po::value<double>()->default_value(bg.clip_sigma), "sigma-clipping level k (>= 1.5)")
       ("noise.second_pass", po::value<bool>()->default_value(true), "re-estimate the maps with the first pass's islands masked")
       ("noise.mask_margin_beams", po::value<double>()->default_value(1.0), "margin grown around islands for the second pass [beams]")
@@ -92,15 +92,15 @@ po::options_description extract_options() {
       // [detect]
       ("detect.peak_snr", po::value<double>()->default_value(isl.peak_snr), "an island needs a pixel with (I - B)/rms at least this")
       ("detect.grow_snr", po::value<double>()->default_value(isl.grow_snr), "islands grow through 8-connected pixels with (I - B)/rms at least this")
-      ("detect.fdr_alpha", po::value<double>()->default_value(0.0), "if > 0: peak threshold from this false discovery rate (Benjamini & Hochberg 1995) instead of detect.peak_snr")
-      ("detect.fdr_any_dependence", po::value<bool>()->default_value(false), "use the Benjamini & Yekutieli (2001) constant for arbitrary dependence")
+      ("detect.false_discovery_rate", po::value<double>()->default_value(0.0), "if > 0: the peak threshold keeps the expected fraction of false islands at this rate (Benjamini & Hochberg 1995) instead of detect.peak_snr")
+      ("detect.false_discovery_any_dependence", po::value<bool>()->default_value(false), "with detect.false_discovery_rate: use the Benjamini & Yekutieli (2001) constant for arbitrary dependence")
       ("detect.min_pixels", po::value<long>()->default_value(3), "smallest island kept [pixels]")
       // [fit]
       ("fit.max_components", po::value<int>()->default_value(fit.max_components), "largest number of Gaussian components per island")
       ("fit.prominence_snr", po::value<double>()->default_value(fit.prominence_snr), "a local maximum starts a component when its prominence exceeds this many local rms")
-      ("fit.min_size_beams", po::value<double>()->default_value(fit.min_size_beam_fraction), "lower bound of the fitted sigmas as a fraction of the beam's minor-axis sigma")
+      ("fit.min_size_beam_fraction", po::value<double>()->default_value(fit.min_size_beam_fraction), "lower bound of both fitted Gaussian sigmas, as a fraction (0 < f <= 1) of the restoring beam's minor-axis sigma (not a number of beams)")
       ("fit.fixed_shape", po::value<bool>()->default_value(fit.fix_shape_to_beam), "fit amplitude and position only, shape fixed to the beam")
-      ("fit.margin_beam_sigma", po::value<double>()->default_value(fit.fit_margin_beam_sigma), "free pixels within this many beam sigmas of the island join the fit region")
+      ("fit.region_margin_beam_sigma", po::value<double>()->default_value(fit.fit_margin_beam_sigma), "fit region = the island's pixels plus every pixel outside all islands (finite, positive rms) within this many beam sigmas (Mahalanobis distance with the beam covariance) of an island pixel; 0 = island pixels only")
       ("fit.information_criterion", po::value<bool>()->default_value(fit.use_information_criterion), "compare k and k-1 components by the information criterion; false = keep all maxima")
       ("fit.max_iterations", po::value<int>()->default_value(fit.lm.max_iterations), "Levenberg-Marquardt step limit per fit")
       ("fit.condon_errors", po::value<bool>()->default_value(sky.use_condon_errors), "report Condon (1997) expected errors instead of the fit's corrected covariance")
@@ -120,13 +120,13 @@ po::options_description extract_options() {
       ("catalogue.blank_margin_beams", po::value<double>()->default_value(fl.blank_margin_beams), "near_blank flag distance [beams]")
       ("catalogue.bright_radius_beams", po::value<double>()->default_value(fl.bright_radius_beams), "near_bright flag search radius [beams]")
       ("catalogue.bright_ratio", po::value<double>()->default_value(fl.bright_ratio), "near_bright when a neighbour's peak is at least this x brighter")
-      ("catalogue.name_prefix", po::value<std::string>()->default_value("SKDC"), "survey prefix of the source designations")
+      ("catalogue.designation_prefix", po::value<std::string>()->default_value("SKDC"), "prefix of the source designations (PREFIX JHHMMSS.s+DDMMSS)")
       // [output]
       ("output.name", po::value<std::string>()->default_value(""), "NAME of the output files; default: the image file's stem")
       ("output.formats", po::value<std::string>()->default_value("csv,fits,vot"), "table formats, comma-separated: csv, fits, vot")
-      ("output.maps", po::value<bool>()->default_value(true), "write NAME.rms.fits, NAME.background.fits and NAME.islands.fits (labels)")
-      ("output.model", po::value<bool>()->default_value(true), "write NAME.model.fits")
-      ("output.residual", po::value<bool>()->default_value(true), "write NAME.residual.fits (image - model)")
+      ("output.maps", po::value<bool>()->default_value(true), "write the images NAME.rms_map.fits, NAME.background_map.fits and NAME.island_map.fits (island labels)")
+      ("output.model", po::value<bool>()->default_value(true), "write the image NAME.model_map.fits (sum of the fitted components)")
+      ("output.residual", po::value<bool>()->default_value(true), "write the image NAME.residual_map.fits (image - model)")
       ("output.report", po::value<bool>()->default_value(false), "also write the run report NAME.report.html at the end (skerry report)");
   return d;
 }
@@ -148,7 +148,7 @@ struct Config {
   SkyOptions sky;
   FlagOptions flags;
   GroupingOptions grouping;
-  std::string name_prefix;
+  std::string designation_prefix;
   bool fmt_csv = false, fmt_fits = false, fmt_vot = false;
   bool write_maps = true, write_model = true, write_residual = true;
 };
@@ -220,13 +220,13 @@ Config read_config(const ParsedOptions& p) {
   c.pb_cut = D("image.pb_cut");
   require(c.pb_cut >= 0.0 && c.pb_cut <= 1.0, "image.pb_cut", txt(c.pb_cut), "0 <= image.pb_cut <= 1");
 
-  c.bg.box_beams = D("noise.box_beams");
-  c.bg.box_pixels = I("noise.box_pixels");
-  c.bg.step_beams = D("noise.step_beams");
+  c.bg.box_beams = D("noise.window_beams");
+  c.bg.box_pixels = I("noise.window_pixels");
+  c.bg.step_beams = D("noise.grid_spacing_beams");
   c.bg.clip_sigma = D("noise.clip_sigma");
-  require(c.bg.box_beams > 0.0, "noise.box_beams", txt(c.bg.box_beams), "noise.box_beams > 0");
-  require(c.bg.box_pixels >= 0, "noise.box_pixels", std::to_string(c.bg.box_pixels), "noise.box_pixels >= 0");
-  require(c.bg.step_beams >= 0.0, "noise.step_beams", txt(c.bg.step_beams), "noise.step_beams >= 0");
+  require(c.bg.box_beams > 0.0, "noise.window_beams", txt(c.bg.box_beams), "noise.window_beams > 0");
+  require(c.bg.box_pixels >= 0, "noise.window_pixels", std::to_string(c.bg.box_pixels), "noise.window_pixels >= 0");
+  require(c.bg.step_beams >= 0.0, "noise.grid_spacing_beams", txt(c.bg.step_beams), "noise.grid_spacing_beams >= 0");
   require(c.bg.clip_sigma >= 1.5, "noise.clip_sigma", txt(c.bg.clip_sigma), "noise.clip_sigma >= 1.5");
   c.second_pass = B("noise.second_pass");
   c.mask_margin_beams = D("noise.mask_margin_beams");
@@ -246,13 +246,13 @@ Config read_config(const ParsedOptions& p) {
 
   c.islands.peak_snr = D("detect.peak_snr");
   c.islands.grow_snr = D("detect.grow_snr");
-  const double alpha = D("detect.fdr_alpha");
-  require(alpha >= 0.0 && alpha < 1.0, "detect.fdr_alpha", txt(alpha), "0 <= detect.fdr_alpha < 1 (0 = fixed threshold)");
+  const double alpha = D("detect.false_discovery_rate");
+  require(alpha >= 0.0 && alpha < 1.0, "detect.false_discovery_rate", txt(alpha), "0 <= detect.false_discovery_rate < 1 (0 = fixed threshold)");
   if (alpha > 0.0) {
     c.islands.peak_threshold = PeakThreshold::fdr;
     c.islands.fdr_alpha = alpha;
   }
-  c.islands.fdr_arbitrary_dependence = B("detect.fdr_any_dependence");
+  c.islands.fdr_arbitrary_dependence = B("detect.false_discovery_any_dependence");
   c.islands.min_pixels = vm["detect.min_pixels"].as<long>();
   if (const std::string e = c.islands.validate(); !e.empty()) throw UsageError("detect: " + e);
 
@@ -261,13 +261,13 @@ Config read_config(const ParsedOptions& p) {
           std::to_string(c.fit.max_components), "1 <= fit.max_components <= 50");
   c.fit.prominence_snr = D("fit.prominence_snr");
   require(c.fit.prominence_snr >= 0.0, "fit.prominence_snr", txt(c.fit.prominence_snr), "fit.prominence_snr >= 0");
-  c.fit.min_size_beam_fraction = D("fit.min_size_beams");
-  require(c.fit.min_size_beam_fraction > 0.0 && c.fit.min_size_beam_fraction <= 1.0, "fit.min_size_beams",
-          txt(c.fit.min_size_beam_fraction), "0 < fit.min_size_beams <= 1");
+  c.fit.min_size_beam_fraction = D("fit.min_size_beam_fraction");
+  require(c.fit.min_size_beam_fraction > 0.0 && c.fit.min_size_beam_fraction <= 1.0, "fit.min_size_beam_fraction",
+          txt(c.fit.min_size_beam_fraction), "0 < fit.min_size_beam_fraction <= 1");
   c.fit.fix_shape_to_beam = B("fit.fixed_shape");
-  c.fit.fit_margin_beam_sigma = D("fit.margin_beam_sigma");
-  require(c.fit.fit_margin_beam_sigma >= 0.0 && c.fit.fit_margin_beam_sigma <= 10.0, "fit.margin_beam_sigma",
-          txt(c.fit.fit_margin_beam_sigma), "0 <= fit.margin_beam_sigma <= 10");
+  c.fit.fit_margin_beam_sigma = D("fit.region_margin_beam_sigma");
+  require(c.fit.fit_margin_beam_sigma >= 0.0 && c.fit.fit_margin_beam_sigma <= 10.0, "fit.region_margin_beam_sigma",
+          txt(c.fit.fit_margin_beam_sigma), "0 <= fit.region_margin_beam_sigma <= 10");
   c.fit.use_information_criterion = B("fit.information_criterion");
   c.fit.lm.max_iterations = I("fit.max_iterations");
   require(c.fit.lm.max_iterations >= 1, "fit.max_iterations", std::to_string(c.fit.lm.max_iterations), "fit.max_iterations >= 1");
@@ -304,7 +304,7 @@ Config read_config(const ParsedOptions& p) {
           txt(c.flags.blank_margin_beams), "0 <= value <= 100");
   require(c.flags.bright_radius_beams >= 0.0, "catalogue.bright_radius_beams", txt(c.flags.bright_radius_beams), ">= 0");
   require(c.flags.bright_ratio >= 1.0, "catalogue.bright_ratio", txt(c.flags.bright_ratio), "catalogue.bright_ratio >= 1");
-  c.name_prefix = S("catalogue.name_prefix");
+  c.designation_prefix = S("catalogue.designation_prefix");
 
   for (const auto& f : split(S("output.formats"), ',')) {
     if (f == "csv") c.fmt_csv = true;
@@ -498,10 +498,15 @@ std::uint32_t flags_from_fit(const PixelComponent& c) {
       c.status == ComponentStatus::kNotConverged)
     f |= kFlagFitFailed;
   if (c.fit_flags & (kFitMomentsFallback | kFitNotConverged)) f |= kFlagFitFailed;
-  if (c.fit_flags & kFitShapeFixed) f |= kFlagFixedShape;
   if (c.fit_flags & (kFitAtSizeBound | kFitAtPositionBound)) f |= kFlagAtBound;
-  if (c.fit_flags & kFitReducedComponents) f |= kFlagFewerComponents;
   return f;
+}
+
+std::uint32_t info_bits_from_fit(const PixelComponent& c) {
+  std::uint32_t b = 0;
+  if (c.fit_flags & kFitShapeFixed) b |= kInfoFixedShape;
+  if (c.fit_flags & kFitReducedComponents) b |= kInfoFewerComponents;
+  return b;
 }
 
 double nan_if(bool cond, double v) { return cond ? std::numeric_limits<double>::quiet_NaN() : v; }
@@ -646,8 +651,8 @@ int run_extract(const std::vector<std::string>& args) {
       {"ORIGIN", fits_string(std::string("skerry ") + SKERRY_VERSION + " (" + SKERRY_GIT_REVISION + ")")}};
   std::future<void> map_writes;
   if (cfg.write_maps) {
-    const std::string rms_path = stage.path(N + ".rms.fits"), bg_path = stage.path(N + ".background.fits"),
-                      labels_path = stage.path(N + ".islands.fits");
+    const std::string rms_path = stage.path(N + ".rms_map.fits"), bg_path = stage.path(N + ".background_map.fits"),
+                      labels_path = stage.path(N + ".island_map.fits");
     map_writes = std::async(std::launch::async, [&maps, &isl, &sky, &cards, rms_path, bg_path, labels_path] {
       write_fits_image(rms_path, maps.rms_image(), sky, "JY/BEAM", cards);
       write_fits_image(bg_path, maps.background_image(), sky, "JY/BEAM", cards);
@@ -668,7 +673,7 @@ int run_extract(const std::vector<std::string>& args) {
       auto g = geometry_at(sky, island_beam[k], is.peak_x, is.peak_y);
       island_geom[k] = g ? *g : *centre_geom;
       const Geometry& gg = island_geom[k];
-      // Margin: free pixels within fit.margin_beam_sigma beam sigmas, plus one.
+      // Margin: free pixels within fit.region_margin_beam_sigma beam sigmas, plus one.
       Eigen::SelfAdjointEigenSolver<Eigen::Matrix2d> es(gg.beam_cov_pix);
       const long m = 1 + static_cast<long>(std::ceil(cfg.fit.fit_margin_beam_sigma * std::sqrt(es.eigenvalues()(1))));
       const long x0 = std::max(0L, static_cast<long>(is.x_min) - m), x1 = std::min(nx - 1, static_cast<long>(is.x_max) + m);
@@ -750,6 +755,7 @@ int run_extract(const std::vector<std::string>& args) {
         r.x_pix = pc.x;
         r.y_pix = pc.y;
         std::uint32_t flags = flags_from_fit(pc);
+        std::uint32_t info = info_bits_from_fit(pc);
         if (f.n_maxima > cfg.fit.max_components) flags |= kFlagComponentCap;
         const long px = std::clamp(std::lround(pc.x), 0L, nx - 1), py = std::clamp(std::lround(pc.y), 0L, ny - 1);
         const bool pos_ok = std::isfinite(pc.x) && std::isfinite(pc.y);
@@ -778,13 +784,13 @@ int run_extract(const std::vector<std::string>& args) {
         r.min_err_arcsec = sc.min_err_arcsec;
         r.pa_deg = sc.pa_deg;
         r.pa_err_deg = sc.pa_err_deg;
-        r.dc_maj_arcsec = sc.deconv_maj_arcsec;
-        r.dc_maj_err_arcsec = nan_if(sc.deconv_maj_upper_limit, sc.deconv_maj_err_arcsec);
-        r.dc_min_arcsec = sc.deconv_min_arcsec;
-        r.dc_min_err_arcsec = nan_if(sc.deconv_min_upper_limit, sc.deconv_min_err_arcsec);
-        r.dc_pa_deg = sc.deconv_pa_deg;
-        r.dc_pa_err_deg = nan_if(sc.deconv_maj_upper_limit, sc.deconv_pa_err_deg);
-        if (sc.deconv_maj_upper_limit) flags |= kFlagUnresolved;
+        r.intrinsic_maj_arcsec = sc.deconv_maj_arcsec;
+        r.intrinsic_maj_err_arcsec = nan_if(sc.deconv_maj_upper_limit, sc.deconv_maj_err_arcsec);
+        r.intrinsic_min_arcsec = sc.deconv_min_arcsec;
+        r.intrinsic_min_err_arcsec = nan_if(sc.deconv_min_upper_limit, sc.deconv_min_err_arcsec);
+        r.intrinsic_pa_deg = sc.deconv_pa_deg;
+        r.intrinsic_pa_err_deg = nan_if(sc.deconv_maj_upper_limit, sc.deconv_pa_err_deg);
+        if (sc.deconv_maj_upper_limit) info |= kInfoUnresolved;
         r.background_jy_per_beam = pos_ok ? maps.background_at(static_cast<int>(px), static_cast<int>(py)) : NAN;
         r.rms_jy_per_beam = sc.local_rms_jy_per_beam;
         if (!(r.rms_jy_per_beam > 0.0) || !std::isfinite(r.rms_jy_per_beam)) {
@@ -801,6 +807,7 @@ int run_extract(const std::vector<std::string>& args) {
         r.s_int_pbcor_jy = pbc ? sc.s_int_pbcor_jy : NAN;
         r.s_int_pbcor_err_jy = pbc ? sc.s_int_pbcor_err_jy : NAN;
         r.flags = flags;
+        r.info_bits = info;
         per_island[k].push_back(r);
 
         CatalogueComponent cc;
@@ -819,6 +826,7 @@ int run_extract(const std::vector<std::string>& args) {
                            : Ellipse{sc.deconv_maj_arcsec, sc.deconv_min_upper_limit ? 0.0 : sc.deconv_min_arcsec,
                                      sc.deconv_pa_deg};
         cc.flags = flags;
+        cc.info_bits = info;
         per_island_cat[k].push_back(cc);
       }
     }
@@ -901,7 +909,7 @@ int run_extract(const std::vector<std::string>& args) {
       {"beam_maj_arcsec", std::to_string(sky.beam.maj_arcsec)},
       {"beam_min_arcsec", std::to_string(sky.beam.min_arcsec)},
       {"beam_pa_deg", std::to_string(sky.beam.pa_deg)},
-      {"freq_hz", std::isfinite(sky.freq_hz) ? std::to_string(sky.freq_hz) : std::string("unknown")},
+      {"freq_mhz", std::isfinite(sky.freq_hz) ? std::to_string(sky.freq_hz / 1e6) : std::string("unknown")},
       {"peak_snr_used", std::to_string(isl.peak_snr_used)},
       {"grow_snr_used", std::to_string(isl.grow_snr_used)},
       {"noise_passes", std::to_string(noise_passes)},
@@ -924,13 +932,13 @@ int run_extract(const std::vector<std::string>& args) {
   if (cfg.write_model || cfg.write_residual) model = render_model(nx, ny, all_pix, 6.0);
   std::future<void> model_write, residual_write;
   if (cfg.write_model) {
-    const std::string model_path = stage.path(N + ".model.fits");
+    const std::string model_path = stage.path(N + ".model_map.fits");
     model_write = std::async(std::launch::async, [&model, &sky, &cards, model_path] {
       write_fits_image(model_path, model, sky, "JY/BEAM", cards);
     });
   }
   if (cfg.write_residual) {
-    const std::string residual_path = stage.path(N + ".residual.fits");
+    const std::string residual_path = stage.path(N + ".residual_map.fits");
     residual_write = std::async(std::launch::async, [&model, &sky, &cards, residual_path] {
       const ImageF residual = sky.pixels - model;  // residual = image - model (background kept)
       write_fits_image(residual_path, residual, sky, "JY/BEAM", cards);
@@ -944,13 +952,15 @@ int run_extract(const std::vector<std::string>& args) {
     if (cfg.fmt_vot) write_table(t, stage.path(N + ".components.vot"));
   }
   {
-    // The island table is CSV (and VOTable when asked); NAME.islands.fits is the label map.
+    // The island table is always CSV (the report reads it), and FITS/VOTable as
+    // asked; NAME.island_map.fits is the label image.
     const Table t = make_island_table(islands, meta, freq);
     write_table(t, stage.path(N + ".islands.csv"));
+    if (cfg.fmt_fits) write_table(t, stage.path(N + ".islands.fits"));
     if (cfg.fmt_vot) write_table(t, stage.path(N + ".islands.vot"));
   }
   {
-    const Table t = make_source_table(sources, meta, freq, cfg.name_prefix);
+    const Table t = make_source_table(sources, meta, freq, cfg.designation_prefix);
     if (cfg.fmt_csv) write_table(t, stage.path(N + ".sources.csv"));
     if (cfg.fmt_fits) write_table(t, stage.path(N + ".sources.fits"));
     if (cfg.fmt_vot) write_table(t, stage.path(N + ".sources.vot"));

@@ -1,6 +1,7 @@
 // `skerry match A B --out DIR`: cross-match catalogues by sky separation.
 //
-// Modes (match.mode): nearest, all, one-to-one, error (error-aware), self (one
+// Modes (match.mode): nearest, all, one_to_one, sigma_scaled (separations in
+// units of the combined position errors), self (one
 // catalogue, duplicates and friends-of-friends groups), multi (the first
 // catalogue is the master list, every further one is matched to it).
 // Outputs (NAME = the stems of A and B joined by '_'):
@@ -324,10 +325,10 @@ Catalogue load_catalogue(const std::string& path, const SideOptions& so, const s
   }
   cat.freq_hz = so.freq_hz;
   if (!(cat.freq_hz > 0))
-    if (const std::string* m = t.get_meta("freq_hz")) {
+    if (const std::string* m = t.get_meta("freq_mhz")) {
       double v = 0;
       auto r = std::from_chars(m->data(), m->data() + m->size(), v);
-      if (r.ec == std::errc() && v > 0) cat.freq_hz = v;
+      if (r.ec == std::errc() && v > 0) cat.freq_hz = v * 1e6;
     }
   return cat;
 }
@@ -398,8 +399,8 @@ std::string mode_name(MatchMode m) {
   switch (m) {
     case MatchMode::Nearest: return "nearest";
     case MatchMode::All: return "all";
-    case MatchMode::OneToOne: return "one-to-one";
-    case MatchMode::ErrorAware: return "error";
+    case MatchMode::OneToOne: return "one_to_one";
+    case MatchMode::ErrorAware: return "sigma_scaled";
   }
   return "?";
 }
@@ -409,14 +410,14 @@ nlohmann::ordered_json num(double v) {
 }
 
 int run_match(const std::vector<std::string>& args) {
-  po::options_description d("match options (config-file section [match])");
+  po::options_description d("match options (options are match.KEY; in a config file, KEY goes under [match])");
   d.add_options()
       ("catalogues", po::value<std::vector<std::string>>()->multitoken(), "input catalogues (.csv, .fits, .vot): A B, or one (self), or master + several (multi)")
       ("out", po::value<std::string>()->default_value("outputs/match"), "output folder")
-      ("match.mode", po::value<std::string>()->default_value("nearest"), "nearest | all | one-to-one | error | self | multi")
-      ("match.radius_arcsec", po::value<double>()->default_value(5.0), "match radius [arcsec] (error mode: the largest separation considered)")
-      ("match.completeness", po::value<double>()->default_value(0.997), "error mode: completeness p; match when d < sqrt(-2 ln(1-p))")
-      ("match.systematic_arcsec", po::value<double>()->default_value(0.0), "error mode: systematic error per coordinate added to both catalogues' [arcsec]")
+      ("match.mode", po::value<std::string>()->default_value("nearest"), "nearest | all | one_to_one | sigma_scaled | self | multi")
+      ("match.radius_arcsec", po::value<double>()->default_value(5.0), "match radius [arcsec] (sigma_scaled mode: the largest separation considered)")
+      ("match.completeness", po::value<double>()->default_value(0.997), "sigma_scaled mode: completeness p; match when d < sqrt(-2 ln(1-p))")
+      ("match.systematic_arcsec", po::value<double>()->default_value(0.0), "sigma_scaled mode: systematic error per coordinate added to both catalogues' [arcsec]")
       ("match.ra_a", po::value<std::string>()->default_value(""), "RA (or Galactic longitude) column of A; empty = from UCDs or common names")
       ("match.dec_a", po::value<std::string>()->default_value(""), "Dec (or Galactic latitude) column of A")
       ("match.ra_b", po::value<std::string>()->default_value(""), "RA column of B (and of every further catalogue in multi mode)")
@@ -431,8 +432,8 @@ int run_match(const std::vector<std::string>& args) {
       ("match.flux_b", po::value<std::string>()->default_value(""), "flux density column of B")
       ("match.flux_err_a", po::value<std::string>()->default_value(""), "flux density error column of A")
       ("match.flux_err_b", po::value<std::string>()->default_value(""), "flux density error column of B")
-      ("match.freq_a_hz", po::value<double>()->default_value(0.0), "frequency of A [Hz]; 0 = the table's freq_hz metadata")
-      ("match.freq_b_hz", po::value<double>()->default_value(0.0), "frequency of B [Hz]")
+      ("match.freq_a_mhz", po::value<double>()->default_value(0.0), "frequency of A [MHz]; 0 = the table's freq_mhz metadata")
+      ("match.freq_b_mhz", po::value<double>()->default_value(0.0), "frequency of B [MHz]; 0 = the table's freq_mhz metadata")
       ("match.spectral_index", po::value<double>()->default_value(-0.7), "assumed alpha (S ~ nu^alpha) for the flux ratio when the frequencies differ")
       ("match.columns_a", po::value<std::string>()->default_value("*"), "columns of A to carry (comma list, * = all, none)")
       ("match.columns_b", po::value<std::string>()->default_value("*"), "columns of B to carry")
@@ -456,10 +457,10 @@ int run_match(const std::vector<std::string>& args) {
   MatchMode mode = MatchMode::Nearest;
   if (mode_s == "nearest") mode = MatchMode::Nearest;
   else if (mode_s == "all") mode = MatchMode::All;
-  else if (mode_s == "one-to-one" || mode_s == "one_to_one") mode = MatchMode::OneToOne;
-  else if (mode_s == "error") mode = MatchMode::ErrorAware;
+  else if (mode_s == "one_to_one") mode = MatchMode::OneToOne;
+  else if (mode_s == "sigma_scaled") mode = MatchMode::ErrorAware;
   else if (!self && !multi)
-    throw UsageError("--match.mode = " + mode_s + " breaks 'nearest, all, one-to-one, error, self or multi'");
+    throw UsageError("--match.mode = " + mode_s + " breaks 'nearest, all, one_to_one, sigma_scaled, self or multi'");
   if (self && files.size() != 1) throw UsageError("match.mode self takes exactly one catalogue");
   if (multi && files.size() < 2) throw UsageError("match.mode multi takes a master catalogue and at least one more");
   if (!self && !multi && files.size() != 2) throw UsageError("match takes two catalogues A B (got " + std::to_string(files.size()) + ")");
@@ -477,9 +478,9 @@ int run_match(const std::vector<std::string>& args) {
   if (formats.empty()) formats.push_back("csv");
 
   SideOptions sa{S("match.ra_a"), S("match.dec_a"), S("match.ra_err_a"), S("match.dec_err_a"),
-                 S("match.flux_a"), S("match.flux_err_a"), S("match.frame_a"), D("match.freq_a_hz")};
+                 S("match.flux_a"), S("match.flux_err_a"), S("match.frame_a"), D("match.freq_a_mhz") * 1e6};
   SideOptions sb{S("match.ra_b"), S("match.dec_b"), S("match.ra_err_b"), S("match.dec_err_b"),
-                 S("match.flux_b"), S("match.flux_err_b"), S("match.frame_b"), D("match.freq_b_hz")};
+                 S("match.flux_b"), S("match.flux_err_b"), S("match.frame_b"), D("match.freq_b_mhz") * 1e6};
 
   const std::string out_dir = vm["out"].as<std::string>();
   std::string name = S("match.name");
@@ -518,7 +519,7 @@ int run_match(const std::vector<std::string>& args) {
       ij["position_columns"] = {c.ra_col, c.dec_col};
       ij["frame"] = c.frame;
       if (!c.flux_col.empty()) ij["flux_column"] = c.flux_col;
-      if (c.freq_hz > 0) ij["freq_hz"] = c.freq_hz;
+      if (c.freq_hz > 0) ij["freq_mhz"] = c.freq_hz / 1e6;
       inputs.push_back(ij);
       if (c.no_position)
         std::cerr << "skerry match: note: " << files[i] << ": " << c.no_position
@@ -556,7 +557,7 @@ int run_match(const std::vector<std::string>& args) {
     pairs.add_f64("pa_deg", "deg", "pos.posAng", "Position angle of row_b seen from row_a, east of north, [0, 360)", pa);
     pairs.add_i64("n_candidates", "", "meta.number", "Other rows within the radius of row_a", nc);
     pairs.add_i64("rank", "", "meta.number", "Rank of row_b among row_a's neighbours (1 = closest)", rk);
-    pairs.add_i64("group_id", "", "meta.id.parent", "Friends-of-friends group (smallest row index in the group)", gid);
+    pairs.add_i64("fof_group_id", "", "meta.id.parent", "Friends-of-friends group (smallest row index in the group)", gid);
     for (const Column* col : carried(c.table, c.path, S("match.columns_a"))) {
       append_column(pairs, *col, S("match.prefix_a"), ia);
       append_column(pairs, *col, S("match.prefix_b"), ib);
@@ -567,9 +568,9 @@ int run_match(const std::vector<std::string>& args) {
     std::vector<std::int64_t> rows(c.table.rows());
     for (std::size_t i = 0; i < rows.size(); ++i) rows[i] = static_cast<std::int64_t>(i);
     groups.add_i64("row", "", "meta.id", "0-based row of the input catalogue", rows);
-    groups.add_i64("group_id", "", "meta.id.parent", "Friends-of-friends group: smallest row index among rows linked by separations within the radius", r.group);
+    groups.add_i64("fof_group_id", "", "meta.id.parent", "Friends-of-friends group: smallest row index among rows linked by separations within the radius", r.group);
     std::vector<std::int64_t> gs(r.group_size.begin(), r.group_size.end());
-    groups.add_i64("group_size", "", "meta.number", "Rows in the group (1 = no duplicate)", gs);
+    groups.add_i64("fof_group_members", "", "meta.number", "Rows in the friends-of-friends group (1 = no duplicate)", gs);
     for (const Column* col : carried(c.table, c.path, S("match.columns_a"))) append_column(groups, *col, "", rows);
     set_provenance(groups, "self", radius, parsed);
     {
@@ -733,7 +734,7 @@ int run_match(const std::vector<std::string>& args) {
   counts["unmatched_b"] = B.table.rows() - matched_b;
   js["counts"] = counts;
   if (mode == MatchMode::ErrorAware) {
-    js["error_mode"] = {{"completeness", p}, {"k", r.k_threshold}, {"systematic_arcsec", mo.systematic_arcsec}};
+    js["sigma_scaled_mode"] = {{"completeness", p}, {"k", r.k_threshold}, {"systematic_arcsec", mo.systematic_arcsec}};
   }
   {
     // Offsets from the best pair of each A row (rank 1).
@@ -767,8 +768,8 @@ int run_match(const std::vector<std::string>& args) {
                                    {"robust_scatter", num(fr.robust_scatter)},
                                    {"columns", {A.flux_col, B.flux_col}},
                                    {"spectral_index_assumed", corrected ? num(alpha) : nlohmann::ordered_json(nullptr)},
-                                   {"freq_a_hz", num(A.freq_hz)},
-                                   {"freq_b_hz", num(B.freq_hz)},
+                                   {"freq_a_mhz", num(A.freq_hz / 1e6)},
+                                   {"freq_b_mhz", num(B.freq_hz / 1e6)},
                                    {"method", "median of S_A / (S_B (nu_A/nu_B)^alpha); scatter 1.4826 MAD"}};
     }
   }

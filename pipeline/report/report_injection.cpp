@@ -143,7 +143,7 @@ InjectionResult run_injection(const InjectionOptions& o) {
   ImageReadOptions ro;
   ro.require_beam = false;
   ro.allow_all_blank = true;
-  const SkyImage rms = read_sky_image(tmp + "/base/" + name + ".rms.fits", ro);
+  const SkyImage rms = read_sky_image(tmp + "/base/" + name + ".rms_map.fits", ro);
   {
     std::ifstream in(tmp + "/base/" + name + ".run.json");
     std::stringstream ss;
@@ -285,7 +285,7 @@ InjectionResult run_injection(const InjectionOptions& o) {
         n.push_back(static_cast<std::int64_t>(b.n)); k.push_back(static_cast<std::int64_t>(b.k));
         f.push_back(b.fraction); flo.push_back(b.fraction_lo); fhi.push_back(b.fraction_hi); mr.push_back(b.mean_ratio);
       }
-    t.add_text("variable", "", "meta.code", "Binning variable: injected s_peak_jy_per_beam [Jy/beam] or injected snr (peak / local rms)", var);
+    t.add_text("binned_by", "", "meta.code", "Quantity the rows are binned by: injected s_peak_jy_per_beam [Jy/beam] or injected snr (peak / local rms)", var);
     t.add_f64("lo", "", "stat.min", "Bin lower edge (unit of the variable)", lo);
     t.add_f64("hi", "", "stat.max", "Bin upper edge (unit of the variable)", hi);
     t.add_f64("centre", "", "stat.value", "Bin centre (arithmetic mean of the edges)", c);
@@ -323,7 +323,7 @@ InjectionResult run_injection(const InjectionOptions& o) {
     t.add_f64("reliability", "", "stat.value", "1 - n_negative / n_positive, clipped to [0, 1]", f);
     t.add_f64("reliability_lo", "", "stat.error", "Lower limit from the Gehrels (1986) upper limit on n_negative", flo);
     t.add_f64("reliability_hi", "", "stat.error", "Upper limit from the Gehrels (1986) lower limit on n_negative", fhi);
-    t.add_f64("false_detection_rate", "", "stat.value", "n_negative / n_positive", fdr);
+    t.add_f64("negative_to_positive_ratio", "", "stat.value", "n_negative / n_positive: detections on the negated image per detection on the image", fdr);
     const std::string p = (od / (name + ".reliability.csv")).string();
     write_table(t, p);
     res.outputs.push_back(p);

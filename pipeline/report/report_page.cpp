@@ -101,7 +101,7 @@ struct Run {
 std::string find_name(const fs::path& dir, const std::string& wanted) {
   if (!wanted.empty()) return wanted;
   std::vector<std::string> names;
-  for (const char* suffix : {".run.json", ".components.csv", ".components.fits", ".rms.fits"}) {
+  for (const char* suffix : {".run.json", ".components.csv", ".components.fits", ".rms_map.fits"}) {
     const std::string sfx = suffix;
     for (const auto& e : fs::directory_iterator(dir)) {
       const std::string f = e.path().filename().string();
@@ -112,7 +112,7 @@ std::string find_name(const fs::path& dir, const std::string& wanted) {
   }
   std::sort(names.begin(), names.end());
   names.erase(std::unique(names.begin(), names.end()), names.end());
-  if (names.empty()) throw InputError(dir.string(), "no run found (no NAME.run.json, NAME.components.csv or NAME.rms.fits)");
+  if (names.empty()) throw InputError(dir.string(), "no run found (no NAME.run.json, NAME.components.csv or NAME.rms_map.fits)");
   if (names.size() > 1)
     throw UsageError(dir.string() + ": holds several runs (" + names[0] + ", " + names[1] +
                      ", ...); choose one with --report.name");
@@ -255,10 +255,10 @@ ReportResult write_report(const ReportOptions& opt) {
   ImageReadOptions ro;
   ro.require_beam = false;
   ro.allow_all_blank = true;
-  if (fs::exists(P(".rms.fits"))) rms = read_sky_image(P(".rms.fits"), ro);
-  else res.missing.push_back("no noise map " + N + ".rms.fits: no visibility area, counts not area-corrected");
-  if (fs::exists(P(".residual.fits"))) residual = read_sky_image(P(".residual.fits"), ro);
-  else res.missing.push_back("no residual image " + N + ".residual.fits");
+  if (fs::exists(P(".rms_map.fits"))) rms = read_sky_image(P(".rms_map.fits"), ro);
+  else res.missing.push_back("no noise map " + N + ".rms_map.fits: no visibility area, counts not area-corrected");
+  if (fs::exists(P(".residual_map.fits"))) residual = read_sky_image(P(".residual_map.fits"), ro);
+  else res.missing.push_back("no residual image " + N + ".residual_map.fits");
   std::string image_path;
   if (run.have_record && run.record.contains("inputs"))
     for (const auto& in : run.record["inputs"])
@@ -267,15 +267,15 @@ ReportResult write_report(const ReportOptions& opt) {
     try { image = read_sky_image(image_path, ro); } catch (const std::exception& e) {
       res.missing.push_back("input image unreadable: " + std::string(e.what()));
     }
-  } else if (residual && fs::exists(P(".model.fits"))) {
+  } else if (residual && fs::exists(P(".model_map.fits"))) {
     // The input image is residual + model: extract's residual is image - model, with
     // the background left in it (README, "What skerry extract writes").
-    const SkyImage m = read_sky_image(P(".model.fits"), ro);
+    const SkyImage m = read_sky_image(P(".model_map.fits"), ro);
     if (m.pixels.rows() == residual->pixels.rows() && m.pixels.cols() == residual->pixels.cols()) {
       image = *residual;
       image->pixels = residual->pixels + m.pixels;
     } else {
-      res.missing.push_back("input image not found, and " + N + ".model.fits differs in shape from the residual");
+      res.missing.push_back("input image not found, and " + N + ".model_map.fits differs in shape from the residual");
     }
   } else {
     res.missing.push_back("input image not found" + (image_path.empty() ? std::string() : " (" + image_path + ")"));
@@ -291,13 +291,10 @@ ReportResult write_report(const ReportOptions& opt) {
   const auto s_int = column(comps, "s_int_jy"), s_int_err = column(comps, "s_int_err_jy");
   const auto s_peak = column(comps, "s_peak_jy_per_beam"), snr = column(comps, "snr");
   const auto flags = column(comps, "flags"), resolved = column(comps, "resolved");
-  // Quality flags: every bit but the informational ones (unresolved: the deconvolved size is an
-  // upper limit; fixed_shape: the user asked for beam-shaped fits), which do not make a
-  // measurement doubtful.
-  const std::uint32_t informational = kFlagUnresolved | kFlagFixedShape;
+  // Flagged = any quality warning in `flags` (informational bits live in `info_bits`).
   std::size_t n_flagged = 0;
   for (double f : flags)
-    if (std::isfinite(f) && f >= 0 && (static_cast<std::uint32_t>(f) & ~informational) != 0) ++n_flagged;
+    if (std::isfinite(f) && f > 0) ++n_flagged;
 
   std::ostringstream body;
   std::vector<std::string> nav;
@@ -478,7 +475,7 @@ ReportResult write_report(const ReportOptions& opt) {
   section("quality", "Completeness and reliability");
   if (have_compl) {
     const Table t = read_table(P(".completeness.csv"));
-    const auto var = t.find("variable");
+    const auto var = t.find("binned_by");
     const auto x = column(t, "centre"), f = column(t, "completeness"), lo = column(t, "completeness_lo"),
                hi = column(t, "completeness_hi"), ratio = column(t, "mean_flux_ratio"), nn = column(t, "n_injected");
     Series cf{SeriesKind::ErrorPoints, {}, {}, {}, {}, col::kBlue, "", 3.5, 1.6, false};
@@ -539,9 +536,9 @@ ReportResult write_report(const ReportOptions& opt) {
   if (have_rel) {
     const Table t = read_table(P(".reliability.csv"));
     const auto x = column(t, "snr_centre"), f = column(t, "reliability"), lo = column(t, "reliability_lo"),
-               hi = column(t, "reliability_hi"), fdr = column(t, "false_detection_rate");
+               hi = column(t, "reliability_hi"), fdr = column(t, "negative_to_positive_ratio");
     Series rs{SeriesKind::ErrorPoints, x, f, lo, hi, col::kGreen, "reliability", 3.5, 1.6, false};
-    Series fs_{SeriesKind::Points, x, fdr, {}, {}, col::kVermillion, "false detection rate", 3.5, 1.6, false};
+    Series fs_{SeriesKind::Points, x, fdr, {}, {}, col::kVermillion, "negative / positive detections", 3.5, 1.6, false};
     Plot a;
     a.id = "plot-reliability";
     a.title = "Reliability from the negated image";
@@ -677,7 +674,7 @@ ReportResult write_report(const ReportOptions& opt) {
     const double frac = static_cast<double>(n_flagged) / static_cast<double>(comps.rows());
     if (frac > 0.1)
       res.warnings.push_back(std::to_string(n_flagged) + " of " + std::to_string(comps.rows()) + " components (" +
-                             fmt("%.0f", 100 * frac) + " %) carry quality flags (bits other than unresolved and fixed_shape): check the flag bits before using them.");
+                             fmt("%.0f", 100 * frac) + " %) carry quality warnings (flags != 0): check the flag bits before using them.");
     if (std::isfinite(compl90_jy)) {
       std::size_t below = 0;
       for (double s : s_peak) if (std::isfinite(s) && s < compl90_jy) ++below;

@@ -61,7 +61,7 @@ Table reference_catalogue(const Table& truth, std::uint64_t seed) {
   const auto& ra = truth.at("ra_deg").f64;
   const auto& dec = truth.at("dec_deg").f64;
   const auto& s_ref = truth.at("s_ref_jy").f64;
-  const auto& nu_ref = truth.at("ref_freq_hz").f64;
+  const auto& nu_ref_mhz = truth.at("ref_freq_mhz").f64;
   const auto& alpha = truth.at("alpha").f64;
   const auto& curv = truth.at("curvature").f64;
   const double nu_hz = 1.0e9, scale = 1.04, limit_jy = 3e-4, pos_err_arcsec = 0.6;
@@ -77,7 +77,7 @@ Table reference_catalogue(const Table& truth, std::uint64_t seed) {
     ra_min = std::min(ra_min, ra[i]); ra_max = std::max(ra_max, ra[i]);
     dec_min = std::min(dec_min, dec[i]); dec_max = std::max(dec_max, dec[i]);
     // log10 S(nu) = log10 S_ref + alpha x + curvature x^2, x = log10(nu / nu_ref)
-    const double x = std::log10(nu_hz / nu_ref[i]);
+    const double x = std::log10(nu_hz / (nu_ref_mhz[i] * 1e6));
     const double flux = s_ref[i] * std::pow(10.0, alpha[i] * x + curv[i] * x * x) * scale;
     const double flux_err = 1e-4 + 0.03 * flux;
     const double measured = flux + flux_err * gauss(rng);
@@ -152,10 +152,10 @@ int run_demo(const std::vector<std::string>& args) {
 
   const std::string img = (images / "lanternfish_1400MHz.fits").string();
   run_step("extract", {img, "--out", run.string(), "--threads", threads, "--image.primary_beam",
-                       (images / "lanternfish_1400MHz.pb.fits").string()});
+                       (images / "lanternfish_1400MHz.pb_map.fits").string()});
   run_step("match", {(run / "lanternfish_1400MHz.components.csv").string(), ref_path.string(), "--out",
-                     run.string(), "--threads", threads, "--match.mode", "one-to-one",
-                     "--match.freq_a_hz", "1.4e9", "--match.freq_b_hz", "1e9", "--match.flux_b", "s_1000mhz_jy",
+                     run.string(), "--threads", threads, "--match.mode", "one_to_one",
+                     "--match.freq_a_mhz", "1400", "--match.freq_b_mhz", "1000", "--match.flux_b", "s_1000mhz_jy",
                      "--match.flux_err_b", "s_1000mhz_err_jy"});
   // The spectra are measured for the 1.4 GHz catalogue's components (forced in every band).
   run_step("bands", {(images / "lanternfish_900MHz.fits").string(), img,

@@ -3,10 +3,10 @@
 //
 // Files written to DIR (NAME = output.name, FREQ e.g. 1400MHz):
 //   NAME_FREQ.fits          image [Jy/beam] with full WCS, BMAJ/BMIN/BPA, FREQ
-//   NAME_FREQ.pb.fits       primary-beam image (when primary_beam.fwhm_deg > 0 and
+//   NAME_FREQ.pb_map.fits       primary-beam image (when primary_beam.fwhm_deg > 0 and
 //                           output.primary_beam_images)
-//   NAME_FREQ.model.fits    noiseless sources (output.model_images)
-//   NAME_FREQ.background.fits  the smooth background alone (output.background_images)
+//   NAME_FREQ.model_map.fits    noiseless sources (output.model_images)
+//   NAME_FREQ.background_map.fits  the smooth background alone (output.background_images)
 //   NAME.truth.EXT          sky truth, one row per source (EXT = output.truth_format)
 //   NAME_FREQ.truth.EXT     per-band truth (pixel position, flux in that band, peak,
 //                           convolved shape, local rms, true SNR, flags)
@@ -54,7 +54,7 @@ std::vector<double> parse_list(const std::string& option, const std::string& tex
 }
 
 /// One value per band: a single value applies to every band. A default list of
-/// another length (the user changed bands.freqs_mhz only) is repeated cyclically.
+/// another length (the user changed bands.freq_mhz only) is repeated cyclically.
 std::vector<double> per_band(const ParsedOptions& p, const std::string& option, std::size_t nbands) {
   const std::string text = p.vm[option].as<std::string>();
   std::vector<double> v = parse_list(option, text);
@@ -93,9 +93,9 @@ po::options_description simulate_options() {
     ("seed", po::value<long long>()->default_value(20260601), "random seed: the same seed gives the same files for any thread count")
     ("output.name", po::value<std::string>()->default_value("lanternfish"), "file name stem")
     ("output.truth_format", po::value<std::string>()->default_value("csv"), "truth tables as csv, fits or vot")
-    ("output.primary_beam_images", po::value<bool>()->default_value(true), "write NAME_FREQ.pb.fits when there is a primary beam")
-    ("output.model_images", po::value<bool>()->default_value(false), "write the noiseless sources as NAME_FREQ.model.fits")
-    ("output.background_images", po::value<bool>()->default_value(false), "write the background alone as NAME_FREQ.background.fits")
+    ("output.primary_beam_images", po::value<bool>()->default_value(true), "write NAME_FREQ.pb_map.fits when there is a primary beam")
+    ("output.model_images", po::value<bool>()->default_value(false), "write the noiseless sources as NAME_FREQ.model_map.fits")
+    ("output.background_images", po::value<bool>()->default_value(false), "write the background alone as NAME_FREQ.background_map.fits")
     ("field.ra_deg", po::value<double>()->default_value(201.25), "field centre right ascension, ICRS [deg]")
     ("field.dec_deg", po::value<double>()->default_value(-38.6), "field centre declination, ICRS [deg]")
     ("field.size_pix", po::value<long>()->default_value(2048), "image side in pixels at the reference frequency")
@@ -104,7 +104,7 @@ po::options_description simulate_options() {
     ("field.rotation_deg", po::value<double>()->default_value(0.0), "grid rotation (CROTA2 sense) [deg]")
     ("field.east_right", po::value<bool>()->default_value(false), "east towards +x (CDELT1 > 0) instead of the usual east left")
     ("field.border_pix", po::value<long>()->default_value(0), "NaN border width [pixels of each band]")
-    ("bands.freqs_mhz", po::value<std::string>()->default_value("900,1400,3000"), "band frequencies [MHz], comma-separated")
+    ("bands.freq_mhz", po::value<std::string>()->default_value("900,1400,3000"), "band frequencies [MHz], comma-separated")
     ("bands.ref_freq_mhz", po::value<double>()->default_value(1400.0), "reference frequency of beam, pixel size, primary beam and spectra [MHz]")
     ("bands.beam_maj_arcsec", po::value<double>()->default_value(6.0), "restoring beam major FWHM at the reference frequency [arcsec]; scales as 1/frequency")
     ("bands.beam_min_arcsec", po::value<double>()->default_value(5.0), "restoring beam minor FWHM at the reference frequency [arcsec]")
@@ -177,11 +177,11 @@ int run_simulate(const std::vector<std::string>& args) {
   const long border = get<long>(p, "field.border_pix");
   require(border >= 0, "field.border_pix", std::to_string(border), "border_pix >= 0");
 
-  const std::vector<double> freqs_mhz = parse_list("bands.freqs_mhz", get<std::string>(p, "bands.freqs_mhz"));
+  const std::vector<double> freqs_mhz = parse_list("bands.freq_mhz", get<std::string>(p, "bands.freq_mhz"));
   for (std::size_t i = 0; i < freqs_mhz.size(); ++i) {
-    require(freqs_mhz[i] > 0.0, "bands.freqs_mhz", fmt(freqs_mhz[i]), "every frequency > 0");
+    require(freqs_mhz[i] > 0.0, "bands.freq_mhz", fmt(freqs_mhz[i]), "every frequency > 0");
     for (std::size_t j = 0; j < i; ++j)
-      require(freqs_mhz[i] != freqs_mhz[j], "bands.freqs_mhz", get<std::string>(p, "bands.freqs_mhz"),
+      require(freqs_mhz[i] != freqs_mhz[j], "bands.freq_mhz", get<std::string>(p, "bands.freq_mhz"),
               "distinct frequencies");
   }
   const std::size_t nb = freqs_mhz.size();
@@ -321,10 +321,10 @@ int run_simulate(const std::vector<std::string>& args) {
     if (bo.pb_fwhm_deg > 0.0) cards.push_back({"PBFWHM", fits_real(bo.pb_fwhm_deg)});
     write_fits_image(stem + ".fits", img.image, like, "Jy/beam", cards);
     if (bo.pb_fwhm_deg > 0.0 && get<bool>(p, "output.primary_beam_images"))
-      write_fits_image(stem + ".pb.fits", img.primary_beam, like, "", common_cards);
-    if (bo.keep_model) write_fits_image(stem + ".model.fits", img.model, like, "Jy/beam", common_cards);
+      write_fits_image(stem + ".pb_map.fits", img.primary_beam, like, "", common_cards);
+    if (bo.keep_model) write_fits_image(stem + ".model_map.fits", img.model, like, "Jy/beam", common_cards);
     if (bo.keep_background && img.background.size() > 0)
-      write_fits_image(stem + ".background.fits", img.background, like, "Jy/beam", common_cards);
+      write_fits_image(stem + ".background_map.fits", img.background, like, "Jy/beam", common_cards);
 
     Table bt = sim::band_truth_table(model.sources, img.sources, freq_hz, g.beam);
     bt.set_meta("image", name + "_" + freq_label(freqs_mhz[b]) + ".fits");

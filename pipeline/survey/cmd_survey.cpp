@@ -137,29 +137,35 @@ void slurm_progress(std::size_t done, std::size_t, void* ctx) {
 }
 
 int run_survey(const std::vector<std::string>& args) {
-  po::options_description d("survey");
+  po::options_description d("survey options");
   // clang-format off
   d.add_options()
-    ("survey-file", po::value<std::string>(), "the survey description (INI: [survey], extract's stage sections, [slurm])")
+    ("survey_file", po::value<std::string>(), "CONFIG: the survey file (INI: [survey], [catalogue], extract's and bands' stage sections, [slurm]); also given as the first argument")
     ("force", po::bool_switch(), "reprocess every tile (with --only: those tiles)")
     ("only", po::value<std::vector<std::string>>()->composing(), "process only this tile (by name; repeatable); it is reprocessed even when current")
     ("engine", po::value<std::string>(), "local or slurm (overrides survey.engine)")
-    ("worker-task", po::value<int>(), "internal: run task N of a Slurm run (--run-dir)")
-    ("merge-job", po::bool_switch(), "internal: the merge plan job of a Slurm run (--run-dir)")
-    ("partition-task", po::value<int>(), "internal: partition-merge task N of a Slurm run (--run-dir)")
-    ("concat-job", po::bool_switch(), "internal: the concatenation job of a Slurm run (--run-dir)")
-    ("run-dir", po::value<std::string>(), "internal: the Slurm run folder");
+    ("worker_task", po::value<int>(), "internal: run task N of a Slurm run (--run_dir)")
+    ("merge_job", po::bool_switch(), "internal: the merge plan job of a Slurm run (--run_dir)")
+    ("partition_task", po::value<int>(), "internal: partition-merge task N of a Slurm run (--run_dir)")
+    ("concat_job", po::bool_switch(), "internal: the concatenation job of a Slurm run (--run_dir)")
+    ("run_dir", po::value<std::string>(), "internal: the Slurm run folder");
   // clang-format on
+  CommonOptions common;
+  common.threads_help = "tiles processed at once by the local engine (0 = survey.workers, default 2)";
+  common.config = false;  // CONFIG is the survey file itself
   ParsedOptions opts = parse_options(
       "survey", "CONFIG [--force] [--only TILE]... [--engine local|slurm] [--threads N]\n\n"
                 "Processes new or changed tiles of a survey and merges all tiles into one catalogue.\n"
-                "--threads N: tiles run at once by the local engine (0 = survey.workers, default 2).\n"
                 "Exit codes: 0 done, 5 nothing to do, 6 some tiles failed, 7 busy (another run holds\n"
                 "the lock), 2 bad configuration.",
-      d, {{"survey-file", 1}}, args);
-  if (opts.help) return kExitOk;
-  if (!opts.vm.count("survey-file")) throw UsageError("survey: the survey description CONFIG is missing");
-  SurveyConfig cfg = load_survey_config(opts.vm["survey-file"].as<std::string>());
+      d, {{"survey_file", 1}}, args, common);
+  if (opts.help) {
+    std::cout << "\n";
+    print_survey_file_keys(std::cout);
+    return kExitOk;
+  }
+  if (!opts.vm.count("survey_file")) throw UsageError("survey: the survey file CONFIG is missing");
+  SurveyConfig cfg = load_survey_config(opts.vm["survey_file"].as<std::string>());
   if (opts.vm.count("engine")) {
     cfg.engine = opts.vm["engine"].as<std::string>();
     require(cfg.engine == "local" || cfg.engine == "slurm", "engine", cfg.engine, "local or slurm");
@@ -169,15 +175,15 @@ int run_survey(const std::vector<std::string>& args) {
   if (threads > 0) cfg.workers = threads;
 
   // ---- Slurm task and merge job: files only, no lock, no state record --------
-  if (opts.vm.count("worker-task") || opts.vm["merge-job"].as<bool>() || opts.vm.count("partition-task") ||
-      opts.vm["concat-job"].as<bool>()) {
-    if (!opts.vm.count("run-dir"))
-      throw UsageError("--worker-task, --merge-job, --partition-task and --concat-job need --run-dir");
-    const std::string run_dir = opts.vm["run-dir"].as<std::string>();
-    if (opts.vm.count("worker-task")) return slurm_worker_task(cfg, run_dir, opts.vm["worker-task"].as<int>());
+  if (opts.vm.count("worker_task") || opts.vm["merge_job"].as<bool>() || opts.vm.count("partition_task") ||
+      opts.vm["concat_job"].as<bool>()) {
+    if (!opts.vm.count("run_dir"))
+      throw UsageError("--worker_task, --merge_job, --partition_task and --concat_job need --run_dir");
+    const std::string run_dir = opts.vm["run_dir"].as<std::string>();
+    if (opts.vm.count("worker_task")) return slurm_worker_task(cfg, run_dir, opts.vm["worker_task"].as<int>());
     ThreadLimit tl(cfg.slurm.cpus_per_task);
-    if (opts.vm.count("partition-task")) return slurm_partition_task(cfg, run_dir, opts.vm["partition-task"].as<int>());
-    if (opts.vm["concat-job"].as<bool>()) return slurm_concat_job(cfg, run_dir);
+    if (opts.vm.count("partition_task")) return slurm_partition_task(cfg, run_dir, opts.vm["partition_task"].as<int>());
+    if (opts.vm["concat_job"].as<bool>()) return slurm_concat_job(cfg, run_dir);
     return slurm_merge_job(cfg, run_dir);
   }
 

@@ -45,34 +45,35 @@ std::string absolute_from(const std::string& base, const std::string& p) {
 
 }  // namespace
 
-SurveyConfig load_survey_config(const std::string& path) {
-  SurveyConfig cfg;
-  std::error_code ec;
-  fs::path abs = fs::absolute(path, ec);
-  if (ec || !fs::is_regular_file(abs, ec)) throw InputError(path, "cannot open survey configuration file");
-  cfg.config_path = abs.lexically_normal().string();
-  cfg.base_dir = abs.parent_path().lexically_normal().string();
+namespace {
 
+/// Where the survey file's values go while it is read.
+struct FileValues {
   std::string tiles, output, catalogue, engine, prefix, bands, detection_band;
   int workers = 2, tpt = 1, order = 4;
   double radius = 5.0, margin = 3.0;
-  po::options_description d("survey configuration");
+};
+
+/// Every key the survey file itself defines (the stage sections belong to
+/// extract and bands), bound to `cfg` and `t`.
+po::options_description survey_file_description(SurveyConfig& cfg, FileValues& t) {
+  po::options_description d("survey file keys");
   // clang-format off
   d.add_options()
     ("survey.name", po::value<std::string>(&cfg.name)->default_value("survey"), "survey name (logs, catalogue meta)")
-    ("survey.tiles", po::value<std::string>(&tiles), "tile images: globs or files, comma-separated, relative to this file")
-    ("survey.output", po::value<std::string>(&output), "output root folder, relative to this file")
-    ("survey.catalogue", po::value<std::string>(&catalogue)->default_value("survey.components.csv"), "merged catalogue file name in the output root (.csv, .fits or .vot)")
-    ("survey.bands", po::value<std::string>(&bands)->default_value(""), "multi-band tiles: file-stem suffix of each band, comma-separated (e.g. _0900MHz,_1400MHz,_3000MHz); empty = one band")
-    ("survey.detection_band", po::value<std::string>(&detection_band)->default_value(""), "suffix of the band whose extract catalogue gives a tile's components (default: the first of survey.bands)")
-    ("survey.engine", po::value<std::string>(&engine)->default_value("local"), "local or slurm")
-    ("survey.workers", po::value<int>(&workers)->default_value(2), "tiles processed at once by the local engine")
-    ("survey.threads_per_tile", po::value<int>(&tpt)->default_value(1), "--threads of each tile run")
-    ("survey.match_radius_arcsec", po::value<double>(&radius)->default_value(5.0), "self-match radius of the duplicate check [arcsec]")
-    ("survey.margin_match_radii", po::value<double>(&margin)->default_value(3.0), "overlap margin of a sky partition [match radii]")
-    ("survey.partition_order", po::value<int>(&order)->default_value(4), "HEALPix order of the merge partitions (results do not depend on it)")
+    ("survey.tiles", po::value<std::string>(&t.tiles), "tile images: globs or files, comma-separated, relative to this file")
+    ("survey.output", po::value<std::string>(&t.output), "output root folder, relative to this file")
+    ("survey.catalogue", po::value<std::string>(&t.catalogue)->default_value("survey.components.csv"), "merged catalogue file name in the output root (.csv, .fits or .vot)")
+    ("survey.bands", po::value<std::string>(&t.bands)->default_value(""), "multi-band tiles: file-stem suffix of each band, comma-separated (e.g. _0900MHz,_1400MHz,_3000MHz); empty = one band")
+    ("survey.detection_band", po::value<std::string>(&t.detection_band)->default_value(""), "suffix of the band whose extract catalogue gives a tile's components (default: the first of survey.bands)")
+    ("survey.engine", po::value<std::string>(&t.engine)->default_value("local"), "local or slurm")
+    ("survey.workers", po::value<int>(&t.workers)->default_value(2), "tiles processed at once by the local engine")
+    ("survey.threads_per_tile", po::value<int>(&t.tpt)->default_value(1), "--threads of each tile run")
+    ("survey.match_radius_arcsec", po::value<double>(&t.radius)->default_value(5.0), "self-match radius of the duplicate check [arcsec]")
+    ("survey.margin_match_radii", po::value<double>(&t.margin)->default_value(3.0), "overlap margin of a sky partition [match radii]")
+    ("survey.partition_order", po::value<int>(&t.order)->default_value(4), "HEALPix order of the merge partitions (results do not depend on it)")
     ("survey.merge_in_memory_rows", po::value<std::int64_t>(&cfg.merge_in_memory_rows)->default_value(1000000), "local engine: merge surveys of at most this many tile rows in memory (same bytes as on disk; 0 = always on disk)")
-    ("survey.designation_prefix", po::value<std::string>(&prefix)->default_value("SKDC"), "designation prefix of merged source names")
+    ("catalogue.designation_prefix", po::value<std::string>(&t.prefix)->default_value("SKDC"), "prefix of the source designations (PREFIX JHHMMSS.s+DDMMSS): the merged catalogue's and every tile's (passed to extract)")
     ("survey.ra_column", po::value<std::string>(&cfg.ra_column)->default_value("ra_deg"), "RA column of the tile component tables [deg]")
     ("survey.dec_column", po::value<std::string>(&cfg.dec_column)->default_value("dec_deg"), "Dec column of the tile component tables [deg]")
     ("slurm.partition", po::value<std::string>(&cfg.slurm.partition)->default_value(""), "sbatch --partition (empty: the default)")
@@ -86,6 +87,46 @@ SurveyConfig load_survey_config(const std::string& path) {
     ("slurm.poll_seconds", po::value<double>(&cfg.slurm.poll_seconds)->default_value(1.0), "squeue polling interval [s]")
     ("slurm.extra", po::value<std::string>(&cfg.slurm.extra)->default_value(""), "extra sbatch arguments, space-separated");
   // clang-format on
+  return d;
+}
+
+}  // namespace
+
+void print_survey_file_keys(std::ostream& os) {
+  SurveyConfig cfg;
+  FileValues t;
+  const po::options_description d = survey_file_description(cfg, t);
+  os << "Survey file keys (SECTION.KEY; in CONFIG, KEY goes under [SECTION]; every other section is\n"
+        "a stage setting of extract, or of bands for [bands], [forced] and [maps]):\n";
+  for (const auto& o : d.options()) {
+    std::string line = "  " + o->long_name();
+    line += std::string(line.size() < 34 ? 34 - line.size() : 2, ' ');
+    os << line << o->description() << "\n";
+  }
+}
+
+SurveyConfig load_survey_config(const std::string& path) {
+  SurveyConfig cfg;
+  std::error_code ec;
+  fs::path abs = fs::absolute(path, ec);
+  if (ec || !fs::is_regular_file(abs, ec)) throw InputError(path, "cannot open survey configuration file");
+  cfg.config_path = abs.lexically_normal().string();
+  cfg.base_dir = abs.parent_path().lexically_normal().string();
+
+  FileValues t;
+  po::options_description d = survey_file_description(cfg, t);
+  std::string& tiles = t.tiles;
+  std::string& output = t.output;
+  std::string& catalogue = t.catalogue;
+  std::string& engine = t.engine;
+  std::string& prefix = t.prefix;
+  std::string& bands = t.bands;
+  std::string& detection_band = t.detection_band;
+  int& workers = t.workers;
+  int& tpt = t.tpt;
+  int& order = t.order;
+  double& radius = t.radius;
+  double& margin = t.margin;
   std::ifstream in(cfg.config_path);
   if (!in) throw InputError(path, "cannot open survey configuration file");
   po::variables_map vm;
@@ -165,6 +206,8 @@ SurveyConfig load_survey_config(const std::string& path) {
   cfg.merge.match_radius_arcsec = radius;
   cfg.merge.margin_match_radii = margin;
   cfg.merge.designation_prefix = prefix;
+  // One key for one thing: the tiles' extract runs name their sources with the same prefix.
+  if (!vm["catalogue.designation_prefix"].defaulted()) cfg.extract["catalogue.designation_prefix"] = prefix;
   try {
     survey::validate(cfg.merge);
   } catch (const std::invalid_argument& e) {

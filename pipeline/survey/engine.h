@@ -21,6 +21,7 @@
 ///                               plan.json, pPIXEL.stab + pPIXEL.json per partition
 ///   slurm/RUN/                  job scripts, task lists and task logs of a Slurm run
 #include <cstdint>
+#include <iosfwd>
 #include <map>
 #include <optional>
 #include <string>
@@ -82,6 +83,8 @@ struct SurveyConfig {
 /// Reads the survey description. Throws UsageError (bad or unknown keys, naming
 /// the file and option) or InputError (file missing).
 SurveyConfig load_survey_config(const std::string& path);
+/// The keys of the survey file with their descriptions (for `skerry survey --help`).
+void print_survey_file_keys(std::ostream& os);
 
 /// "VERSION (REVISION)" of this executable.
 std::string tool_version();
@@ -316,13 +319,13 @@ std::vector<TileReport> run_slurm(const SurveyConfig& cfg, const std::vector<Pen
 /// active, as "ID,ID"; "" when none (or no jobs.json, or no squeue).
 std::string slurm_jobs_active(const std::string& run_dir);
 
-/// `skerry survey CONFIG --worker-task N --run-dir DIR`: one Slurm array task.
+/// `skerry survey CONFIG --worker_task N --run_dir DIR`: one Slurm array task.
 int slurm_worker_task(const SurveyConfig& cfg, const std::string& run_dir, int task);
-/// `skerry survey CONFIG --merge-job --run-dir DIR`: the Slurm plan job.
+/// `skerry survey CONFIG --merge_job --run_dir DIR`: the Slurm plan job.
 int slurm_merge_job(const SurveyConfig& cfg, const std::string& run_dir);
-/// `skerry survey CONFIG --partition-task N --run-dir DIR`: one partition merge.
+/// `skerry survey CONFIG --partition_task N --run_dir DIR`: one partition merge.
 int slurm_partition_task(const SurveyConfig& cfg, const std::string& run_dir, int task);
-/// `skerry survey CONFIG --concat-job --run-dir DIR`: the concatenation job.
+/// `skerry survey CONFIG --concat_job --run_dir DIR`: the concatenation job.
 int slurm_concat_job(const SurveyConfig& cfg, const std::string& run_dir);
 
 }  // namespace skerry::surveyrun

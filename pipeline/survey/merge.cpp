@@ -264,7 +264,7 @@ Table tile_rows(const SurveyConfig& cfg, const MergeTile& tile, std::vector<doub
   ra = rc->f64;
   dec = dc->f64;
   Table out;
-  std::set<std::string> names{"name", "tile"};
+  std::set<std::string> names{"designation", "tile"};
   std::vector<std::int64_t> rows(tab.rows());
   for (std::size_t i = 0; i < rows.size(); ++i) rows[i] = static_cast<std::int64_t>(i + 1);
   out.add_i64("tile_row", "", "meta.number", "1-based row of the component in its tile's component table", rows);
@@ -505,7 +505,7 @@ std::size_t merge_one_partition(const SurveyConfig& cfg, const MergePlan& plan, 
   Table out;
   std::vector<std::string> tile_names;
   for (const auto& k : r.kept) tile_names.push_back(plan.tiles[static_cast<std::size_t>(k.tile)].name);
-  out.add_text("name", "", "meta.id;meta.main",
+  out.add_text("designation", "", "meta.id;meta.main",
                "IAU-style designation from the position, truncated (suffix a, b, ... when several share it)", r.names);
   out.add_text("tile", "", "meta.id;obs.field", "tile whose cell holds the component (its catalogue is the source)",
                tile_names);
@@ -601,10 +601,10 @@ MergeSummary concatenate_partitions(const SurveyConfig& cfg, const MergePlan& pl
   sum.tiles = plan.tiles.size();
   sum.input_rows = static_cast<std::size_t>(plan.input_rows);
   sum.partitions = plan.partitions.size();
-  // The catalogue's columns: name, tile, then the first tile's layout (as merge_tiles).
+  // The catalogue's columns: designation, tile, then the first tile's layout (as merge_tiles).
   Table proto;
   proto.name = "survey_components";
-  proto.add_text("name", "", "meta.id;meta.main",
+  proto.add_text("designation", "", "meta.id;meta.main",
                  "IAU-style designation from the position, truncated (suffix a, b, ... when several share it)");
   proto.add_text("tile", "", "meta.id;obs.field", "tile whose cell holds the component (its catalogue is the source)");
   if (plan.tiles.empty()) {

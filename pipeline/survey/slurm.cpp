@@ -192,14 +192,14 @@ std::vector<TileReport> run_slurm(const SurveyConfig& cfg, const std::vector<Pen
   const std::string exe = self_exe();
   auto script = [&](const std::string& file, const std::string& what, const std::string& args) {
     write_script((run_dir / file).string(), "#!/bin/sh\n# " + what + " of survey " + cfg.name + ".\nexec " + quote(exe) +
-                                                " survey " + quote(cfg.config_path) + " " + args + " --run-dir " +
+                                                " survey " + quote(cfg.config_path) + " " + args + " --run_dir " +
                                                 quote(run_dir.string()) + "\n");
   };
-  script("task.sh", "One tile (Slurm array task)", "--worker-task \"$SLURM_ARRAY_TASK_ID\"");
+  script("task.sh", "One tile (Slurm array task)", "--worker_task \"$SLURM_ARRAY_TASK_ID\"");
   script("merge.sh", "Merge plan: scatter what is left, submit the partition array and the concatenation (Slurm job)",
-         "--merge-job");
-  script("partition.sh", "One sky partition of the merge (Slurm array task)", "--partition-task \"$SLURM_ARRAY_TASK_ID\"");
-  script("concat.sh", "Concatenation of the merged partitions into the catalogue (Slurm job)", "--concat-job");
+         "--merge_job");
+  script("partition.sh", "One sky partition of the merge (Slurm array task)", "--partition_task \"$SLURM_ARRAY_TASK_ID\"");
+  script("concat.sh", "Concatenation of the merged partitions into the catalogue (Slurm job)", "--concat_job");
   const std::string cpus = "--cpus-per-task=" + std::to_string(cfg.slurm.cpus_per_task);
   auto submit_plan = [&](const std::string& dependency) {
     std::vector<std::string> a{"--job-name=skerry-" + cfg.name + "-plan", "--output=" + (run_dir / "merge.log").string(),
@@ -332,7 +332,7 @@ int slurm_worker_task(const SurveyConfig& cfg, const std::string& run_dir, int t
   json j = json::parse(in);
   const auto& tasks = j.at("tasks");
   if (task < 0 || static_cast<std::size_t>(task) >= tasks.size())
-    throw UsageError("--worker-task " + std::to_string(task) + " is outside the task list of " + run_dir);
+    throw UsageError("--worker_task " + std::to_string(task) + " is outside the task list of " + run_dir);
   const auto& t = tasks[static_cast<std::size_t>(task)];
   TileInput tile{t.at("name").get<std::string>(), t.at("image").get<std::string>()};
   const char* job = std::getenv("SLURM_ARRAY_JOB_ID");
@@ -426,7 +426,7 @@ int slurm_partition_task(const SurveyConfig& cfg, const std::string& run_dir, in
   std::vector<std::int64_t> todo;
   const MergePlan plan = plan_of_run(run_dir, &todo);
   if (task < 0 || static_cast<std::size_t>(task) >= todo.size())
-    throw UsageError("--partition-task " + std::to_string(task) + " is outside the partition list of " + run_dir);
+    throw UsageError("--partition_task " + std::to_string(task) + " is outside the partition list of " + run_dir);
   const std::int64_t px = todo[static_cast<std::size_t>(task)];
   const char* job = std::getenv("SLURM_ARRAY_JOB_ID");
   std::cout << "skerry survey partition task " << task << " of job " << (job ? job : "?") << ": partition " << px

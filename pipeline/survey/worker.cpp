@@ -460,7 +460,7 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
     tile_names.push_back(tiles[static_cast<std::size_t>(k.tile)].name);
     tile_rows.push_back(k.row + 1);
   }
-  out.add_text("name", "", "meta.id;meta.main",
+  out.add_text("designation", "", "meta.id;meta.main",
                "IAU-style designation from the position, truncated (suffix a, b, ... when several share it)", mr.names);
   out.add_text("tile", "", "meta.id;obs.field", "tile whose cell holds the component (its catalogue is the source)",
                tile_names);

@@ -568,7 +568,7 @@ TEST(BadInputTable, DiskFullOnOutput) {
   ImageSpec s;
   write_image(d / "ok.fits", s);
   const Outcome r = extract(d / "ok.fits", d / "out", {}, 20000);
-  expect_refused(r, skerry::kExitOutput, "ok.rms.fits", "write failed", d / "out");
+  expect_refused(r, skerry::kExitOutput, "ok.rms_map.fits", "write failed", d / "out");
 }
 
 }  // namespace

@@ -70,7 +70,7 @@ class TempDir {
 
 // One small simulated field (two bands) drives all three commands.
 const std::string kSim =
-    "simulate --field.size_pix 192 --bands.freqs_mhz 1000,2000 --sources.count 30 "
+    "simulate --field.size_pix 192 --bands.freq_mhz 1000,2000 --sources.count 30 "
     "--sources.double_fraction 0.2 --primary_beam.fwhm_deg 0.15 --primary_beam.blank_below 0.1";
 
 TEST(Determinism, SimulateExtractBandsForOneTwoEightThreadsAndRepeatedRuns) {

@@ -13,13 +13,13 @@ extern "C" int LLVMFuzzerTestOneInput(const std::uint8_t* data, std::size_t size
   po::options_description d("fuzz");
   d.add_options()
       ("image", po::value<std::string>(), "input")
-      ("noise.box_beams", po::value<double>()->default_value(30.0), "box")
+      ("noise.window_beams", po::value<double>()->default_value(30.0), "window")
       ("noise.second_pass", po::value<bool>()->default_value(true), "second pass")
       ("detect.peak_snr", po::value<double>()->default_value(5.0), "peak")
       ("detect.min_pixels", po::value<long>()->default_value(3), "min pixels")
       ("fit.max_components", po::value<int>()->default_value(5), "max components")
       ("output.formats", po::value<std::string>()->default_value("csv,fits,vot"), "formats")
-      ("bands.freqs_mhz", po::value<std::vector<double>>()->multitoken(), "frequencies");
+      ("bands.freq_mhz", po::value<std::vector<double>>()->multitoken(), "frequencies");
   try {
     skerry::ParsedOptions p =
         skerry::parse_options("fuzz", "[options]", d, {}, {"--config", in.path()});

@@ -35,7 +35,7 @@ Table demo_table() {
   t.add_f64("dec_deg", "deg", "pos.eq.dec;meta.main", "Declination (ICRS)", {-38.6, -38.55, 1e-300});
   t.add_f64("s_int_jy", "Jy", "phot.flux.density", "Integrated flux density", {0.0125, 3.0, -1.5e-6});
   t.add_i64("component_id", "", "meta.id", "Component number", {1, 2, 9007199254740993LL});
-  t.add_text("source_name", "", "meta.id", "Designation", {"SKDC J132500-383600", "it's", ""});
+  t.add_text("designation", "", "meta.id", "Designation", {"SKDC J132500-383600", "it's", ""});
   t.set_meta("tool_version", "0.1.0");
   t.set_meta("config.detect.peak_snr",
              "5.0 and a long value that needs more than one FITS card to hold it, so CONTINUE cards are used here");
@@ -108,7 +108,7 @@ from astropy.table import Table
 from astropy.io import fits
 import numpy as np
 d = sys.argv[1]
-names = ['ra_deg', 'dec_deg', 's_int_jy', 'component_id', 'source_name']
+names = ['ra_deg', 'dec_deg', 's_int_jy', 'component_id', 'designation']
 units = ['deg', 'deg', 'Jy', None, None]
 ucds = ['pos.eq.ra;meta.main', 'pos.eq.dec;meta.main', 'phot.flux.density', 'meta.id', 'meta.id']
 vals = {'ra_deg': [201.25, 201.3, float('nan')], 'dec_deg': [-38.6, -38.55, 1e-300],
@@ -126,7 +126,7 @@ assert [f.ucd for f in tab.fields] == ucds, [f.ucd for f in tab.fields]
 assert [None if f.unit is None else str(f.unit) for f in tab.fields] == units
 at = tab.to_table()
 for k, v in vals.items(): same(at[k], v)
-assert list(at['source_name'])[:2] == ['SKDC J132500-383600', "it's"]
+assert list(at['designation'])[:2] == ['SKDC J132500-383600', "it's"]
 ft = Table.read(d + '/t.fits')
 assert ft.colnames == names
 assert [None if ft[n].unit is None else str(ft[n].unit) for n in names] == units

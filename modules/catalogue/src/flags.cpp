@@ -19,18 +19,13 @@ const std::vector<FlagInfo>& flag_table() {
        "a component catalogue.bright_ratio times brighter lies within catalogue.bright_radius_beams (possible artefact)"},
       {kFlagFitFailed, "fit_failed",
        "Gaussian fit did not converge (values: best parameters found) or failed (values: island moments)"},
-      {kFlagUnresolved, "unresolved", "not resolved: the deconvolved size is an upper limit"},
       {kFlagBelowPbCut, "below_pb_cut", "primary-beam response at the centre below image.pb_cut"},
-      {kFlagFewerComponents, "fewer_components",
-       "the island's peaks were fitted with fewer components (more were not justified by the data)"},
       {kFlagComponentCap, "component_cap",
        "the island had more candidate peaks than fit.max_components"},
       {kFlagAtBound, "at_bound",
        "a fitted parameter ended at its bound (size floor or centre at the island edge)"},
-      {kFlagFixedShape, "fixed_shape", "shape held at the restoring beam (fixed-beam fit)"},
       {kFlagBadRms, "bad_rms",
        "local rms not positive or not finite at the centre; SNR and noise-based errors are NaN"},
-      {kFlagMultiIsland, "multi_island", "source only: the source joins components of several islands"},
       {kFlagDiffuse, "diffuse",
        "island residual rms exceeds catalogue.diffuse_residual_ratio x the local rms"},
       {kFlagNoPrimaryBeam, "no_primary_beam",
@@ -39,16 +34,32 @@ const std::vector<FlagInfo>& flag_table() {
   return t;
 }
 
-std::string flag_names(std::uint32_t flags) {
+const std::vector<FlagInfo>& info_bit_table() {
+  static const std::vector<FlagInfo> t = {
+      {kInfoUnresolved, "unresolved", "not resolved: the deconvolved size is an upper limit"},
+      {kInfoFixedShape, "fixed_shape", "shape held at the restoring beam (fit.fixed_shape)"},
+      {kInfoFewerComponents, "fewer_components",
+       "the island's peaks were fitted with fewer components (more were not justified by the data)"},
+      {kInfoMultiIsland, "multi_island", "source only: the source joins components of several islands"},
+  };
+  return t;
+}
+
+namespace {
+std::string bit_names(const std::vector<FlagInfo>& table, std::uint32_t mask) {
   std::string out;
-  for (const auto& f : flag_table()) {
-    if (flags & f.bit) {
+  for (const auto& f : table) {
+    if (mask & f.bit) {
       if (!out.empty()) out += '|';
       out += f.name;
     }
   }
   return out;
 }
+}  // namespace
+
+std::string flag_names(std::uint32_t flags) { return bit_names(flag_table(), flags); }
+std::string info_bit_names(std::uint32_t info_bits) { return bit_names(info_bit_table(), info_bits); }
 
 void flag_components(std::vector<CatalogueComponent>& comps, const ImageF& image,
                      const Eigen::Matrix2d& J, const Beam& beam, const FlagOptions& opt) {

@@ -10,11 +10,11 @@
 
 namespace skerry {
 
-const char* morphology_name(Morphology m) {
+const char* structure_name(SourceStructure m) {
   switch (m) {
-    case Morphology::Single: return "single";
-    case Morphology::Multi: return "multi";
-    case Morphology::Diffuse: return "diffuse";
+    case SourceStructure::Compact: return "compact";
+    case SourceStructure::Composite: return "composite";
+    case SourceStructure::Diffuse: return "diffuse";
   }
   return "?";
 }
@@ -163,7 +163,7 @@ std::vector<CatalogueSource> group_sources(const std::vector<CatalogueComponent>
     s.s_int_jy = 0.0;
     double var_s = 0.0;
     s.s_peak_max_jy_per_beam = -INFINITY;
-    std::uint32_t flags = 0;
+    std::uint32_t flags = 0, info = 0;
     bool any_diffuse = false;
     for (std::size_t i : s.components) {
       const auto& c = comps[i];
@@ -178,7 +178,8 @@ std::vector<CatalogueSource> group_sources(const std::vector<CatalogueComponent>
       s.s_int_jy += c.s_int_jy;
       var_s += c.s_int_err_jy * c.s_int_err_jy;
       s.s_peak_max_jy_per_beam = std::max(s.s_peak_max_jy_per_beam, c.s_peak_jy_per_beam);
-      flags |= c.flags & ~kFlagUnresolved;
+      flags |= c.flags;
+      info |= c.info_bits & ~kInfoUnresolved;
       if (island_diffuse(c.island_id)) any_diffuse = true;
     }
     std::sort(s.islands.begin(), s.islands.end());
@@ -213,14 +214,15 @@ std::vector<CatalogueSource> group_sources(const std::vector<CatalogueComponent>
     }
     s.las_arcsec = las;
 
-    if (s.islands.size() > 1) flags |= kFlagMultiIsland;
+    if (s.islands.size() > 1) info |= kInfoMultiIsland;
     if (any_diffuse) flags |= kFlagDiffuse;
-    if (s.components.size() == 1 && (comps[s.components[0]].flags & kFlagUnresolved))
-      flags |= kFlagUnresolved;
+    if (s.components.size() == 1 && (comps[s.components[0]].info_bits & kInfoUnresolved))
+      info |= kInfoUnresolved;
     s.flags = flags;
-    s.morphology = any_diffuse ? Morphology::Diffuse
-                   : s.components.size() > 1 ? Morphology::Multi
-                                             : Morphology::Single;
+    s.info_bits = info;
+    s.structure = any_diffuse ? SourceStructure::Diffuse
+                   : s.components.size() > 1 ? SourceStructure::Composite
+                                             : SourceStructure::Compact;
   }
   return out;
 }

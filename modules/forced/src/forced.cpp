@@ -125,9 +125,9 @@ std::vector<ForcedMeasurement> forced_measure_masked(const ImageF& image, const 
       if (in.maj > 0.0) cint_sky = ellipse_to_cov({in.maj, std::max(in.min, 0.0), in.pa_deg});
       const Eigen::Matrix2d cconv_sky = cbeam_sky + cint_sky;
       const Ellipse conv = cov_to_ellipse(cconv_sky);
-      m.conv_maj_arcsec = conv.maj;
-      m.conv_min_arcsec = conv.min;
-      m.conv_pa_deg = conv.pa_deg;
+      m.convolved_maj_arcsec = conv.maj;
+      m.convolved_min_arcsec = conv.min;
+      m.convolved_pa_deg = conv.pa_deg;
       p.jac = g->jac_arcsec_per_pix;
       p.cb = g->sky_cov_to_pixel(cbeam_sky);
       p.c = g->sky_cov_to_pixel(cconv_sky);

@@ -33,7 +33,7 @@ void add_sky_columns(Table& t, const std::vector<const SkySource*>& rows) {
     ra.push_back(s->ra_deg);
     dec.push_back(s->dec_deg);
     sref.push_back(s->spectrum.s_ref_jy);
-    fref.push_back(s->spectrum.ref_freq_hz);
+    fref.push_back(s->spectrum.ref_freq_hz / 1e6);
     alpha.push_back(s->spectrum.alpha);
     curv.push_back(s->spectrum.curvature);
     maj.push_back(s->intrinsic.maj);
@@ -46,20 +46,20 @@ void add_sky_columns(Table& t, const std::vector<const SkySource*>& rows) {
   t.add_i64("id", "", "meta.id;meta.main", "Source number in drawing order (0-based)", id);
   t.add_f64("ra_deg", "deg", "pos.eq.ra;meta.main", "True right ascension (ICRS)", ra);
   t.add_f64("dec_deg", "deg", "pos.eq.dec;meta.main", "True declination (ICRS)", dec);
-  t.add_f64("s_ref_jy", "Jy", "phot.flux.density", "True integrated flux density at ref_freq_hz",
+  t.add_f64("s_ref_jy", "Jy", "phot.flux.density", "True integrated flux density at ref_freq_mhz",
             sref);
-  t.add_f64("ref_freq_hz", "Hz", "em.freq", "Reference frequency of the spectrum", fref);
+  t.add_f64("ref_freq_mhz", "MHz", "em.freq", "Reference frequency of the spectrum", fref);
   t.add_f64("alpha", "", "spect.index",
-            "Spectral index at ref_freq_hz, S proportional to nu^alpha", alpha);
+            "Spectral index at ref_freq_mhz, S proportional to nu^alpha", alpha);
   t.add_f64("curvature", "", "spect.index;arith.factor",
             "Base-10 log-parabola term: log10(S/S_ref) = alpha t + curvature t^2, "
-            "t = log10(nu/ref_freq_hz)",
+            "t = log10(nu/ref_freq_mhz)",
             curv);
-  t.add_f64("int_maj_arcsec", "arcsec", "phys.angSize.smajAxis",
+  t.add_f64("intrinsic_maj_arcsec", "arcsec", "phys.angSize.smajAxis",
             "Intrinsic major-axis FWHM (0 for a point source)", maj);
-  t.add_f64("int_min_arcsec", "arcsec", "phys.angSize.sminAxis",
+  t.add_f64("intrinsic_min_arcsec", "arcsec", "phys.angSize.sminAxis",
             "Intrinsic minor-axis FWHM (0 for a point source)", mn);
-  t.add_f64("int_pa_deg", "deg", "pos.posAng",
+  t.add_f64("intrinsic_pa_deg", "deg", "pos.posAng",
             "Intrinsic position angle east of north (null for a point source)", pa);
   t.add_i64("sky_flags", "", "meta.code", std::string("Sky truth flags; ") + kFlagDoc, flags);
   t.add_i64("partner_id", "", "meta.id.cross",
@@ -126,18 +126,18 @@ Table band_truth_table(const std::vector<SkySource>& sky_sources,
             sint);
   t.add_f64("peak_jy_per_beam", "Jy/beam", "phot.flux.density;stat.max",
             "Analytic peak of the beam-convolved Gaussian in this image", peak);
-  t.add_f64("conv_maj_arcsec", "arcsec", "phys.angSize.smajAxis",
+  t.add_f64("convolved_maj_arcsec", "arcsec", "phys.angSize.smajAxis",
             "Major-axis FWHM of the source convolved with this band's beam", cmaj);
-  t.add_f64("conv_min_arcsec", "arcsec", "phys.angSize.sminAxis",
+  t.add_f64("convolved_min_arcsec", "arcsec", "phys.angSize.sminAxis",
             "Minor-axis FWHM of the source convolved with this band's beam", cmin);
-  t.add_f64("conv_pa_deg", "deg", "pos.posAng",
+  t.add_f64("convolved_pa_deg", "deg", "pos.posAng",
             "Position angle east of north of the convolved shape", cpa);
   t.add_f64("local_rms_jy_per_beam", "Jy/beam", "stat.stdev;phot.flux.density",
             "Noise rms of this image at the centre (null when unknown)", rms);
   t.add_f64("snr_true", "", "stat.snr",
             "True peak signal-to-noise: peak_jy_per_beam / local_rms_jy_per_beam", snr);
   t.add_i64("flags", "", "meta.code", std::string("Truth flags in this band; ") + kFlagDoc, flags);
-  t.set_meta("freq_hz", fmt(freq_hz));
+  t.set_meta("freq_mhz", fmt(freq_hz / 1e6));
   t.set_meta("beam_maj_arcsec", fmt(beam.maj_arcsec));
   t.set_meta("beam_min_arcsec", fmt(beam.min_arcsec));
   t.set_meta("beam_pa_deg", fmt(beam.pa_deg));

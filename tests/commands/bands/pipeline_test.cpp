@@ -160,8 +160,8 @@ TEST_F(BandsCommand, EndToEndWritesSpectraAndMaps) {
   const fs::path out = dir_ / "out";
   const RunResult r = run_skerry("bands " + p1 + " " + p2 + " " + p3 + " --out " + out.string() + " --output.name lf", dir_);
   ASSERT_EQ(r.code, 0) << r.err;
-  for (const char* f : {"lf.spectra.csv", "lf.spectra.fits", "lf.spectra.vot", "lf.forced.csv", "lf.alpha.fits",
-                        "lf.alpha_err.fits", "lf.run.json"})
+  for (const char* f : {"lf.spectra.csv", "lf.spectra.fits", "lf.spectra.vot", "lf.forced.csv", "lf.alpha_map.fits",
+                        "lf.alpha_err_map.fits", "lf.run.json"})
     EXPECT_TRUE(fs::exists(out / f)) << f;
   const Table t = read_table((out / "lf.spectra.csv").string());
   const Column& a = t.at("alpha");
@@ -183,7 +183,7 @@ TEST_F(BandsCommand, EndToEndWritesSpectraAndMaps) {
   }
   ASSERT_GE(d.size(), 30u);
   EXPECT_LT(std::abs(testing::median(d)), 0.05);
-  const SkyImage am = read_sky_image((out / "lf.alpha.fits").string(), [] {
+  const SkyImage am = read_sky_image((out / "lf.alpha_map.fits").string(), [] {
     ImageReadOptions o;
     o.accept_any_bunit = true;
     return o;
@@ -298,7 +298,7 @@ TEST_F(BandsCommand, CombinedDetectionFindsSourcesBelowEveryBandsThreshold) {
   ASSERT_EQ(r.code, 0) << r.err;
   r = run_skerry("bands " + imgs + " --out " + out_s.string() + " --output.name cf", dir_);
   ASSERT_EQ(r.code, 0) << r.err;
-  EXPECT_TRUE(fs::exists(out_c / "cf.detect" / "cf.detect.snr.fits"));
+  EXPECT_TRUE(fs::exists(out_c / "cf.detect" / "cf.detect_snr_map.fits"));
 
   const Table det = read_table((out_c / "cf.detect" / "cf.detect.components.csv").string());
   const Table single = read_table((out_s / "cf.detect" / "cf.detect.components.csv").string());
@@ -339,7 +339,7 @@ TEST_F(BandsCommand, CombinedDetectionFindsSourcesBelowEveryBandsThreshold) {
   EXPECT_LE(spur_c, 3);
 
   // (3) positions against Condon's errors at the common beam.
-  const SkyImage snr = read_sky_image((out_c / "cf.detect" / "cf.detect.snr.fits").string(), [] {
+  const SkyImage snr = read_sky_image((out_c / "cf.detect" / "cf.detect_snr_map.fits").string(), [] {
     ImageReadOptions o;
     o.accept_any_bunit = true;
     return o;
@@ -382,7 +382,7 @@ TEST_F(BandsCommand, CombinedDetectionFindsSourcesBelowEveryBandsThreshold) {
     ss << in.rdbuf();
     return ss.str();
   };
-  for (const char* name : {"cf.spectra.csv", "cf.forced.csv", "cf.detect/cf.detect.snr.fits", "cf.detect/cf.detect.components.csv"})
+  for (const char* name : {"cf.spectra.csv", "cf.forced.csv", "cf.detect/cf.detect_snr_map.fits", "cf.detect/cf.detect.components.csv"})
     EXPECT_EQ(bytes(out_c / name), bytes(out_c1 / name)) << name;
 }
 

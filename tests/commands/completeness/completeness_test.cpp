@@ -29,7 +29,7 @@ class PureNoise : public ::testing::Test {
     fs::create_directories(dir_);
     const std::string sk = SKERRY_BINARY;
     // Correlated noise only (beam 6" x 5" on 1.5" pixels), no sources, no primary beam, no background.
-    ASSERT_EQ(sh(sk + " simulate --out " + dir_.string() + " --bands.freqs_mhz 1400 --noise.rms_jy_per_beam 2e-5"
+    ASSERT_EQ(sh(sk + " simulate --out " + dir_.string() + " --bands.freq_mhz 1400 --noise.rms_jy_per_beam 2e-5"
                  " --field.size_pix 768 --primary_beam.fwhm_deg 0 --background.amplitude_jy_per_beam 0"
                  " --bands.crpix_shift_pix 0 --sources.count 0 --output.name noise"), 0);
     image_ = (dir_ / "noise_1400MHz.fits").string();
@@ -51,7 +51,7 @@ TEST_F(PureNoise, HalfAtThresholdAllAtTwiceIt) {
                " --seed 11 --completeness.rounds 8 --completeness.per_round 250 --completeness.snr_min 3.5"
                " --completeness.snr_max 10 --completeness.levels 8 --completeness.reliability false"), 0);
   const Table t = read_table((out / "noise_1400MHz.completeness.csv").string());
-  const auto& var = t.at("variable").text;
+  const auto& var = t.at("binned_by").text;
   const auto& lo = t.at("lo").f64;
   const auto& hi = t.at("hi").f64;
   const auto& f = t.at("completeness").f64;

@@ -18,7 +18,7 @@ namespace skerry::test {
 namespace {
 
 struct Truth {
-  double ra, dec, s_int, s_peak, maj, min, pa, int_maj, int_min, int_pa;
+  double ra, dec, s_int, s_peak, maj, min, pa, intrinsic_maj, intrinsic_min, intrinsic_pa;
 };
 
 std::vector<Truth> read_truth(const std::string& path) {
@@ -32,7 +32,7 @@ std::vector<Truth> read_truth(const std::string& path) {
       return c.type == ColumnType::Int64 ? static_cast<double>(c.i64[i]) : c.f64[i];
     };
     v.push_back({f("ra_deg"), f("dec_deg"), f("s_int_jy"), f("s_peak_jy_per_beam"), f("maj_arcsec"),
-                 f("min_arcsec"), f("pa_deg"), f("int_maj_arcsec"), f("int_min_arcsec"), f("int_pa_deg")});
+                 f("min_arcsec"), f("pa_deg"), f("intrinsic_maj_arcsec"), f("intrinsic_min_arcsec"), f("intrinsic_pa_deg")});
   }
   return v;
 }
@@ -107,14 +107,14 @@ TEST_P(GoldenNoiseless, RecoversTruthExactly) {
     if (t.maj - t.min > 0.1) {
       EXPECT_NEAR(pa_diff(col(comps, "pa_deg", i), t.pa), 0.0, 1e-3);
     }
-    if (t.int_maj > 0.0) {
+    if (t.intrinsic_maj > 0.0) {
       // Deconvolution (Wild 1970; REF-DECONV-01): the intrinsic shape comes back.
-      EXPECT_NEAR(col(comps, "dc_maj_arcsec", i), t.int_maj, 1e-3);
-      EXPECT_NEAR(col(comps, "dc_min_arcsec", i), t.int_min, 1e-3);
-      EXPECT_NEAR(pa_diff(col(comps, "dc_pa_deg", i), t.int_pa), 0.0, 1e-3);
-      EXPECT_EQ(static_cast<std::int64_t>(col(comps, "flags", i)) & static_cast<std::int64_t>(kFlagUnresolved), 0);
+      EXPECT_NEAR(col(comps, "intrinsic_maj_arcsec", i), t.intrinsic_maj, 1e-3);
+      EXPECT_NEAR(col(comps, "intrinsic_min_arcsec", i), t.intrinsic_min, 1e-3);
+      EXPECT_NEAR(pa_diff(col(comps, "intrinsic_pa_deg", i), t.intrinsic_pa), 0.0, 1e-3);
+      EXPECT_EQ(static_cast<std::int64_t>(col(comps, "info_bits", i)) & static_cast<std::int64_t>(kInfoUnresolved), 0);
     } else {
-      EXPECT_NE(static_cast<std::int64_t>(col(comps, "flags", i)) & static_cast<std::int64_t>(kFlagUnresolved), 0)
+      EXPECT_NE(static_cast<std::int64_t>(col(comps, "info_bits", i)) & static_cast<std::int64_t>(kInfoUnresolved), 0)
           << "a point source must be flagged unresolved";
     }
   }

@@ -74,14 +74,27 @@ def fail(msg):
     global ok
     ok = False
     print("FAIL", msg)
+from astropy.io import fits
+# A file name says what it is: NAME.KIND.fits tables are binary tables, *_map.fits images.
+for kind in ("components", "islands", "sources"):
+    with fits.open(f"{d}/field.{kind}.fits") as h:
+        if len(h) < 2 or not isinstance(h[1], fits.BinTableHDU): fail(f"{kind}.fits is not a table")
+for m in ("rms_map", "background_map", "island_map", "model_map", "residual_map"):
+    with fits.open(f"{d}/field.{m}.fits") as h:
+        if h[0].data is None or h[0].data.ndim != 2: fail(f"{m}.fits is not an image")
 for kind in ("components", "sources"):
+    if "info_bits" not in Table.read(f"{d}/field.{kind}.csv", format="ascii.csv").colnames:
+        fail(f"{kind}: no info_bits column")
+for kind in ("components", "islands", "sources"):
+    ra, flux = ("peak_ra_deg", "s_pix_jy") if kind == "islands" else ("ra_deg", "s_int_jy")
+    dec = ra.replace("ra_", "dec_")
     csv = Table.read(f"{d}/field.{kind}.csv", format="ascii.csv")
     fit = Table.read(f"{d}/field.{kind}.fits")
     if len(fit) != len(csv): fail(f"{kind}: FITS rows {len(fit)} != CSV rows {len(csv)}")
     if list(fit.colnames) != list(csv.colnames): fail(f"{kind}: column names differ")
-    if str(fit["ra_deg"].unit) != "deg": fail(f"{kind}: ra_deg unit {fit['ra_deg'].unit}")
-    if str(fit["s_int_jy"].unit) != "Jy": fail(f"{kind}: s_int_jy unit {fit['s_int_jy'].unit}")
-    for c in ("ra_deg", "dec_deg", "s_int_jy"):
+    if str(fit[ra].unit) != "deg": fail(f"{kind}: {ra} unit {fit[ra].unit}")
+    if str(fit[flux].unit) != "Jy": fail(f"{kind}: {flux} unit {fit[flux].unit}")
+    for c in (ra, dec, flux):
         if not np.allclose(np.asarray(fit[c], float), np.asarray(csv[c], float), rtol=0, atol=0, equal_nan=True):
             fail(f"{kind}: {c} differs between FITS and CSV")
 for kind in ("components", "islands", "sources"):
@@ -166,9 +179,9 @@ TEST(Outputs, ResidualIsImageMinusModelWithTheBackgroundKept) {
   const RunResult r = run_skerry({"extract", img, "--out", tmp / "out"}, tmp.path());
   ASSERT_EQ(r.code, 0) << r.err;
   const SkyImage im = read_sky_image(img);
-  const ImageF res = read_sky_image(tmp / "out/field.residual.fits").pixels;
-  const ImageF mod = read_sky_image(tmp / "out/field.model.fits").pixels;
-  const ImageF bg = read_sky_image(tmp / "out/field.background.fits").pixels;
+  const ImageF res = read_sky_image(tmp / "out/field.residual_map.fits").pixels;
+  const ImageF mod = read_sky_image(tmp / "out/field.model_map.fits").pixels;
+  const ImageF bg = read_sky_image(tmp / "out/field.background_map.fits").pixels;
   double worst = 0.0, mean_res = 0.0, mean_bg = 0.0, model_sum = 0.0;
   for (Eigen::Index i = 0; i < im.pixels.size(); ++i) {
     // float32 image - float32 model, rounded once: exact to half an ulp of the image.

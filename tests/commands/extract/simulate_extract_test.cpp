@@ -29,7 +29,7 @@ TEST(SimulateThenExtract, RecoversTheTruth) {
   TempDir tmp("simext");
   const RunResult help = run_skerry({"--help"}, tmp.path());
   if (help.out.find("simulate") == std::string::npos) GTEST_SKIP() << "skerry simulate is not built";
-  RunResult r = run_skerry({"simulate", "--out", tmp / "sim", "--output.name", "lf", "--bands.freqs_mhz", "1400",
+  RunResult r = run_skerry({"simulate", "--out", tmp / "sim", "--output.name", "lf", "--bands.freq_mhz", "1400",
                             "--field.size_pix", "768", "--sources.count", "120", "--sources.s_min_jy", "4e-4",
                             "--sources.s_max_jy", "0.02", "--sources.min_separation_arcsec", "60",
                             "--sources.double_fraction", "0", "--sources.edge_margin_pix", "40",

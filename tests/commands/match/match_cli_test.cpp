@@ -121,7 +121,7 @@ TEST(MatchCli, SameResultFromEveryFormatAndThreadCount) {
   write_table(b, (d / "b.csv").string());
   write_table(a, (d / "a.fits").string());
   write_table(b, (d / "b.vot").string());
-  const std::string common = " --match.radius_arcsec 30 --match.mode one-to-one --match.name m --match.unmatched true";
+  const std::string common = " --match.radius_arcsec 30 --match.mode one_to_one --match.name m --match.unmatched true";
   ASSERT_EQ(run(kBin + " match " + (d / "a.csv").string() + " " + (d / "b.csv").string() + " --out " +
                 (d / "o1").string() + common + " --threads 1"),
             0);
@@ -231,7 +231,7 @@ TEST(MatchCli, BadInputGivesClearErrors) {
   EXPECT_EQ(m("missing.csv", "", out), 3);
   EXPECT_EQ(m("good.csv", " --match.mode bogus", out), 2);
   EXPECT_EQ(m("good.csv", " --match.radius_arcsec -1", out), 2);
-  EXPECT_EQ(m("good.csv", " --match.mode error", out), 3);  // no error columns
+  EXPECT_EQ(m("good.csv", " --match.mode sigma_scaled", out), 3);  // no error columns
   EXPECT_NE(out.find("positional error"), std::string::npos) << out;
   EXPECT_EQ(m("good.csv", " --match.ra_b nosuch", out), 3);
   EXPECT_NE(out.find("no column 'nosuch'"), std::string::npos) << out;
@@ -263,8 +263,8 @@ TEST(MatchCli, SelfAndMultiModes) {
       << out;
   Table gr = read_table((d / "t.groups.csv").string());
   ASSERT_EQ(gr.rows(), 4u);
-  EXPECT_EQ(gr.at("group_id").i64, (std::vector<std::int64_t>{0, 1, 0, 0}));
-  EXPECT_EQ(gr.at("group_size").i64, (std::vector<std::int64_t>{3, 1, 3, 3}));
+  EXPECT_EQ(gr.at("fof_group_id").i64, (std::vector<std::int64_t>{0, 1, 0, 0}));
+  EXPECT_EQ(gr.at("fof_group_members").i64, (std::vector<std::int64_t>{3, 1, 3, 3}));
   // Multi: the same file as master and as three epochs.
   ASSERT_EQ(run(kBin + " match " + (d / "t.csv").string() + " " + (d / "t.csv").string() + " " +
                     (d / "t.csv").string() + " --match.mode multi --match.radius_arcsec 0.1 --match.name mm --out " +

@@ -49,7 +49,7 @@ class CountLaw : public ::testing::Test {
     fs::create_directories(dir_);
     const std::string sk = SKERRY_BINARY;
     ASSERT_EQ(sh(sk + " simulate --out " + dir_.string() +
-                 " --bands.freqs_mhz 1400 --sources.count 8000 --sources.slope 2.5"
+                 " --bands.freq_mhz 1400 --sources.count 8000 --sources.slope 2.5"
                  " --sources.s_min_jy 5e-5 --sources.s_max_jy 0.05 --sources.resolved_fraction 0"
                  " --sources.double_fraction 0 --primary_beam.fwhm_deg 0 --background.amplitude_jy_per_beam 0"
                  " --noise.rms_jy_per_beam 2e-5 --field.size_pix 2048 --output.primary_beam_images false"

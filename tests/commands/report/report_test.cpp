@@ -44,7 +44,7 @@ fs::path fresh_dir(const std::string& name) {
 // One simulated band of the invented Lanternfish Field: 768 x 768 pixels of 1.5", one
 // band at 1400 MHz, no primary beam, no background; `extra` adds options.
 void simulate(const fs::path& dir, const std::string& extra) {
-  const Cmd c = run(skerry() + " simulate --out " + dir.string() + " --bands.freqs_mhz 1400 --noise.rms_jy_per_beam 2e-5"
+  const Cmd c = run(skerry() + " simulate --out " + dir.string() + " --bands.freq_mhz 1400 --noise.rms_jy_per_beam 2e-5"
                     " --field.size_pix 768 --primary_beam.fwhm_deg 0 --background.amplitude_jy_per_beam 0"
                     " --bands.crpix_shift_pix 0 --output.name field " + extra, dir);
   ASSERT_EQ(c.code, 0) << c.err;
@@ -131,7 +131,7 @@ TEST_F(ReportRun, CountsMatchDirectCountOfCatalogue) {
 TEST_F(ReportRun, VisibilityAreaMatchesRmsMap) {
   ImageReadOptions ro;
   ro.require_beam = false;
-  const SkyImage rms = read_sky_image((dir_ / "run" / "field_1400MHz.rms.fits").string(), ro);
+  const SkyImage rms = read_sky_image((dir_ / "run" / "field_1400MHz.rms_map.fits").string(), ro);
   // Pixel solid angle at the tangent point: |CDELT1 CDELT2| (FITS WCS Paper II, SIN at the
   // reference point); 1.5" pixels of the simulation.
   const double pix_sr = std::pow(1.5 / 206264.80624709636, 2);

@@ -41,15 +41,15 @@ fs::path fresh_dir(const std::string& name) {
 }
 
 const std::string kSmall =
-    "--field.size_pix 256 --bands.freqs_mhz 1000,2000 --sources.count 40 "
+    "--field.size_pix 256 --bands.freq_mhz 1000,2000 --sources.count 40 "
     "--sources.double_fraction 0.2 --primary_beam.fwhm_deg 0.15 --primary_beam.blank_below 0.1";
 
 TEST(SimulateCli, WritesImagesWithWcsBeamAndTruthThatAgree) {
   const fs::path d = fresh_dir("files");
   const CmdResult r = run(kSmall, d);
   ASSERT_EQ(r.code, 0) << r.err;
-  for (const char* f : {"lanternfish_1000MHz.fits", "lanternfish_2000MHz.fits", "lanternfish_1000MHz.pb.fits",
-                        "lanternfish_2000MHz.pb.fits", "lanternfish.truth.csv", "lanternfish_1000MHz.truth.csv",
+  for (const char* f : {"lanternfish_1000MHz.fits", "lanternfish_2000MHz.fits", "lanternfish_1000MHz.pb_map.fits",
+                        "lanternfish_2000MHz.pb_map.fits", "lanternfish.truth.csv", "lanternfish_1000MHz.truth.csv",
                         "lanternfish_2000MHz.truth.csv"})
     EXPECT_TRUE(fs::exists(d / f)) << f;
   for (auto [f, mhz] : {std::pair{"lanternfish_1000MHz", 1000.0}, {"lanternfish_2000MHz", 2000.0}}) {
@@ -74,7 +74,7 @@ TEST(SimulateCli, WritesImagesWithWcsBeamAndTruthThatAgree) {
       if (x > 0 && y > 0 && x < n - 1 && y < n - 1) ++inside;
     }
     EXPECT_GE(inside, 40u);
-    const ImageF pb = read_primary_beam((d / (std::string(f) + ".pb.fits")).string(), img);
+    const ImageF pb = read_primary_beam((d / (std::string(f) + ".pb_map.fits")).string(), img);
     EXPECT_NEAR(pb(n / 2, n / 2), 1.0, 1e-3);
   }
   fs::remove_all(d);
@@ -106,7 +106,7 @@ TEST(SimulateCli, DemoConfigurationFileRuns) {
                     d);
   ASSERT_EQ(r.code, 0) << r.err;
   EXPECT_TRUE(fs::exists(d / "lanternfish_3000MHz.fits"));
-  EXPECT_TRUE(fs::exists(d / "lanternfish_900MHz.model.fits"));
+  EXPECT_TRUE(fs::exists(d / "lanternfish_900MHz.model_map.fits"));
   EXPECT_TRUE(fs::exists(d / "lanternfish.truth.vot"));
   fs::remove_all(d);
 }
@@ -119,13 +119,13 @@ TEST(SimulateCli, BadOptionsAreUsageErrorsNamingTheOptionAndWriteNothing) {
   r = run("--noise.rms_jy_per_beam -1", d);
   EXPECT_EQ(r.code, 2);
   EXPECT_NE(r.err.find("noise.rms_jy_per_beam"), std::string::npos) << r.err;
-  r = run("--bands.freqs_mhz 1400,1400", d);
+  r = run("--bands.freq_mhz 1400,1400", d);
   EXPECT_EQ(r.code, 2);
   EXPECT_NE(r.err.find("distinct"), std::string::npos) << r.err;
   r = run("--sources.s_min_jy 0", d);
   EXPECT_EQ(r.code, 2);
   EXPECT_NE(r.err.find("s_min_jy"), std::string::npos) << r.err;
-  r = run("--bands.crpix_shift_pix 0,1 --bands.freqs_mhz 1400", d);
+  r = run("--bands.crpix_shift_pix 0,1 --bands.freq_mhz 1400", d);
   EXPECT_EQ(r.code, 2);
   EXPECT_NE(r.err.find("bands.crpix_shift_pix"), std::string::npos) << r.err;
   EXPECT_FALSE(fs::exists(d) && !fs::is_empty(d));

@@ -65,7 +65,7 @@ const std::string& survey_tiles() {
   static const std::string dir = [] {
     const std::string d = fresh_dir("field");
     // One band of the invented field, no primary beam (flat noise), 130 sources.
-    RunResult r = run_skerry({"simulate", "--out", d, "--seed", "6101", "--bands.freqs_mhz", "1400",
+    RunResult r = run_skerry({"simulate", "--out", d, "--seed", "6101", "--bands.freq_mhz", "1400",
                               "--bands.crpix_shift_pix", "0", "--noise.rms_jy_per_beam", "2e-5",
                               "--field.size_pix", "640", "--primary_beam.fwhm_deg", "0", "--sources.count", "130",
                               "--threads", "1"});
@@ -111,7 +111,7 @@ std::string make_survey(const std::string& dir, const std::string& extra) {
 const std::string& multiband_tiles() {
   static const std::string dir = [] {
     const std::string d = fresh_dir("field3");
-    RunResult r = run_skerry({"simulate", "--out", d, "--seed", "6102", "--bands.freqs_mhz", "900,1400,3000",
+    RunResult r = run_skerry({"simulate", "--out", d, "--seed", "6102", "--bands.freq_mhz", "900,1400,3000",
                               "--bands.pixels_follow_beam", "false", "--bands.crpix_shift_pix", "0",
                               "--noise.rms_jy_per_beam", "2e-5", "--field.size_pix", "640",
                               "--primary_beam.fwhm_deg", "0", "--sources.count", "100", "--threads", "1"});

@@ -32,7 +32,7 @@ const std::string& survey_tiles();
 /// lines appended (INI text). Returns the configuration path.
 std::string make_survey(const std::string& dir, const std::string& extra = "");
 
-/// Three-band version (900, 1400, 3000 MHz; `skerry simulate --bands.freqs_mhz
+/// Three-band version (900, 1400, 3000 MHz; `skerry simulate --bands.freq_mhz
 /// 900,1400,3000`, one pixel grid for all bands) of the same 2 x 2 tiling:
 /// tile_JI_900MHz.fits, tile_JI_1400MHz.fits, tile_JI_3000MHz.fits.
 const std::string& multiband_tiles();

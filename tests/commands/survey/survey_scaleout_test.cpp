@@ -111,11 +111,11 @@ TEST(SurveyScaleOut, OnDiskMergeIsByteIdenticalToInMemory) {
              "import sys, warnings\nfrom astropy.io import fits\n"
              "warnings.simplefilter('error')  # a checksum mismatch warns: make it fail\n"
              "d = fits.open(sys.argv[1], checksum=True)[1].data\n"
-             "print(len(d))\nprint(d['name'][0].strip())\nprint(d['name'][-1].strip())\n");
+             "print(len(d))\nprint(d['designation'][0].strip())\nprint(d['designation'][-1].strip())\n");
   const std::string out = b.dir + "/rows.txt";
   ASSERT_EQ(std::system(("/usr/bin/python3 " + py + " " + b.dir + "/out/m.components.fits > " + out + " 2>/dev/null").c_str()), 0);
-  EXPECT_EQ(read_file(out), std::to_string(csv.rows()) + "\n" + csv.at("name").text.front() + "\n" +
-                                csv.at("name").text.back() + "\n");
+  EXPECT_EQ(read_file(out), std::to_string(csv.rows()) + "\n" + csv.at("designation").text.front() + "\n" +
+                                csv.at("designation").text.back() + "\n");
 }
 
 // Determinism of the on-disk merge: 1 or 2 workers and partition orders 0, 6

@@ -33,6 +33,28 @@ TEST(Flags, BitsAndNamesAreUnique) {
   EXPECT_EQ(flag_names(0), "");
 }
 
+// `flags` holds warnings only and `info_bits` information only: the two tables
+// are each a run of single bits from bit 0, and no name appears in both.
+TEST(Flags, WarningsAndInformationAreSeparate) {
+  std::set<std::string> warn;
+  std::uint32_t expect = 1;
+  for (const auto& f : flag_table()) {
+    EXPECT_EQ(f.bit, expect) << f.name;
+    expect <<= 1;
+    warn.insert(f.name);
+  }
+  expect = 1;
+  for (const auto& f : info_bit_table()) {
+    EXPECT_EQ(f.bit, expect) << f.name;
+    expect <<= 1;
+    EXPECT_EQ(warn.count(f.name), 0u) << f.name << " is both a warning and information";
+    EXPECT_GT(std::string(f.description).size(), 10u);
+  }
+  for (const char* info : {"unresolved", "fixed_shape", "fewer_components", "multi_island"})
+    EXPECT_EQ(warn.count(info), 0u) << info << " must not count as a quality warning";
+  EXPECT_EQ(info_bit_names(kInfoUnresolved | kInfoMultiIsland), "unresolved|multi_island");
+}
+
 // Source: IAU recommendations for nomenclature (designation JHHMMSS.s+DDMMSS,
 // truncated, never rounded; docs/CONVENTIONS.md "Catalogues and names"). RA 201.25 deg =
 // 13h25m00s exactly; Dec -38.6 deg = -38d36m00s.
@@ -57,7 +79,7 @@ CatalogueComponent point(std::int64_t island, double ra, double dec, double s) {
   c.ra_err_arcsec = c.dec_err_arcsec = 0.1;
   c.fitted_arcsec = to_ellipse(kBeam);
   c.deconv_arcsec = {0, 0, 0};
-  c.flags = kFlagUnresolved;
+  c.info_bits = kInfoUnresolved;
   return c;
 }
 
@@ -70,15 +92,15 @@ TEST(Grouping, NeighbouringIslandsJoinWithinTheGap) {
   auto s = group_sources({point(1, 201.25, dec_off(0), 1.0), point(2, 201.25, dec_off(9.0), 1.0)}, {}, kBeam, o);
   ASSERT_EQ(s.size(), 1u);
   EXPECT_EQ(s[0].components.size(), 2u);
-  EXPECT_EQ(s[0].morphology, Morphology::Multi);
-  EXPECT_NE(s[0].flags & kFlagMultiIsland, 0u);
-  EXPECT_EQ(s[0].flags & kFlagUnresolved, 0u) << "two unresolved lobes make a measured LAS";
+  EXPECT_EQ(s[0].structure, SourceStructure::Composite);
+  EXPECT_NE(s[0].info_bits & kInfoMultiIsland, 0u);
+  EXPECT_EQ(s[0].info_bits & kInfoUnresolved, 0u) << "two unresolved lobes make a measured LAS";
   // LAS of two points = their separation (deconvolved extents 0).
   EXPECT_NEAR(s[0].las_arcsec, 9.0, 1e-6);
   // 2.5 beams apart: gap 1.5 beams > 1: two sources.
   s = group_sources({point(1, 201.25, dec_off(0), 1.0), point(2, 201.25, dec_off(15.0), 1.0)}, {}, kBeam, o);
   EXPECT_EQ(s.size(), 2u);
-  EXPECT_NE(s[0].flags & kFlagUnresolved, 0u) << "a single unresolved component: LAS is an upper limit";
+  EXPECT_NE(s[0].info_bits & kInfoUnresolved, 0u) << "a single unresolved component: LAS is an upper limit";
   // Flux ratio 20 > 10: not linked.
   s = group_sources({point(1, 201.25, dec_off(0), 1.0), point(2, 201.25, dec_off(9.0), 20.0)}, {}, kBeam, o);
   EXPECT_EQ(s.size(), 2u);
@@ -93,7 +115,7 @@ TEST(Grouping, NeighbouringIslandsJoinWithinTheGap) {
                     {}, kBeam, o);
   ASSERT_EQ(s.size(), 2u);
   EXPECT_EQ(s[1].components.size(), 2u);
-  EXPECT_EQ(s[1].flags & kFlagMultiIsland, 0u);
+  EXPECT_EQ(s[1].info_bits & kInfoMultiIsland, 0u);
 }
 
 // Flux-weighted mean on the sphere; totals: sum and errors in quadrature.
@@ -108,8 +130,8 @@ TEST(Grouping, WeightedPositionAndTotals) {
   EXPECT_NEAR(s[0].s_int_jy, 4.0, 1e-15);
   EXPECT_NEAR(s[0].s_int_err_jy, std::sqrt(0.01 + 0.09), 1e-15);
   EXPECT_NEAR(s[0].ra_err_arcsec, std::sqrt(1 * 0.01 + 9 * 0.01) / 4.0, 1e-15);
-  EXPECT_EQ(s[0].morphology, Morphology::Multi);
-  EXPECT_EQ(s[0].flags & kFlagMultiIsland, 0u);
+  EXPECT_EQ(s[0].structure, SourceStructure::Composite);
+  EXPECT_EQ(s[0].info_bits & kInfoMultiIsland, 0u);
   EXPECT_NEAR(s[0].las_arcsec, 0.002 * 3600.0, 1e-6);
 }
 
@@ -123,15 +145,15 @@ TEST(Grouping, DiffuseIslandMakesADiffuseSource) {
   isl.residual_rms_jy_per_beam = 2e-4;  // 2 x rms > 1.5
   auto s = group_sources({point(1, 201.25, -38.6, 1.0)}, {isl}, kBeam, o);
   ASSERT_EQ(s.size(), 1u);
-  EXPECT_EQ(s[0].morphology, Morphology::Diffuse);
+  EXPECT_EQ(s[0].structure, SourceStructure::Diffuse);
   EXPECT_NE(s[0].flags & kFlagDiffuse, 0u);
   isl.residual_rms_jy_per_beam = 1.2e-4;
   s = group_sources({point(1, 201.25, -38.6, 1.0)}, {isl}, kBeam, o);
-  EXPECT_EQ(s[0].morphology, Morphology::Single);
+  EXPECT_EQ(s[0].structure, SourceStructure::Compact);
   isl.residual_rms_jy_per_beam = 2e-4;
   isl.n_beams = 1.0;  // too small to judge
   s = group_sources({point(1, 201.25, -38.6, 1.0)}, {isl}, kBeam, o);
-  EXPECT_EQ(s[0].morphology, Morphology::Single);
+  EXPECT_EQ(s[0].structure, SourceStructure::Compact);
 }
 
 // Reference: a direct O(n^2) friends-of-friends (every pair tested with the

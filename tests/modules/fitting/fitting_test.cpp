@@ -442,7 +442,7 @@ TEST(FitIsland, ExtendedNonGaussianIsland) {
     EXPECT_GT(c.sigma_minor_pix, 0.0);
   }
   // A flat disc is badly described by Gaussians: the residuals show it (the
-  // island's residual rms exceeds the noise), which is what a morphology class
+  // island's residual rms exceeds the noise), which is what a structure class
   // "extended, poorly fitted" can be judged from.
   EXPECT_GT(fit.residual_rms, 1.5e-4);
 }

@@ -36,7 +36,7 @@ TEST(Forced, NoiselessPointAndExtendedOnOddGrid) {
     EXPECT_TRUE(r[i].detected);
     EXPECT_EQ(r[i].group_size, 1);
   }
-  EXPECT_NEAR(r[1].conv_maj_arcsec, convolve({12, 4, 100}, {8, 5, 30}).maj, 1e-9);
+  EXPECT_NEAR(r[1].convolved_maj_arcsec, convolve({12, 4, 100}, {8, 5, 30}).maj, 1e-9);
 }
 
 // Source: linear least squares of a sum of known templates is exact on

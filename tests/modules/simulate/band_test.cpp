@@ -290,7 +290,7 @@ TEST(SimulateBand, TruthTablesCarryUnitsAndRows) {
   EXPECT_EQ(band.at("peak_jy_per_beam").unit, "Jy/beam");
   EXPECT_NEAR(band.at("x_pix1").f64[0], b.sources[0].x + 1.0, 1e-12);
   EXPECT_NEAR(band.at("snr_true").f64[3], b.sources[3].peak_jy_per_beam / 2e-5, 1e-9);
-  ASSERT_NE(band.get_meta("freq_hz"), nullptr);
+  ASSERT_NE(band.get_meta("freq_mhz"), nullptr);
 }
 
 TEST(SimulateBand, BadOptionsNameTheOption) {

@@ -1,6 +1,6 @@
 #pragma once
 /// The source catalogue: grouping fitted components into sources, the flag
-/// bitmask every catalogue row carries, and the morphology class of a source.
+/// bitmask every catalogue row carries, and the structure class of a source.
 /// Pure computation on in-memory values (no files, no command line).
 ///
 /// Grouping rule (documented, settable through GroupingOptions):
@@ -34,11 +34,12 @@
 ///    deconvolved major FWHM and (b) over pairs, sep_ij + h_i + h_j with h the
 ///    half-width of the *deconvolved* FWHM ellipse projected on the line
 ///    joining the centres. A single unresolved component has LAS 0 (an upper
-///    limit: the source carries kFlagUnresolved).
-///  - morphology (names of our own):
-///      "single"  one component, island residual acceptable;
-///      "multi"   two or more components, island residuals acceptable;
-///      "diffuse" some island of the source is poorly described by Gaussians:
+///    limit: the source carries kInfoUnresolved).
+///  - structure (names of our own; the enum leaves room for classes such as
+///    double-lobed, triple or large-scale emission):
+///      "compact"   one component, island residual acceptable;
+///      "composite" two or more components, island residuals acceptable;
+///      "diffuse"   some island of the source is poorly described by Gaussians:
 ///                its residual rms over its pixels exceeds
 ///                `diffuse_residual_ratio` times the mean local rms there
 ///                (and it has at least `diffuse_min_beams` beams of pixels).
@@ -53,35 +54,43 @@
 
 namespace skerry {
 
-// ---- Flag bitmask -----------------------------------------------------------
-// One bitmask (uint32 written as int64 columns named `flags`) shared by
-// component, island and source rows. A source row carries the OR of its
-// components' bits plus the source-level bits. Each bit says whether a value
-// was still produced.
+// ---- Flag bitmasks ----------------------------------------------------------
+// Two bitmasks per catalogue row (uint32 written as int64 columns):
+//  - `flags`: quality warnings only. A set bit means "trust this value less";
+//    a row with flags == 0 has no known problem. A source row carries the OR of
+//    its components' warnings plus the source-level ones.
+//  - `info_bits`: informational bits that describe how a value was obtained or
+//    what it is (an upper limit, a fixed shape, ...), not a problem with it.
+// The values were produced either way. Bit numbers are our own.
 inline constexpr std::uint32_t kFlagNearEdge = 1u << 0;        ///< centre within edge_margin_beams of the image edge (island: touches the edge)
 inline constexpr std::uint32_t kFlagNearBlank = 1u << 1;       ///< a blank (NaN) pixel within blank_margin_beams of the centre (island: touches a blank pixel)
 inline constexpr std::uint32_t kFlagNearBright = 1u << 2;      ///< a component bright_ratio times brighter (peak) lies within bright_radius_beams: possible artefact
 inline constexpr std::uint32_t kFlagFitFailed = 1u << 3;       ///< fit did not converge (best parameters kept) or failed (moment-based values)
-inline constexpr std::uint32_t kFlagUnresolved = 1u << 4;      ///< not resolved: deconvolved size is an upper limit
-inline constexpr std::uint32_t kFlagBelowPbCut = 1u << 5;      ///< primary-beam response at the centre below the settable cut
-inline constexpr std::uint32_t kFlagFewerComponents = 1u << 6; ///< the island's peaks were fitted with fewer components (the larger model was not justified)
-inline constexpr std::uint32_t kFlagComponentCap = 1u << 7;    ///< the island had more candidate peaks than the component cap
-inline constexpr std::uint32_t kFlagAtBound = 1u << 8;         ///< a fitted parameter ended at its bound (size floor, centre at the island edge)
-inline constexpr std::uint32_t kFlagFixedShape = 1u << 9;      ///< shape held at the beam (fixed-beam mode); sizes are the beam's
-inline constexpr std::uint32_t kFlagBadRms = 1u << 10;         ///< local rms not positive or not finite at the centre; SNR and errors undefined (NaN)
-inline constexpr std::uint32_t kFlagMultiIsland = 1u << 11;    ///< source only: the source joins components of several islands
-inline constexpr std::uint32_t kFlagDiffuse = 1u << 12;        ///< island/source: residual rms exceeds diffuse_residual_ratio x local rms
-inline constexpr std::uint32_t kFlagNoPrimaryBeam = 1u << 13;  ///< primary-beam image given but blank or non-positive at the centre; corrected values NaN
+inline constexpr std::uint32_t kFlagBelowPbCut = 1u << 4;      ///< primary-beam response at the centre below the settable cut
+inline constexpr std::uint32_t kFlagComponentCap = 1u << 5;    ///< the island had more candidate peaks than the component cap
+inline constexpr std::uint32_t kFlagAtBound = 1u << 6;         ///< a fitted parameter ended at its bound (size floor, centre at the island edge)
+inline constexpr std::uint32_t kFlagBadRms = 1u << 7;          ///< local rms not positive or not finite at the centre; SNR and errors undefined (NaN)
+inline constexpr std::uint32_t kFlagDiffuse = 1u << 8;         ///< island/source: residual rms exceeds diffuse_residual_ratio x local rms
+inline constexpr std::uint32_t kFlagNoPrimaryBeam = 1u << 9;   ///< primary-beam image given but blank or non-positive at the centre; corrected values NaN
+
+inline constexpr std::uint32_t kInfoUnresolved = 1u << 0;       ///< not resolved: deconvolved size is an upper limit
+inline constexpr std::uint32_t kInfoFixedShape = 1u << 1;       ///< shape held at the beam (fixed-beam mode); sizes are the beam's
+inline constexpr std::uint32_t kInfoFewerComponents = 1u << 2;  ///< the island's peaks were fitted with fewer components (the larger model was not justified)
+inline constexpr std::uint32_t kInfoMultiIsland = 1u << 3;      ///< source only: the source joins components of several islands
 
 struct FlagInfo {
   std::uint32_t bit;
   const char* name;         ///< short name (README / catalogue meta)
   const char* description;  ///< one line
 };
-/// Every bit above, in bit order (for the README table and the catalogue meta).
+/// Every warning bit of `flags`, in bit order (README table, catalogue meta).
 const std::vector<FlagInfo>& flag_table();
-/// "near_edge|fit_failed" style text of a bitmask ("" for 0).
+/// Every bit of `info_bits`, in bit order (README table, catalogue meta).
+const std::vector<FlagInfo>& info_bit_table();
+/// "near_edge|fit_failed" style text of a `flags` mask ("" for 0).
 std::string flag_names(std::uint32_t flags);
+/// "unresolved|fixed_shape" style text of an `info_bits` mask ("" for 0).
+std::string info_bit_names(std::uint32_t info_bits);
 
 // ---- Inputs -----------------------------------------------------------------
 
@@ -95,10 +104,11 @@ struct CatalogueComponent {
   double s_int_jy = 0.0, s_int_err_jy = 0.0;
   Ellipse fitted_arcsec;   ///< beam-convolved FWHM ellipse, PA east of north [arcsec, deg]
   Ellipse deconv_arcsec;   ///< deconvolved FWHM ellipse; axes 0 where unresolved
-  std::uint32_t flags = 0; ///< bits set upstream (fit, pb, rms); flag_components() adds position bits
+  std::uint32_t flags = 0; ///< warnings set upstream (fit, pb, rms); flag_components() adds position bits
+  std::uint32_t info_bits = 0;  ///< informational bits (kInfo*)
 };
 
-/// What the morphology class needs of one island.
+/// What the structure class needs of one island.
 struct CatalogueIsland {
   std::int64_t id = 0;                      ///< 1-based
   long n_pixels = 0;
@@ -134,8 +144,8 @@ struct GroupingOptions {
   double diffuse_min_beams = 2.0;       ///< islands smaller than this many beam areas are never "diffuse"
 };
 
-enum class Morphology { Single, Multi, Diffuse };
-const char* morphology_name(Morphology m);  ///< "single", "multi", "diffuse"
+enum class SourceStructure { Compact, Composite, Diffuse };
+const char* structure_name(SourceStructure m);  ///< "compact", "composite", "diffuse"
 
 struct CatalogueSource {
   std::int64_t id = 0;                   ///< 1-based
@@ -146,8 +156,9 @@ struct CatalogueSource {
   double s_int_jy = 0.0, s_int_err_jy = 0.0;
   double s_peak_max_jy_per_beam = 0.0;   ///< brightest component peak
   double las_arcsec = 0.0;               ///< largest angular size (see above)
-  Morphology morphology = Morphology::Single;
-  std::uint32_t flags = 0;
+  SourceStructure structure = SourceStructure::Compact;
+  std::uint32_t flags = 0;      ///< warnings (kFlag*)
+  std::uint32_t info_bits = 0;  ///< informational bits (kInfo*)
 };
 
 /// Groups components into sources by the rule above. `islands` may be in any

@@ -82,16 +82,18 @@ struct ForcedOptions {
   double max_shift_arcsec = 0.0;
 };
 
+/// The `forced_flags` layout (our own), most severe first: bits 0-2 mean "no
+/// value", bits 3-5 "a value with a caveat", bits 6-8 are information.
 enum ForcedFlag : std::uint32_t {
-  kForcedOutside = 1u << 0,       ///< position outside the image or on blank pixels: no value
-  kForcedBlended = 1u << 1,       ///< fitted together with neighbours
-  kForcedEdge = 1u << 2,          ///< part of the footprint is off the image or blank
-  kForcedNotDetected = 1u << 3,   ///< below detect_snr: use the upper limit
-  kForcedGroupSplit = 1u << 4,    ///< blend larger than max_group_size was split
-  kForcedMasked = 1u << 5,        ///< centre in a user mask / exclusion region: no value
-  kForcedDegenerate = 1u << 6,    ///< blend members indistinguishable (singular system): no value
-  kForcedShiftAtBound = 1u << 7,  ///< the fitted shift reached +-max_shift_arcsec on a pixel axis
-  kForcedShiftFailed = 1u << 8,   ///< the shifted fit did not converge: fixed-position values kept
+  kForcedOutside = 1u << 0,       ///< off_image: position outside the image or on blank pixels: no value
+  kForcedMasked = 1u << 1,        ///< masked: centre in a user mask / exclusion region: no value
+  kForcedDegenerate = 1u << 2,    ///< degenerate_blend: blend members indistinguishable (singular system): no value
+  kForcedEdge = 1u << 3,          ///< footprint_clipped: part of the footprint is off the image or blank
+  kForcedShiftFailed = 1u << 4,   ///< shift_failed: the shifted fit did not converge: fixed-position values kept
+  kForcedShiftAtBound = 1u << 5,  ///< shift_at_bound: the fitted shift reached +-max_shift_arcsec on a pixel axis
+  kForcedNotDetected = 1u << 6,   ///< not_detected: below detect_snr: use the upper limit
+  kForcedBlended = 1u << 7,       ///< joint_fit: fitted together with neighbours (a blend group)
+  kForcedGroupSplit = 1u << 8,    ///< blend_split: blend larger than max_group_size was split
 };
 
 struct ForcedMeasurement {
@@ -105,7 +107,7 @@ struct ForcedMeasurement {
   double rms_flux_jy = NAN;                 ///< that rms on the flux scale of the shape [Jy]
   double upper_limit_jy = NAN;              ///< limit_snr * rms_flux_jy [Jy]
   bool detected = false;
-  double conv_maj_arcsec = NAN, conv_min_arcsec = NAN, conv_pa_deg = NAN;  ///< model shape
+  double convolved_maj_arcsec = NAN, convolved_min_arcsec = NAN, convolved_pa_deg = NAN;  ///< model shape
   /// Fitted centre shift (max_shift_arcsec > 0; 0 for members whose centre stayed
   /// fixed) on the sky: east = delta RA cos(Dec), north = delta Dec [arcsec], and
   /// 1-sigma errors (NaN where the centre was not free).

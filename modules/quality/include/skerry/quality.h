@@ -106,7 +106,7 @@ std::vector<FractionBin> fraction_curve(const std::vector<double>& x,
 void wilson_interval(std::size_t k, std::size_t n, double z, double& lo, double& hi);
 
 /// Reliability from the negated image (common practice: noise is symmetric):
-/// per SNR bin, R = 1 - N_neg / N_pos, clipped to [0, 1]; false detection rate
+/// per SNR bin, R = 1 - N_neg / N_pos, clipped to [0, 1]; negative-to-positive ratio
 /// = N_neg / N_pos. n = N_pos, k = N_neg. Bins with N_pos = 0 have fraction NaN.
 std::vector<FractionBin> reliability_curve(const std::vector<double>& snr_positive,
                                            const std::vector<double>& snr_negative,
