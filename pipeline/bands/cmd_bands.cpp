@@ -70,6 +70,9 @@
 
 #include "app/command.h"
 #include "app/errors.h"
+#include "extract/catalogue_tables.h"
+#include "extract/extract_job.h"
+#include "extract/extract_settings.h"
 #include "io/fits_image.h"
 #include "io/table_io.h"
 #include "app/options.h"
@@ -191,7 +194,25 @@ std::vector<std::string> band_tags(const std::vector<double>& freq_hz) {
   return tags;
 }
 
-/// The components to measure: ra, dec and intrinsic shape.
+/// One component to measure: its position and intrinsic shape. `where` names the
+/// catalogue (or image) and row in the message of a bad position. Unresolved
+/// components (deconvolved sizes are upper limits) are measured as point sources.
+ForcedSource forced_source(double ra_deg, double dec_deg, double intrinsic_maj, double intrinsic_min, double intrinsic_pa,
+                           bool unresolved, const std::string& where, std::size_t row) {
+  ForcedSource s;
+  s.ra_deg = ra_deg;
+  s.dec_deg = dec_deg;
+  if (!std::isfinite(s.ra_deg) || !std::isfinite(s.dec_deg) || s.dec_deg < -90.0 || s.dec_deg > 90.0)
+    throw InputError(where, "row " + std::to_string(row + 1) + ": ra_deg/dec_deg is not a sky position");
+  if (!unresolved && std::isfinite(intrinsic_maj) && intrinsic_maj > 0.0) {
+    s.intrinsic.maj = intrinsic_maj;
+    s.intrinsic.min = (std::isfinite(intrinsic_min) && intrinsic_min > 0.0) ? std::min(intrinsic_min, intrinsic_maj) : 0.0;
+    s.intrinsic.pa_deg = std::isfinite(intrinsic_pa) ? intrinsic_pa : 0.0;
+  }
+  return s;
+}
+
+/// The components to measure from a catalogue file: ra, dec and intrinsic shape.
 std::vector<ForcedSource> read_components(const std::string& path) {
   const Table t = read_table(path);
   const Column* ra = t.find("ra_deg");
@@ -211,21 +232,62 @@ std::vector<ForcedSource> read_components(const std::string& path) {
   };
   std::vector<ForcedSource> out;
   for (std::size_t i = 0; i < t.rows(); ++i) {
-    ForcedSource s;
-    s.ra_deg = ra->f64[i];
-    s.dec_deg = dec->f64[i];
-    if (!std::isfinite(s.ra_deg) || !std::isfinite(s.dec_deg) || s.dec_deg < -90.0 || s.dec_deg > 90.0)
-      throw InputError(path, "row " + std::to_string(i + 1) + ": ra_deg/dec_deg is not a sky position");
-    const double M = num(mj, i), m = num(mn, i), p = num(pa, i);
-    // Extract marks unresolved components (deconvolved sizes are upper limits):
-    // those are measured as point sources.
     const bool unresolved = info && info->type == ColumnType::Int64 && (info->i64[i] & kInfoUnresolved);
-    if (!unresolved && std::isfinite(M) && M > 0.0) {
-      s.intrinsic.maj = M;
-      s.intrinsic.min = (std::isfinite(m) && m > 0.0) ? std::min(m, M) : 0.0;
-      s.intrinsic.pa_deg = std::isfinite(p) ? p : 0.0;
-    }
-    out.push_back(s);
+    out.push_back(forced_source(ra->f64[i], dec->f64[i], num(mj, i), num(mn, i), num(pa, i), unresolved, path, i));
+  }
+  return out;
+}
+
+/// The detection: the extract job on `det_image` (read as `skerry extract` reads
+/// it), its component, island and source tables written as CSV into `det_dir`
+/// (NAME.detect.*.csv), and the components to measure in every band.
+std::vector<ForcedSource> detect_components(const std::string& det_image, const ImageReadOptions& ro,
+                                            const ExtractConfig& ec, const std::string& det_dir,
+                                            const std::string& det_name, const Provenance& settings) {
+  if (const std::string e = ec.islands.validate(); !e.empty()) throw UsageError("detect: " + e);
+  // The detection's own run record (NAME.detect.run.json): its settings, input,
+  // stage times and counts.
+  RunRecord rec("extract");
+  rec.set_configuration(std::map<std::string, std::string>(settings.begin(), settings.end()), "");
+  StageTimer t_read(rec, "read");
+  const SkyImage sky = read_sky_image(det_image, ro);
+  check_extract_image(sky, ec);
+  t_read.stop();
+  ExtractHooks hooks;
+  hooks.stage = [&rec](const std::string& stage, double seconds) { rec.add_stage(stage, seconds); };
+  const ExtractResult r = run_extract_job(sky, ExtractInputs{}, ec, hooks);
+  StageTimer t_write(rec, "write");
+  const std::string sha = rec.add_input("image", det_image);
+  Provenance meta = extract_provenance("skerry bands (detection)", sky, det_image, sha, r);
+  meta.insert(meta.end(), settings.begin(), settings.end());
+  std::error_code ec_dir;
+  fs::create_directories(det_dir, ec_dir);
+  if (ec_dir) throw OutputError(det_dir, "cannot create the folder: " + ec_dir.message());
+  const fs::path d(det_dir);
+  const std::string comps_path = (d / (det_name + ".components.csv")).string(),
+                    islands_path = (d / (det_name + ".islands.csv")).string(),
+                    sources_path = (d / (det_name + ".sources.csv")).string(),
+                    run_path = (d / (det_name + ".run.json")).string();
+  write_table(make_component_table(r.components, meta, sky.freq_hz), comps_path);
+  write_table(make_island_table(r.islands, meta, sky.freq_hz), islands_path);
+  write_table(make_source_table(r.sources, meta, sky.freq_hz, ExtractSettings{}.designation_prefix), sources_path);
+  t_write.stop();
+  rec.set_count("islands", static_cast<std::int64_t>(r.islands.size()));
+  rec.set_count("components", static_cast<std::int64_t>(r.components.size()));
+  rec.set_count("sources", static_cast<std::int64_t>(r.sources.size()));
+  rec.set_count("components_fit_failed", r.components_fit_failed);
+  rec.set_count("islands_too_small", r.islands_too_small);
+  rec.set_count("noise_passes", r.noise_passes);
+  rec.set_count("image_width", sky.pixels.cols());
+  rec.set_count("image_height", sky.pixels.rows());
+  rec.set_value("peak_snr_used", std::to_string(r.peak_snr_used));
+  for (const auto& f : {comps_path, islands_path, sources_path, run_path}) rec.add_output(f);
+  rec.write(run_path);
+  std::vector<ForcedSource> out;
+  for (std::size_t i = 0; i < r.components.size(); ++i) {
+    const CatalogueComponent& c = r.components[i];
+    out.push_back(forced_source(c.ra_deg, c.dec_deg, c.deconv_arcsec.maj, c.deconv_arcsec.min, c.deconv_arcsec.pa_deg,
+                                (c.info_bits & kInfoUnresolved) != 0, det_image, i));
   }
   return out;
 }
@@ -452,13 +514,16 @@ int run_bands(const std::vector<std::string>& args) {
         }
       }
     }
-    const CommandInfo* extract = nullptr;
-    for (const auto& c : command_registry())
-      if (c.name == "extract") extract = &c;
-    if (!extract) throw std::logic_error("the extract sub-command is not built in");
     const std::string det_dir = (fs::path(out_dir) / (name + ".detect")).string();
+    // The detection image is read as `skerry extract` reads an image; the job runs
+    // with extract's defaults and the settings below (recorded in the tables' meta).
     std::string det_image;
-    std::vector<std::string> extra;
+    ImageReadOptions det_read;
+    det_read.require_beam = true;
+    ExtractConfig ec;
+    ec.islands.peak_snr = vm["detect.peak_snr"].as<double>();
+    ec.render_model = false;
+    Provenance settings{{"cfg_detect_peak_snr", fits_real(ec.islands.peak_snr)}};
     if (combined) {
       make_common();
       std::vector<const ImageF*> ims, rmss;
@@ -477,26 +542,21 @@ int run_bands(const std::vector<std::string>& args) {
       det_image = (fs::path(det_dir) / (name + ".detect_snr_map.fits")).string();
       write_fits_image(det_image, d.snr, bands[cr.g], "", cards);
       // D is N(0,1) on empty sky: no background or rms to estimate.
-      extra = {"--noise.fixed_rms", "1", "--noise.fixed_background", "0", "--image.accept_bunit", "true",
-               "--image.freq_mhz", fits_real(std::exp(log_ref) / 1e6)};
+      ec.fixed_rms = 1.0;
+      ec.fixed_background = 0.0;
+      det_read.accept_any_bunit = true;
+      det_read.freq_hz_override = std::exp(log_ref) / 1e6 * 1e6;
+      settings.push_back({"cfg_noise_fixed_rms", "1"});
+      settings.push_back({"cfg_noise_fixed_background", "0"});
       record.set_value("detection_n_partial_pixels", std::to_string(d.n_partial));
     } else {
       det_image = paths[det_band - 1];
-      if (freq_override[det_band - 1] > 0.0) extra = {"--image.freq_mhz", fits_real(freq_override[det_band - 1] / 1e6)};
-      if (vm["bands.accept_bunit"].as<bool>()) {
-        extra.push_back("--image.accept_bunit");
-        extra.push_back("true");
-      }
+      if (freq_override[det_band - 1] > 0.0) det_read.freq_hz_override = freq_override[det_band - 1] / 1e6 * 1e6;
+      det_read.accept_any_bunit = vm["bands.accept_bunit"].as<bool>();
     }
-    std::vector<std::string> ea{det_image, "--out", det_dir, "--output.name", name + ".detect",
-                                "--output.formats", "csv", "--output.maps", "false", "--output.model", "false",
-                                "--output.residual", "false", "--detect.peak_snr",
-                                fits_real(vm["detect.peak_snr"].as<double>()), "--threads",
-                                std::to_string(vm["threads"].as<int>())};
-    ea.insert(ea.end(), extra.begin(), extra.end());
-    const int rc = extract->run(ea);
-    if (rc != kExitOk) throw ExitError(rc, "detection with extract on " + det_image + " failed");
-    comps = read_components((fs::path(det_dir) / (name + ".detect.components.csv")).string());
+    if (det_read.freq_hz_override)
+      settings.push_back({"cfg_image_freq_mhz", fits_real(*det_read.freq_hz_override / 1e6)});
+    comps = detect_components(det_image, det_read, ec, det_dir, name + ".detect", settings);
   }
   t_cat.stop();
 

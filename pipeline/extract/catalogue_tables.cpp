@@ -85,8 +85,8 @@ Provenance convention_meta() {
   return p;
 }
 
-void sort_components(std::vector<ComponentRecord>& rows) {
-  std::stable_sort(rows.begin(), rows.end(), [](const ComponentRecord& a, const ComponentRecord& b) {
+void sort_components(std::vector<CatalogueComponent>& rows) {
+  std::stable_sort(rows.begin(), rows.end(), [](const CatalogueComponent& a, const CatalogueComponent& b) {
     if (a.island_id != b.island_id) return a.island_id < b.island_id;
     return a.component < b.component;
   });
@@ -110,7 +110,7 @@ std::string designation(const std::string& prefix, double ra_deg, double dec_deg
   return prefix.empty() ? std::string(buf) : prefix + " " + buf;
 }
 
-Table make_component_table(const std::vector<ComponentRecord>& rows, const Provenance& meta,
+Table make_component_table(const std::vector<CatalogueComponent>& rows, const Provenance& meta,
                            double freq_hz) {
   Table t;
   t.name = "components";
@@ -174,17 +174,17 @@ Table make_component_table(const std::vector<ComponentRecord>& rows, const Prove
     spe.f64.push_back(r.s_peak_err_jy_per_beam);
     si.f64.push_back(r.s_int_jy);
     sie.f64.push_back(r.s_int_err_jy);
-    mj.f64.push_back(r.maj_arcsec);
+    mj.f64.push_back(r.fitted_arcsec.maj);
     mje.f64.push_back(r.maj_err_arcsec);
-    mn.f64.push_back(r.min_arcsec);
+    mn.f64.push_back(r.fitted_arcsec.min);
     mne.f64.push_back(r.min_err_arcsec);
-    pa.f64.push_back(r.pa_deg);
+    pa.f64.push_back(r.fitted_arcsec.pa_deg);
     pae.f64.push_back(r.pa_err_deg);
-    dmj.f64.push_back(r.intrinsic_maj_arcsec);
+    dmj.f64.push_back(r.deconv_arcsec.maj);
     dmje.f64.push_back(r.intrinsic_maj_err_arcsec);
-    dmn.f64.push_back(r.intrinsic_min_arcsec);
+    dmn.f64.push_back(r.deconv_arcsec.min);
     dmne.f64.push_back(r.intrinsic_min_err_arcsec);
-    dpa.f64.push_back(r.intrinsic_pa_deg);
+    dpa.f64.push_back(r.deconv_arcsec.pa_deg);
     dpae.f64.push_back(r.intrinsic_pa_err_deg);
     bg.f64.push_back(r.background_jy_per_beam);
     rms.f64.push_back(r.rms_jy_per_beam);

@@ -19,37 +19,6 @@
 
 namespace skerry {
 
-/// Everything one component row holds (pipeline fills it from the fit).
-/// NaN where a value does not exist (e.g. primary-beam columns without a
-/// primary-beam image).
-struct ComponentRecord {
-  std::int64_t island_id = 0;       ///< 1-based island id
-  std::int64_t component = 0;       ///< 1-based index within the island
-  std::int64_t source_id = 0;       ///< 1-based source id (grouping)
-  double x_pix = 0.0, y_pix = 0.0;  ///< 0-based centre (written 1-based)
-  double ra_deg = 0.0, dec_deg = 0.0;
-  double ra_err_arcsec = 0.0, dec_err_arcsec = 0.0;  ///< RA error is of RA*cos(Dec)
-  double s_peak_jy_per_beam = 0.0, s_peak_err_jy_per_beam = 0.0;
-  double s_int_jy = 0.0, s_int_err_jy = 0.0;
-  double maj_arcsec = 0.0, maj_err_arcsec = 0.0;  ///< fitted (beam-convolved) FWHM
-  double min_arcsec = 0.0, min_err_arcsec = 0.0;
-  double pa_deg = 0.0, pa_err_deg = 0.0;          ///< east of north, [0, 180)
-  double intrinsic_maj_arcsec = 0.0, intrinsic_maj_err_arcsec = 0.0;  ///< deconvolved; upper limit when unresolved
-  double intrinsic_min_arcsec = 0.0, intrinsic_min_err_arcsec = 0.0;
-  double intrinsic_pa_deg = 0.0, intrinsic_pa_err_deg = 0.0;
-  double background_jy_per_beam = 0.0;   ///< local background at the centre
-  double rms_jy_per_beam = 0.0;          ///< local rms at the centre
-  double snr = 0.0;                      ///< component SNR: fitted peak / local rms
-  double chi2_red = 0.0;                 ///< island fit reduced chi-square
-  bool resolved = false;                 ///< S_int/S_peak above the SNR-dependent envelope
-  double pb = 0.0;                       ///< primary-beam response at the centre (NaN: none given)
-  double s_peak_pbcor_jy_per_beam = 0.0; ///< primary-beam corrected peak (NaN: none)
-  double s_int_pbcor_jy = 0.0;           ///< primary-beam corrected integrated (NaN: none)
-  double s_int_pbcor_err_jy = 0.0;
-  std::uint32_t flags = 0;      ///< quality warnings (kFlag*)
-  std::uint32_t info_bits = 0;  ///< informational bits (kInfo*)
-};
-
 struct IslandRecord {
   std::int64_t island_id = 0;
   std::int64_t n_components = 0;
@@ -78,7 +47,7 @@ Provenance convention_meta();
 std::string radio_band_ucd(double freq_hz);
 
 /// `freq_hz` (NaN when unknown) picks the band word of the flux-density UCDs.
-Table make_component_table(const std::vector<ComponentRecord>& rows, const Provenance& meta,
+Table make_component_table(const std::vector<CatalogueComponent>& rows, const Provenance& meta,
                            double freq_hz);
 Table make_island_table(const std::vector<IslandRecord>& rows, const Provenance& meta,
                         double freq_hz);
@@ -87,7 +56,7 @@ Table make_source_table(const std::vector<CatalogueSource>& sources, const Prove
                         double freq_hz, const std::string& designation_prefix);
 
 /// Sorts component records by (island_id, component): the total order of rows.
-void sort_components(std::vector<ComponentRecord>& rows);
+void sort_components(std::vector<CatalogueComponent>& rows);
 
 /// Designation in IAU style from the position, truncated not rounded:
 /// PREFIX JHHMMSS.s+DDMMSS (docs/CONVENTIONS.md "Catalogues and names").

@@ -86,4 +86,36 @@ void write_text_atomic(const std::string& path, const std::string& content) {
   out.commit();
 }
 
+StagedOutputs::StagedOutputs(const std::string& out_dir, const std::string& name, const std::string& tag)
+    : final_(out_dir) {
+  std::error_code ec;
+  fs::create_directories(final_, ec);
+  if (ec) throw OutputError(out_dir, "cannot create the output folder: " + ec.message());
+  dir_ = final_ / ("." + name + "." + tag + "-" + std::to_string(::getpid()) + ".partial");
+  fs::remove_all(dir_, ec);
+  fs::create_directories(dir_, ec);
+  if (ec) throw OutputError(dir_.string(), "cannot create a staging folder: " + ec.message());
+}
+
+StagedOutputs::~StagedOutputs() {
+  std::error_code ec;
+  fs::remove_all(dir_, ec);
+}
+
+std::string StagedOutputs::path(const std::string& file_name) {
+  files_.push_back(file_name);
+  return (dir_ / file_name).string();
+}
+
+std::string StagedOutputs::final_path(const std::string& file_name) const { return (final_ / file_name).string(); }
+
+void StagedOutputs::commit() {
+  for (const auto& f : files_) {
+    std::error_code ec;
+    fs::rename(dir_ / f, final_ / f, ec);
+    if (ec) throw OutputError((final_ / f).string(), "cannot move into place: " + ec.message());
+  }
+  fsync_path(final_.string(), true);
+}
+
 }  // namespace skerry

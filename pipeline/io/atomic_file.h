@@ -4,7 +4,9 @@
 /// so a run killed at any moment leaves either the old file or the new one,
 /// never a half-written one. Temporary names start with '.' and end in '.partial'.
 #include <cstddef>
+#include <filesystem>
 #include <string>
+#include <vector>
 
 namespace skerry {
 
@@ -28,6 +30,33 @@ class AtomicOutput {
   std::string final_;
   std::string temp_;
   bool committed_ = false;
+};
+
+/// The same mechanism for a set of outputs that must appear together: a hidden
+/// folder ".NAME.TAG-PID.partial" inside the output folder receives every file
+/// (each written atomically there), and commit() moves them into the output
+/// folder (one rename each, then an fsync of the folder). The destructor removes
+/// the hidden folder and whatever is still in it, so a failed run leaves the
+/// previous outputs untouched and no partial file behind.
+class StagedOutputs {
+ public:
+  /// Creates `out_dir` (if needed) and the hidden folder; throws OutputError.
+  StagedOutputs(const std::string& out_dir, const std::string& name, const std::string& tag);
+  ~StagedOutputs();
+  StagedOutputs(const StagedOutputs&) = delete;
+  StagedOutputs& operator=(const StagedOutputs&) = delete;
+  /// Path in the hidden folder for the output file `file_name` (recorded, in call order).
+  std::string path(const std::string& file_name);
+  /// Where `file_name` ends up.
+  std::string final_path(const std::string& file_name) const;
+  /// The recorded file names, in the order path() was called.
+  const std::vector<std::string>& files() const { return files_; }
+  /// Moves every recorded file into place; throws OutputError naming the file.
+  void commit();
+
+ private:
+  std::filesystem::path final_, dir_;
+  std::vector<std::string> files_;
 };
 
 /// Write `content` to `path` atomically. Throws OutputError on failure

@@ -14,6 +14,7 @@
 #include "io/wcs.h"
 
 #include <erfa.h>
+#include <Eigen/LU>
 #include <wcslib/wcs.h>
 #include <wcslib/wcserr.h>
 #include <wcslib/wcsfix.h>
@@ -33,6 +34,7 @@
 
 #include "io/header_text.h"
 #include "skerry/constants.h"
+#include "skerry/gaussian.h"
 
 namespace skerry {
 
@@ -116,6 +118,11 @@ class WcslibSky final : public PixelSky {
   bool sky_to_pix(double ra_deg, double dec_deg, double& x, double& y) const override {
     sky_to_pix_n(1, &ra_deg, &dec_deg, &x, &y);
     return std::isfinite(x) && std::isfinite(y);
+  }
+
+  /// The same grid with the image frame's own longitude/latitude as (ra, dec).
+  std::shared_ptr<const PixelSky> native_view() const {
+    return std::make_shared<WcslibSky>(acquire(), Frame::Icrs, Rotation{});
   }
 
   /// 0-based pixels -> ICRS; NaN where undefined.
@@ -527,6 +534,29 @@ std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
   }
   if (frame_out) *frame_out = frame_name;
   return std::make_shared<WcslibSky>(std::move(sub), frame, rot);
+}
+
+std::shared_ptr<const PixelSky> native_frame_sky(const PixelSky& sky) {
+  const auto* w = dynamic_cast<const WcslibSky*>(&sky);
+  if (!w) return nullptr;
+  return w->native_view();
+}
+
+SkyBeam::SkyBeam(std::shared_ptr<const PixelSky> wcs, const std::string& frame, const Beam& beam,
+                 bool pa_in_image_frame)
+    : wcs_(std::move(wcs)), beam_(beam) {
+  if (pa_in_image_frame && frame == "GALACTIC" && wcs_) native_ = native_frame_sky(*wcs_);
+}
+
+std::optional<Beam> SkyBeam::at(double x, double y) const {
+  if (!native_) return beam_;
+  const auto ln = local_geometry(*native_, x, y);
+  const auto li = local_geometry(*wcs_, x, y);
+  if (!ln || !li) return std::nullopt;
+  const Eigen::Vector2d north_pix = ln->jac_arcsec_per_pix.inverse() * Eigen::Vector2d(0.0, 1.0);
+  Beam b = beam_;
+  b.pa_deg = wrap_pa_180(b.pa_deg + li->pa_of_pixel_direction_deg(north_pix(0), north_pix(1)));
+  return b;
 }
 
 void pix_to_sky_many(const PixelSky& sky, std::size_t n, const double* x, const double* y,

@@ -14,6 +14,7 @@
 ///    GAPPT, ecliptic and other frames are refused with a one-line reason.
 #include <cstddef>
 #include <memory>
+#include <optional>
 #include <string>
 #include <utility>
 #include <vector>
@@ -32,6 +33,37 @@ namespace skerry {
 std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
                                                 std::string* frame_out = nullptr,
                                                 std::string* cards2d_out = nullptr);
+
+/// A view of a PixelSky made by wcs_from_header whose (ra, dec) are the
+/// longitude and latitude of the image's own celestial frame (e.g. Galactic l, b),
+/// without the conversion to ICRS. nullptr for other PixelSky implementations.
+/// Throws std::runtime_error when WCSLIB cannot copy the coordinate system.
+std::shared_ptr<const PixelSky> native_frame_sky(const PixelSky& sky);
+
+/// The restoring beam of an image with its PA east of ICRS north, at any pixel.
+///
+/// BPA in a header is measured from the north of the image's own frame (FITS beam
+/// keywords, REF-FITS-03; common practice). Catalogue angles are east of ICRS
+/// north, so for a Galactic image the beam is turned, at each position, by the
+/// ICRS position angle of Galactic north there: that direction is the +latitude
+/// direction of the native frame (native_frame_sky) in the pixel frame, and its
+/// ICRS PA comes from the real WCS. Other frames, and beams whose PA is already
+/// east of ICRS north (e.g. given by the user): the beam as it is.
+class SkyBeam {
+ public:
+  /// `pa_in_image_frame`: the beam's PA is measured from the north of `frame`
+  /// ("ICRS", "FK5" or "GALACTIC", as wcs_from_header names it).
+  SkyBeam(std::shared_ptr<const PixelSky> wcs, const std::string& frame, const Beam& beam,
+          bool pa_in_image_frame);
+  /// The beam with its PA east of ICRS north at 0-based pixel (x, y); nullopt
+  /// where the pixel has no sky position.
+  std::optional<Beam> at(double x, double y) const;
+
+ private:
+  std::shared_ptr<const PixelSky> wcs_;
+  std::shared_ptr<const PixelSky> native_;  ///< set only when the beam must be turned
+  Beam beam_;
+};
 
 /// Bulk conversions: n points; NaN outputs where a point has no position. Uses one
 /// WCSLIB call per chunk for a PixelSky made by wcs_from_header (falls back to

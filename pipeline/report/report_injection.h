@@ -1,8 +1,8 @@
 #pragma once
 /// Completeness by injection and reliability from the negated image, measured
-/// by running `skerry extract` itself (this executable, as a child process) on
-/// modified copies of the image, so that detection and fitting are exactly the
-/// stages of a real run.
+/// by running the extract job (extract_job.h) in process on modified copies of
+/// the image, with the settings of `skerry extract` (extract_settings.h), so that
+/// detection and fitting are exactly the stages of a real run.
 #include <cstdint>
 #include <string>
 #include <vector>
@@ -15,7 +15,7 @@ struct InjectionOptions {
   std::string image;            ///< input FITS image
   std::string out_dir;          ///< where NAME.completeness.csv etc. go
   std::string name;             ///< NAME; "" = the image's stem
-  std::string extract_config;   ///< --config file passed to every extract run ("" = defaults)
+  std::string extract_config;   ///< configuration file of `skerry extract` for every job ("" = defaults)
   int rounds = 8;               ///< independent injection rounds (parallel)
   int per_round = 150;          ///< sources injected per round
   double snr_min = 1.0, snr_max = 30.0;  ///< grid of injected peaks, in units of the median rms

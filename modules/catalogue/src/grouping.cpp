@@ -49,6 +49,15 @@ double half_width(const Ellipse& e, double dir_pa_deg) {
   return 0.5 * std::sqrt(e.maj * e.maj * c * c + e.min * e.min * s * s);
 }
 
+}  // namespace
+
+Ellipse deconvolved_extent_arcsec(const CatalogueComponent& c) {
+  if (c.deconv_maj_upper_limit) return {0.0, 0.0, 0.0};
+  return {c.deconv_arcsec.maj, c.deconv_min_upper_limit ? 0.0 : c.deconv_arcsec.min, c.deconv_arcsec.pa_deg};
+}
+
+namespace {
+
 bool finite_pos(const CatalogueComponent& c) {
   return std::isfinite(c.ra_deg) && std::isfinite(c.dec_deg);
 }
@@ -201,13 +210,15 @@ std::vector<CatalogueSource> group_sources(const std::vector<CatalogueComponent>
     double las = 0.0;
     for (std::size_t p = 0; p < s.components.size(); ++p) {
       const auto& a = comps[s.components[p]];
-      if (std::isfinite(a.deconv_arcsec.maj)) las = std::max(las, a.deconv_arcsec.maj);
+      const Ellipse ea = deconvolved_extent_arcsec(a);
+      if (std::isfinite(ea.maj)) las = std::max(las, ea.maj);
       for (std::size_t q = p + 1; q < s.components.size(); ++q) {
         const auto& b = comps[s.components[q]];
         if (!finite_pos(a) || !finite_pos(b)) continue;
         const double sep = separation_deg(a.ra_deg, a.dec_deg, b.ra_deg, b.dec_deg) * kDegToArcsec;
-        const double hab = half_width(a.deconv_arcsec, position_angle_deg(a.ra_deg, a.dec_deg, b.ra_deg, b.dec_deg));
-        const double hba = half_width(b.deconv_arcsec, position_angle_deg(b.ra_deg, b.dec_deg, a.ra_deg, a.dec_deg));
+        const double hab = half_width(ea, position_angle_deg(a.ra_deg, a.dec_deg, b.ra_deg, b.dec_deg));
+        const double hba = half_width(deconvolved_extent_arcsec(b),
+                                      position_angle_deg(b.ra_deg, b.dec_deg, a.ra_deg, a.dec_deg));
         const double ext = sep + (std::isfinite(hab) ? hab : 0.0) + (std::isfinite(hba) ? hba : 0.0);
         las = std::max(las, ext);
       }

@@ -2,6 +2,10 @@
 #include <algorithm>
 #include <cmath>
 #include <cstring>
+#include <vector>
+
+#include <oneapi/tbb/blocked_range.h>
+#include <oneapi/tbb/parallel_for.h>
 
 #include "fitting_internal.h"
 #include "skerry/fitting.h"
@@ -45,28 +49,43 @@ double component_value(const PixelComponent& c, double x, double y) {
   return val;
 }
 
-void render_components(const std::vector<PixelComponent>& comps, ImageD& model,
-                       double extent_sigma) {
-  const int ny = static_cast<int>(model.rows()), nx = static_cast<int>(model.cols());
-  for (const auto& c : comps) {
-    if (!std::isfinite(c.amplitude) || !std::isfinite(c.x) || !std::isfinite(c.y) ||
-        !(c.sigma_major_pix > 0.0) || !(c.sigma_minor_pix > 0.0))
-      continue;
+ImageF render_components(long nx, long ny, const std::vector<PixelComponent>& comps,
+                         double extent_sigma) {
+  ImageF model = ImageF::Zero(ny, nx);
+  constexpr long kStrip = 64;
+  const long n_strips = (ny + kStrip - 1) / kStrip;
+  struct Box {
+    long x0, x1, y0, y1;
+  };
+  std::vector<Box> boxes(comps.size());
+  std::vector<std::vector<std::size_t>> by_strip(static_cast<std::size_t>(std::max(0L, n_strips)));
+  for (std::size_t i = 0; i < comps.size(); ++i) {
+    const auto& c = comps[i];
     const double r = extent_sigma * c.sigma_major_pix;
-    const int x0 = std::max(0, static_cast<int>(std::floor(c.x - r)));
-    const int x1 = std::min(nx - 1, static_cast<int>(std::ceil(c.x + r)));
-    const int y0 = std::max(0, static_cast<int>(std::floor(c.y - r)));
-    const int y1 = std::min(ny - 1, static_cast<int>(std::ceil(c.y + r)));
-    const double p[6] = {c.amplitude, c.x, c.y, c.sigma_major_pix, c.sigma_minor_pix,
-                         c.theta_rad};
-    fitting_detail::GaussEval ev(p);
-    for (int y = y0; y <= y1; ++y)
-      for (int x = x0; x <= x1; ++x) {
-        double v;
-        ev.eval(x, y, v, nullptr);
-        model(y, x) += v;
-      }
+    if (!std::isfinite(c.x) || !std::isfinite(c.y) || !std::isfinite(r) || !std::isfinite(c.amplitude)) {
+      boxes[i] = {0, -1, 0, -1};
+      continue;
+    }
+    const Box b{std::max(0L, static_cast<long>(std::floor(c.x - r))),
+                std::min(nx - 1, static_cast<long>(std::ceil(c.x + r))),
+                std::max(0L, static_cast<long>(std::floor(c.y - r))),
+                std::min(ny - 1, static_cast<long>(std::ceil(c.y + r)))};
+    boxes[i] = b;
+    if (b.x1 < b.x0 || b.y1 < b.y0) continue;
+    for (long s = b.y0 / kStrip; s <= b.y1 / kStrip; ++s) by_strip[static_cast<std::size_t>(s)].push_back(i);
   }
+  oneapi::tbb::parallel_for(oneapi::tbb::blocked_range<long>(0, n_strips, 1), [&](const auto& range) {
+    for (long s = range.begin(); s != range.end(); ++s) {
+      const long ys = s * kStrip, ye = std::min(ny, ys + kStrip) - 1;
+      for (std::size_t i : by_strip[static_cast<std::size_t>(s)]) {
+        const Box& b = boxes[i];
+        for (long y = std::max(ys, b.y0); y <= std::min(ye, b.y1); ++y)
+          for (long x = b.x0; x <= b.x1; ++x)
+            model(y, x) += static_cast<float>(component_value(comps[i], static_cast<double>(x), static_cast<double>(y)));
+      }
+    }
+  });
+  return model;
 }
 
 }  // namespace skerry

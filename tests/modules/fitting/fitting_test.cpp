@@ -480,12 +480,13 @@ TEST(RenderComponents, PixelSumMatchesIntegratedFlux) {
   EXPECT_NEAR(s.maj_arcsec, 8.0, 1e-9);
   EXPECT_NEAR(s.min_arcsec, 5.0, 1e-9);
   EXPECT_NEAR(s.pa_deg, 45.0, 1e-7);
-  skerry::ImageD model = skerry::ImageD::Zero(201, 201);
-  skerry::render_components({c}, model, 40.0);
+  // Float pixels: each holds the component's value rounded to float (relative
+  // error <= 6e-8), so the sum agrees to 1e-7.
+  const skerry::ImageF model = skerry::render_components(201, 201, {c}, 40.0);
   const double n_beam = skerry::kGaussAreaFactor * 6.0 * 4.0;  // beam area in 1" pixels
-  EXPECT_NEAR(model.sum() / n_beam, 4.166666666666665e-3, 1e-9 * 4.17e-3);
-  EXPECT_DOUBLE_EQ(model(100, 100), 2.5e-3);
-  EXPECT_DOUBLE_EQ(model(97, 103), skerry::component_value(c, 103, 97));
+  EXPECT_NEAR(model.cast<double>().sum() / n_beam, 4.166666666666665e-3, 1e-7 * 4.17e-3);
+  EXPECT_EQ(model(100, 100), static_cast<float>(2.5e-3));
+  EXPECT_EQ(model(97, 103), static_cast<float>(skerry::component_value(c, 103, 97)));
 }
 
 }  // namespace

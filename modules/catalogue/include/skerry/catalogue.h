@@ -94,19 +94,41 @@ std::string info_bit_names(std::uint32_t info_bits);
 
 // ---- Inputs -----------------------------------------------------------------
 
-/// What grouping and flagging need of one component.
+/// One fitted component as catalogued: what flagging and grouping read, and
+/// every column of the component table. NaN where a value does not exist (e.g.
+/// the primary-beam columns without a primary-beam image).
 struct CatalogueComponent {
   std::int64_t island_id = 0;       ///< 1-based island id
+  std::int64_t component = 0;       ///< 1-based index within the island (1 = brightest)
+  std::int64_t source_id = 0;       ///< 1-based source id (group_sources)
   double x_pix = 0.0, y_pix = 0.0;  ///< centre, 0-based pixels
   double ra_deg = 0.0, dec_deg = 0.0;
-  double ra_err_arcsec = 0.0, dec_err_arcsec = 0.0;
-  double s_peak_jy_per_beam = 0.0;
+  double ra_err_arcsec = 0.0, dec_err_arcsec = 0.0;  ///< RA error is of RA*cos(Dec)
+  double s_peak_jy_per_beam = 0.0, s_peak_err_jy_per_beam = 0.0;
   double s_int_jy = 0.0, s_int_err_jy = 0.0;
   Ellipse fitted_arcsec;   ///< beam-convolved FWHM ellipse, PA east of north [arcsec, deg]
-  Ellipse deconv_arcsec;   ///< deconvolved FWHM ellipse; axes 0 where unresolved
+  double maj_err_arcsec = 0.0, min_err_arcsec = 0.0, pa_err_deg = 0.0;  ///< errors of fitted_arcsec
+  /// Deconvolved FWHM ellipse; an axis marked as an upper limit below holds the
+  /// limit (deconvolved_extent_arcsec() gives the extent with such axes 0).
+  Ellipse deconv_arcsec;
+  bool deconv_maj_upper_limit = false, deconv_min_upper_limit = false;
+  double intrinsic_maj_err_arcsec = 0.0, intrinsic_min_err_arcsec = 0.0, intrinsic_pa_err_deg = 0.0;  ///< NaN for limits
+  double background_jy_per_beam = 0.0;   ///< local background at the centre
+  double rms_jy_per_beam = 0.0;          ///< local rms at the centre
+  double snr = 0.0;                      ///< component SNR: fitted peak / local rms
+  double chi2_red = 0.0;                 ///< island fit reduced chi-square
+  bool resolved = false;                 ///< S_int/S_peak above the SNR-dependent envelope
+  double pb = 0.0;                       ///< primary-beam response at the centre (NaN: none given)
+  double s_peak_pbcor_jy_per_beam = 0.0; ///< primary-beam corrected peak (NaN: none)
+  double s_int_pbcor_jy = 0.0;           ///< primary-beam corrected integrated (NaN: none)
+  double s_int_pbcor_err_jy = 0.0;
   std::uint32_t flags = 0; ///< warnings set upstream (fit, pb, rms); flag_components() adds position bits
   std::uint32_t info_bits = 0;  ///< informational bits (kInfo*)
 };
+
+/// The deconvolved extent of a component: deconv_arcsec with an upper-limit
+/// axis set to 0 (and everything 0 when the major axis is a limit).
+Ellipse deconvolved_extent_arcsec(const CatalogueComponent& c);
 
 /// What the structure class needs of one island.
 struct CatalogueIsland {

@@ -37,7 +37,9 @@
 #include <string_view>
 #include <vector>
 
+#include "skerry/background.h"
 #include "skerry/image.h"
+#include "skerry/islands.h"
 #include "skerry/levmar.h"
 #include "skerry/sky.h"
 
@@ -62,6 +64,19 @@ struct IslandCutout {
   /// local_geometry(...)->sky_cov_to_pixel(ellipse_to_cov(to_ellipse(beam))).
   Eigen::Matrix2d beam_cov_pix = Eigen::Matrix2d::Zero();
 };
+
+/// Cuts one island of `labels` out of (image - background) for fit_island(): the
+/// island's bounding box grown by 1 + ceil(margin_beam_sigma * sigma_maj) pixels
+/// (sigma_maj the beam's major-axis sigma in pixels, from `beam_cov_pix`) and
+/// clipped to the image. A pixel is usable when the image, the background and the
+/// rms are finite and rms > 0. Masks: usable island pixels kCutoutIsland, usable
+/// pixels of no island kCutoutFree, everything else kCutoutExcluded. Optional
+/// outputs: `in_island` (1 on the usable island pixels, cut-out shape) and
+/// `mean_rms` (mean rms over them [Jy/beam]; NaN when there is none).
+IslandCutout cut_out_island(const ImageF& image, const NoiseMaps& maps, const LabelsI32& labels,
+                            const Island& island, const Eigen::Matrix2d& beam_cov_pix,
+                            double margin_beam_sigma, MaskU8* in_island = nullptr,
+                            double* mean_rms = nullptr);
 
 /// Which covariance a fit reports in PixelComponent::cov.
 enum class ErrorModel {
@@ -190,11 +205,14 @@ std::vector<IslandFit> fit_islands(const std::vector<IslandCutout>& islands,
 /// Model value of a component at 0-based image pixel (x, y) [Jy/beam].
 double component_value(const PixelComponent& c, double x, double y);
 
-/// Model of the components of many fits rendered into an image of the given size
-/// (added to `model`, which must be pre-sized). Each component is evaluated out to
-/// `extent_sigma` sigmas.
-void render_components(const std::vector<PixelComponent>& comps, ImageD& model,
-                       double extent_sigma = 6.0);
+/// Model image (nx x ny) of many fitted components: each component is evaluated
+/// (component_value) out to `extent_sigma` major-axis sigmas from its centre and
+/// added pixel by pixel, in component order, into float pixels. Rows are split
+/// into fixed strips of 64; each strip adds, in component order, the components
+/// that reach it, so the sums (and the bytes) do not depend on the thread count.
+/// Components without a finite centre, amplitude or extent add nothing.
+ImageF render_components(long nx, long ny, const std::vector<PixelComponent>& comps,
+                         double extent_sigma = 6.0);
 
 /// Analytic Jacobian of the single-component model at (x, y) with respect to
 /// (A, x0, y0, sa, sb, t) (used by the fitter; exposed for tests).
