@@ -2,7 +2,7 @@
 //
 // External checks: the exclusive assignment against a brute-force O(N M)
 // greedy reference; f(r) against the bivariate normal density (handbook
-// formula, e.g. Abramowitz & Stegun 26.3.1); the reliability against its
+// formula, Abramowitz & Stegun 1964, 26.3.1, from memory); the reliability against its
 // definition R = LR / (sum LR + 1 - Q0) (REF-LR-01); Q0 and the calibration of
 // the reliabilities against the truth of simulated radio-optical fields
 // (a true counterpart is known for every radio source that has one).
