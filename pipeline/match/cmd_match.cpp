@@ -1,15 +1,19 @@
 // `skerry match A B --out DIR`: cross-match catalogues by sky separation.
 //
 // Modes (match.mode): nearest, all, one_to_one, sigma_scaled (separations in
-// units of the combined position errors), self (one
+// units of the combined position errors; match.exclusive makes it one-to-one), self (one
 // catalogue, duplicates and friends-of-friends groups), multi (the first
-// catalogue is the master list, every further one is matched to it).
+// catalogue is the master list, every further one is matched to it),
+// likelihood_ratio (counterparts of A in a dense catalogue B with magnitudes).
 // Outputs (NAME = the stems of A and B joined by '_'):
 //   NAME.matches.csv (+ .fits / .vot with match.formats)   matched pairs
 //   NAME.unmatched_a.csv, NAME.unmatched_b.csv              with match.unmatched
 //   NAME.match_summary.json                                  counts, offsets, chance matches, flux ratio
 // self:  NAME.self_matches.csv (pairs) and NAME.groups.csv (one row per input row)
 // multi: NAME.multi.csv (one row per master row) and NAME.match_summary.json
+// likelihood_ratio: NAME.lr_candidates.csv (every candidate with LR, reliability,
+//   rank, best), NAME.lr_magnitude_bins.csv (n(m), q(m) per bin, for plots),
+//   NAME.lr_q0_fit.csv (blank fractions behind Q0) and NAME.match_summary.json
 #include <erfa.h>
 #include <erfam.h>
 
@@ -31,6 +35,7 @@
 #include "app/options.h"
 #include "app/run_record.h"
 #include "skerry/crossmatch.h"
+#include "skerry/likelihood_ratio.h"
 #include "skerry/table.h"
 #include "app/version.h"
 
@@ -215,7 +220,10 @@ struct Catalogue {
   std::size_t no_position = 0;
 };
 
-Catalogue load_catalogue(const std::string& path, const SideOptions& so, const std::string& side, bool need_errors) {
+/// need_errors: the position error columns must exist; optional_errors: read
+/// them when they exist (likelihood_ratio's dense catalogue).
+Catalogue load_catalogue(const std::string& path, const SideOptions& so, const std::string& side, bool need_errors,
+                         bool optional_errors = false) {
   Catalogue cat;
   cat.path = path;
   cat.table = read_table(path);
@@ -291,7 +299,7 @@ Catalogue load_catalogue(const std::string& path, const SideOptions& so, const s
                                  {"ra_err_arcsec", "e_ra", "ra_err", "era", "sigma_ra", "e_raj2000"});
   const Column* de = find_column(t, path, so.dec_err, "match.dec_err_" + side, {"stat.error;pos.eq.dec"},
                                  {"dec_err_arcsec", "e_dec", "dec_err", "edec", "sigma_dec", "e_dej2000"});
-  if (need_errors) {
+  if (need_errors || (optional_errors && re && de)) {
     if (!re || !de)
       throw InputError(path, std::string("error-aware matching needs positional error columns; none found for ") +
                                  (!re ? "RA" : "Dec") + " (name it with --match." + (!re ? "ra_err_" : "dec_err_") +
@@ -409,15 +417,244 @@ nlohmann::ordered_json num(double v) {
   return std::isfinite(v) ? nlohmann::ordered_json(v) : nlohmann::ordered_json(nullptr);
 }
 
+/// Magnitudes of B for likelihood_ratio: the magnitude column, or -2.5 log10 of
+/// a flux column (non-positive flux: no magnitude). NaN = none.
+std::vector<double> lr_magnitudes(const Catalogue& B, const std::string& mag_opt, const std::string& flux_opt,
+                                  std::string& column, bool& from_flux) {
+  if (!mag_opt.empty() && !flux_opt.empty())
+    throw UsageError("give match.lr_mag_b or match.lr_flux_b, not both");
+  from_flux = !flux_opt.empty();
+  const Column* c = from_flux
+                        ? find_column(B.table, B.path, flux_opt, "match.lr_flux_b", {}, {})
+                        : find_column(B.table, B.path, mag_opt, "match.lr_mag_b", {"phot.mag;meta.main", "phot.mag"},
+                                      {"mag", "magnitude", "mag_auto", "rmag", "r_mag", "imag", "i_mag", "kmag", "ks_mag"});
+  if (!c)
+    throw InputError(B.path, "no magnitude column found for the likelihood-ratio match; name it with "
+                             "--match.lr_mag_b (or a flux column with --match.lr_flux_b)");
+  column = c->name;
+  std::vector<double> v = numeric_values(*c, B.path);
+  if (from_flux)
+    for (auto& x : v) x = x > 0 && std::isfinite(x) ? -2.5 * std::log10(x) : std::nan("");
+  return v;
+}
+
+int run_likelihood_ratio(const Catalogue& A, const Catalogue& B, const ParsedOptions& parsed, double radius,
+                         const std::vector<std::string>& formats, const std::string& base, RunRecord& rec,
+                         nlohmann::ordered_json& js, nlohmann::ordered_json& outputs) {
+  const auto& vm = parsed.vm;
+  LikelihoodRatioOptions lo;
+  lo.radius_arcsec = radius;
+  lo.systematic_arcsec = vm["match.systematic_arcsec"].as<double>();
+  lo.mag_bin = vm["match.lr_mag_bin"].as<double>();
+  require(lo.mag_bin > 0 && std::isfinite(lo.mag_bin), "match.lr_mag_bin", std::to_string(lo.mag_bin), "> 0");
+  lo.background_shifts = vm["match.lr_background_shifts"].as<int>();
+  require(lo.background_shifts >= 1 && lo.background_shifts <= 1000, "match.lr_background_shifts",
+          std::to_string(lo.background_shifts), "1..1000");
+  lo.q0_radii = vm["match.lr_q0_radii"].as<int>();
+  require(lo.q0_radii >= 2 && lo.q0_radii <= 1000, "match.lr_q0_radii", std::to_string(lo.q0_radii), "2..1000");
+  const double q0 = vm["match.lr_q0"].as<double>();
+  require(q0 >= 0 && q0 <= 1, "match.lr_q0", std::to_string(q0), "0 (estimate) or 0 < Q0 <= 1");
+  if (q0 > 0) lo.q0 = q0;
+  const double r_min = vm["match.lr_reliability"].as<double>();
+  require(r_min >= 0 && r_min <= 1, "match.lr_reliability", std::to_string(r_min), "0..1");
+  std::string mag_col;
+  bool from_flux = false;
+  const std::vector<double> mag = lr_magnitudes(B, vm["match.lr_mag_b"].as<std::string>(),
+                                                vm["match.lr_flux_b"].as<std::string>(), mag_col, from_flux);
+  LikelihoodRatioResult r;
+  {
+    StageTimer st(rec, "match");
+    try {
+      r = likelihood_ratio_match(A.pos, B.pos, mag, lo);
+    } catch (const std::invalid_argument& e) {
+      throw UsageError(std::string("likelihood_ratio: ") + e.what());
+    }
+  }
+  if (r.n_a_used == 0) throw InputError(A.path, "no row has a usable position and positional error");
+
+  // Candidates.
+  Table t;
+  t.name = "lr_candidates";
+  std::vector<std::int64_t> ia, ib, nc, rk, best, ident;
+  std::vector<double> sep, pa, dn, mg, fr, lrv, rel;
+  for (const auto& c : r.candidates) {
+    ia.push_back(c.a);
+    ib.push_back(c.b);
+    sep.push_back(c.sep_arcsec);
+    pa.push_back(c.pa_deg);
+    dn.push_back(c.norm_sep);
+    mg.push_back(c.mag);
+    fr.push_back(c.f_r);
+    lrv.push_back(c.lr);
+    rel.push_back(c.reliability);
+    nc.push_back(c.n_candidates);
+    rk.push_back(c.rank);
+    best.push_back(c.rank == 1 ? 1 : 0);
+    ident.push_back(c.rank == 1 && c.reliability > r_min ? 1 : 0);
+  }
+  t.add_i64("row_a", "", "meta.id", "0-based row of A", ia);
+  t.add_i64("row_b", "", "meta.id.cross", "0-based row of B (the candidate)", ib);
+  t.add_f64("sep_arcsec", "arcsec", "pos.angDistance", "Great-circle separation of B from A (Vincenty)", sep);
+  t.add_f64("pa_deg", "deg", "pos.posAng", "Position angle of B seen from A, east of north, [0, 360)", pa);
+  t.add_f64("norm_sep", "", "stat.value", "Normalised separation d = sqrt(D^T S^-1 D), S = S_A + S_B + sys^2 I", dn);
+  t.add_f64("mag_b", "mag", "phot.mag", from_flux ? "-2.5 log10 of B's flux column " + mag_col : "Magnitude of B (" + mag_col + ")", mg);
+  t.add_f64("f_r", "arcsec-2", "stat.probability", "Positional probability density f(r) = exp(-d^2/2) / (2 pi sqrt(det S))", fr);
+  t.add_f64("likelihood_ratio", "", "stat.likelihood", "LR = q(m) f(r) / n(m)", lrv);
+  t.add_f64("reliability", "", "stat.probability", "R = LR / (sum of LR over this row of A + 1 - Q0)", rel);
+  t.add_i64("n_candidates", "", "meta.number", "Candidates of this row of A within the radius", nc);
+  t.add_i64("rank", "", "meta.number", "Rank by LR among the candidates of this row of A (1 = largest)", rk);
+  t.add_i64("best", "", "meta.code", "1 for the candidate with the largest LR of this row of A", best);
+  t.add_i64("identified", "", "meta.code", "1 when best and reliability > match.lr_reliability", ident);
+  for (const Column* c : carried(A.table, A.path, vm["match.columns_a"].as<std::string>()))
+    append_column(t, *c, vm["match.prefix_a"].as<std::string>(), ia);
+  for (const Column* c : carried(B.table, B.path, vm["match.columns_b"].as<std::string>()))
+    append_column(t, *c, vm["match.prefix_b"].as<std::string>(), ib);
+  set_provenance(t, "likelihood_ratio", radius, parsed);
+  t.set_meta("lr_q0", std::to_string(r.q0));
+
+  // Magnitude bins: n(m) per deg^2 per mag and q(m) per mag, for plots.
+  constexpr double kArcsec2PerDeg2 = 3600.0 * 3600.0;
+  Table bt;
+  bt.name = "lr_magnitude_bins";
+  std::vector<double> lo_e, hi_e, nm, qm, real;
+  std::vector<std::int64_t> tot, bg;
+  for (const auto& b : r.bins) {
+    lo_e.push_back(b.mag_lo);
+    hi_e.push_back(b.mag_hi);
+    tot.push_back(b.total);
+    bg.push_back(b.background);
+    nm.push_back(b.n_m * kArcsec2PerDeg2 / lo.mag_bin);
+    real.push_back(b.real);
+    qm.push_back(b.q_m / lo.mag_bin);
+  }
+  bt.add_f64("mag_lo", "mag", "phot.mag;stat.min", "Lower edge of the magnitude bin", lo_e);
+  bt.add_f64("mag_hi", "mag", "phot.mag;stat.max", "Upper edge of the magnitude bin", hi_e);
+  bt.add_i64("total", "", "meta.number", "Candidates of B within the radius of the rows of A", tot);
+  bt.add_i64("background", "", "meta.number", "Candidates of B within the radius of the background positions", bg);
+  bt.add_f64("n_m_per_deg2_per_mag", "deg-2 mag-1", "phot.count;stat.density", "Background surface density n(m)", nm);
+  bt.add_f64("real", "", "meta.number", "Excess total - n(m) N_A pi r^2 (>= 0): counterparts within the radius", real);
+  bt.add_f64("q_m_per_mag", "mag-1", "stat.probability", "q(m): magnitude distribution of the true counterparts, integral Q0", qm);
+  set_provenance(bt, "likelihood_ratio", radius, parsed);
+
+  Table qt;
+  qt.name = "lr_q0_fit";
+  std::vector<double> model;
+  for (std::size_t j = 0; j < r.q0_radius_arcsec.size(); ++j) model.push_back(1.0 - r.q0 * r.q0_model_f[j]);
+  qt.add_f64("radius_arcsec", "arcsec", "pos.angDistance", "Radius r", r.q0_radius_arcsec);
+  qt.add_f64("blank_a", "", "stat.value", "Fraction of A positions with no candidate within r", r.q0_blank_a);
+  qt.add_f64("blank_background", "", "stat.value", "Fraction of background positions with no candidate within r", r.q0_blank_background);
+  qt.add_f64("f_r_mean", "", "stat.value", "F(r): mean over A of the probability that a true counterpart lies within r", r.q0_model_f);
+  qt.add_f64("model_ratio", "", "stat.value", "1 - Q0 F(r), the model of blank_a / blank_background", model);
+  set_provenance(qt, "likelihood_ratio", radius, parsed);
+  {
+    StageTimer st(rec, "write");
+    write_formats(t, base + ".lr_candidates", formats, rec, outputs);
+    write_formats(bt, base + ".lr_magnitude_bins", formats, rec, outputs);
+    write_formats(qt, base + ".lr_q0_fit", formats, rec, outputs);
+  }
+
+  std::size_t with_cand = 0, identified = 0;
+  double expected_true = 0;
+  for (const auto& c : r.candidates) {
+    if (c.rank != 1) continue;
+    ++with_cand;
+    if (c.reliability > r_min) {
+      ++identified;
+      expected_true += c.reliability;
+    }
+  }
+  nlohmann::ordered_json counts;
+  counts["rows_a"] = A.table.rows();
+  counts["rows_b"] = B.table.rows();
+  counts["rows_a_without_position"] = r.a_invalid;
+  counts["rows_a_without_error"] = r.a_no_error;
+  counts["rows_b_without_position"] = r.b_invalid;
+  counts["rows_b_without_magnitude"] = r.b_no_mag;
+  counts["rows_a_used"] = r.n_a_used;
+  counts["candidates"] = r.candidates.size();
+  counts["rows_a_with_candidates"] = with_cand;
+  counts["identified"] = identified;
+  js["counts"] = counts;
+  nlohmann::ordered_json l;
+  l["q0"] = r.q0;
+  l["q0_estimated"] = r.q0_estimated;
+  l["q0_fit_rms"] = num(r.q0_fit_rms);
+  l["q0_method"] = "blank fractions U_A(r)/U_bg(r) = 1 - Q0 F(r), least squares over the radii (REF-LR-03)";
+  l["reliability_threshold"] = r_min;
+  l["identified_expected_true"] = expected_true;
+  l["identified_expected_false"] = static_cast<double>(identified) - expected_true;
+  l["magnitude_column_b"] = mag_col;
+  l["magnitude_from_flux"] = from_flux;
+  l["mag_bin"] = lo.mag_bin;
+  l["systematic_arcsec"] = lo.systematic_arcsec;
+  l["b_median_error_arcsec"] = r.b_median_error_arcsec;
+  l["background_positions"] = r.n_background;
+  l["background_method"] = "A positions shifted by (4 + s mod 4) radii at position angles 360 s / S";
+  nlohmann::ordered_json bins = nlohmann::ordered_json::array();
+  for (std::size_t k = 0; k < r.bins.size(); ++k)
+    bins.push_back({{"mag_lo", lo_e[k]}, {"mag_hi", hi_e[k]}, {"n_m_per_deg2_per_mag", nm[k]}, {"q_m_per_mag", qm[k]},
+                    {"total", tot[k]}, {"background", bg[k]}});
+  l["bins"] = bins;
+  l["method"] = "likelihood ratio LR = q(m) f(r) / n(m), reliability R = LR / (sum LR + 1 - Q0) (REF-LR-01); "
+                "q(m) from the excess around A over the background (REF-LR-02)";
+  // Where the run could mislead, say so.
+  nlohmann::ordered_json warn = nlohmann::ordered_json::array();
+  if (r.q0_estimated && r.q0_fit_rms > 0.05)
+    warn.push_back("the blank fractions do not follow 1 - Q0 F(r) (fit rms " + std::to_string(r.q0_fit_rms) +
+                   "): position errors misstated, clustered background or B not covering A's field; Q0 is uncertain");
+  std::size_t empty_bins = 0;
+  for (const auto& b : r.bins) empty_bins += b.background == 0 && b.real > 0;
+  if (empty_bins)
+    warn.push_back(std::to_string(empty_bins) + " magnitude bins with counterparts but no background object: n(m) "
+                   "taken as one object there (an upper limit), so LR is a lower limit");
+  {
+    std::vector<double> sig;
+    const double bm = r.b_median_error_arcsec;
+    for (std::size_t i = 0; i < A.pos.size(); ++i) {
+      const double e = A.pos.err_east_arcsec[i], n = A.pos.err_north_arcsec[i];
+      const double v = 0.5 * (e * e + n * n) + bm * bm + lo.systematic_arcsec * lo.systematic_arcsec;
+      if (std::isfinite(v) && v > 0) sig.push_back(std::sqrt(v));
+    }
+    if (!sig.empty()) {
+      std::nth_element(sig.begin(), sig.begin() + static_cast<std::ptrdiff_t>(sig.size() / 2), sig.end());
+      const double med = sig[sig.size() / 2];
+      l["median_combined_sigma_arcsec"] = med;
+      if (radius < 3.5 * med)
+        warn.push_back("match.radius_arcsec is below 3.5 x the median combined position error (" + std::to_string(med) +
+                       " arcsec): true counterparts outside the radius are missed and reliabilities run high");
+    }
+  }
+  if (r.a_no_error)
+    warn.push_back(std::to_string(r.a_no_error) + " rows of A without a usable position error were not searched");
+  l["warnings"] = warn;
+  js["likelihood_ratio"] = l;
+  if (!B.pos.err_east_arcsec.empty()) js["b_position_errors"] = "used";
+  else js["b_position_errors"] = "none found: taken as 0 (only A's errors and the systematic term enter f(r))";
+  js["outputs"] = outputs;
+  write_text_atomic(base + ".match_summary.json", js.dump(2) + "\n");
+  std::cout << "skerry match: " << A.table.rows() << " x " << B.table.rows() << " rows, " << r.candidates.size()
+            << " candidates (likelihood_ratio, " << radius << " arcsec), Q0 = " << r.q0 << ", " << identified
+            << " identified at R > " << r_min << " -> " << base << ".lr_candidates." << formats[0] << "\n";
+  return kExitOk;
+}
+
 int run_match(const std::vector<std::string>& args) {
   po::options_description d("match options (options are match.KEY; in a config file, KEY goes under [match])");
   d.add_options()
       ("catalogues", po::value<std::vector<std::string>>()->multitoken(), "input catalogues (.csv, .fits, .vot): A B, or one (self), or master + several (multi)")
       ("out", po::value<std::string>()->default_value("outputs/match"), "output folder")
-      ("match.mode", po::value<std::string>()->default_value("nearest"), "nearest | all | one_to_one | sigma_scaled | self | multi")
+      ("match.mode", po::value<std::string>()->default_value("nearest"), "nearest | all | one_to_one | sigma_scaled | self | multi | likelihood_ratio")
       ("match.radius_arcsec", po::value<double>()->default_value(5.0), "match radius [arcsec] (sigma_scaled mode: the largest separation considered)")
       ("match.completeness", po::value<double>()->default_value(0.997), "sigma_scaled mode: completeness p; match when d < sqrt(-2 ln(1-p))")
-      ("match.systematic_arcsec", po::value<double>()->default_value(0.0), "sigma_scaled mode: systematic error per coordinate added to both catalogues' [arcsec]")
+      ("match.systematic_arcsec", po::value<double>()->default_value(0.0), "sigma_scaled and likelihood_ratio modes: systematic error per coordinate added to both catalogues' [arcsec]")
+      ("match.exclusive", po::value<bool>()->default_value(false), "sigma_scaled mode: one-to-one; pairs taken globally by increasing normalised separation d, each row of A and of B used at most once")
+      ("match.lr_mag_b", po::value<std::string>()->default_value(""), "likelihood_ratio: magnitude column of B; empty = match.lr_flux_b or a column named mag, magnitude, mag_auto, ...")
+      ("match.lr_flux_b", po::value<std::string>()->default_value(""), "likelihood_ratio: flux column of B used instead of a magnitude (binned in -2.5 log10 of it)")
+      ("match.lr_mag_bin", po::value<double>()->default_value(0.5), "likelihood_ratio: magnitude bin width of n(m) and q(m) [mag]")
+      ("match.lr_background_shifts", po::value<int>()->default_value(20), "likelihood_ratio: shifted copies of A's positions that measure the background n(m) and the blanks")
+      ("match.lr_q0", po::value<double>()->default_value(0.0), "likelihood_ratio: fixed Q0 in (0, 1]; 0 = estimate it from the blanks")
+      ("match.lr_q0_radii", po::value<int>()->default_value(10), "likelihood_ratio: radii (up to match.radius_arcsec) of the Q0 fit")
+      ("match.lr_reliability", po::value<double>()->default_value(0.8), "likelihood_ratio: reliability above which the best candidate counts as identified (summary and the identified column)")
       ("match.ra_a", po::value<std::string>()->default_value(""), "RA (or Galactic longitude) column of A; empty = from UCDs or common names")
       ("match.dec_a", po::value<std::string>()->default_value(""), "Dec (or Galactic latitude) column of A")
       ("match.ra_b", po::value<std::string>()->default_value(""), "RA column of B (and of every further catalogue in multi mode)")
@@ -459,10 +696,15 @@ int run_match(const std::vector<std::string>& args) {
   else if (mode_s == "all") mode = MatchMode::All;
   else if (mode_s == "one_to_one") mode = MatchMode::OneToOne;
   else if (mode_s == "sigma_scaled") mode = MatchMode::ErrorAware;
-  else if (!self && !multi)
-    throw UsageError("--match.mode = " + mode_s + " breaks 'nearest, all, one_to_one, sigma_scaled, self or multi'");
+  const bool lr = mode_s == "likelihood_ratio";
+  if (lr) mode = MatchMode::ErrorAware;  // A needs position errors, as in the sigma_scaled mode
+  else if (mode_s != "nearest" && mode_s != "all" && mode_s != "one_to_one" && mode_s != "sigma_scaled" && !self && !multi)
+    throw UsageError("--match.mode = " + mode_s +
+                     " breaks 'nearest, all, one_to_one, sigma_scaled, self, multi or likelihood_ratio'");
   if (self && files.size() != 1) throw UsageError("match.mode self takes exactly one catalogue");
   if (multi && files.size() < 2) throw UsageError("match.mode multi takes a master catalogue and at least one more");
+  require(!vm["match.exclusive"].as<bool>() || (mode == MatchMode::ErrorAware && !lr), "match.exclusive", "true",
+          "only with match.mode sigma_scaled; one_to_one is the exclusive mode by separation");
   if (!self && !multi && files.size() != 2) throw UsageError("match takes two catalogues A B (got " + std::to_string(files.size()) + ")");
   const double radius = D("match.radius_arcsec");
   require(radius > 0 && std::isfinite(radius), "match.radius_arcsec", std::to_string(radius), "> 0");
@@ -498,7 +740,7 @@ int run_match(const std::vector<std::string>& args) {
   js["tool"] = "skerry match";
   js["tool_version"] = SKERRY_VERSION;
   js["git_revision"] = SKERRY_GIT_REVISION;
-  js["mode"] = self ? "self" : multi ? "multi" : mode_name(mode);
+  js["mode"] = self ? "self" : multi ? "multi" : lr ? "likelihood_ratio" : mode_name(mode);
   js["radius_arcsec"] = radius;
   nlohmann::ordered_json outputs = nlohmann::ordered_json::array();
   nlohmann::ordered_json inputs = nlohmann::ordered_json::array();
@@ -508,7 +750,8 @@ int run_match(const std::vector<std::string>& args) {
     StageTimer st(rec, "read");
     for (std::size_t i = 0; i < files.size(); ++i) {
       const SideOptions& so = i == 0 ? sa : sb;
-      cats.push_back(load_catalogue(files[i], so, i == 0 ? "a" : "b", mode == MatchMode::ErrorAware && !self && !multi));
+      const bool need_err = mode == MatchMode::ErrorAware && !self && !multi && !(lr && i == 1);
+      cats.push_back(load_catalogue(files[i], so, i == 0 ? "a" : "b", need_err, lr && i == 1));
       rec.add_input(i == 0 ? "catalogue_a" : "catalogue_b", files[i]);
       const Catalogue& c = cats.back();
       nlohmann::ordered_json ij;
@@ -656,6 +899,8 @@ int run_match(const std::vector<std::string>& args) {
     return kExitOk;
   }
 
+  if (lr) return run_likelihood_ratio(cats[0], cats[1], parsed, radius, formats, base, rec, js, outputs);
+
   // ---- two catalogues -------------------------------------------------------------------
   const Catalogue& A = cats[0];
   const Catalogue& B = cats[1];
@@ -664,6 +909,7 @@ int run_match(const std::vector<std::string>& args) {
   mo.radius_arcsec = radius;
   mo.completeness = p;
   mo.systematic_arcsec = D("match.systematic_arcsec");
+  mo.exclusive = vm["match.exclusive"].as<bool>();
   MatchResult r;
   {
     StageTimer st(rec, "match");
@@ -696,6 +942,7 @@ int run_match(const std::vector<std::string>& args) {
   for (const Column* c : carried(B.table, B.path, S("match.columns_b"))) append_column(t, *c, S("match.prefix_b"), ib);
   set_provenance(t, mode_name(mode), radius, parsed);
   if (mode == MatchMode::ErrorAware) t.set_meta("match_k", std::to_string(r.k_threshold));
+  if (mo.exclusive) t.set_meta("match_exclusive", "true");
 
   std::vector<char> used_a(A.table.rows(), 0), used_b(B.table.rows(), 0);
   for (const auto& q : r.pairs) used_a[q.a] = used_b[q.b] = 1;
@@ -734,7 +981,8 @@ int run_match(const std::vector<std::string>& args) {
   counts["unmatched_b"] = B.table.rows() - matched_b;
   js["counts"] = counts;
   if (mode == MatchMode::ErrorAware) {
-    js["sigma_scaled_mode"] = {{"completeness", p}, {"k", r.k_threshold}, {"systematic_arcsec", mo.systematic_arcsec}};
+    js["sigma_scaled_mode"] = {{"completeness", p}, {"k", r.k_threshold}, {"systematic_arcsec", mo.systematic_arcsec},
+                               {"exclusive", mo.exclusive}};
   }
   {
     // Offsets from the best pair of each A row (rank 1).

@@ -2,9 +2,11 @@
 // invented Lanternfish Field of the invented Skerrywind Deep Continuum Survey.
 //
 //   1. simulate   three bands (0.9, 1.4, 3.0 GHz) and their truth   -> DIR/images/
-//   2. reference  an invented reference catalogue of the field       -> DIR/images/
+//   2. reference  an invented reference catalogue of the field, and a
+//                 dense optical counterpart catalogue (simulate)     -> DIR/images/
 //   3. extract    the 1.4 GHz image with its primary beam            -> DIR/run/
-//   4. match      the components against the reference catalogue     -> DIR/run/
+//   4. match      the components against the reference catalogue,
+//                 and their counterparts by likelihood ratio         -> DIR/run/
 //   5. bands      forced flux densities, spectral indices, alpha map -> DIR/run/
 //   6. completeness  injection and negated-image reliability         -> DIR/run/
 //   7. report     one HTML page of the run                           -> DIR/run/
@@ -142,7 +144,8 @@ int run_demo(const std::vector<std::string>& args) {
                "(invented; simulated data)\n";
   run_step("simulate", {"--out", images.string(), "--seed", seed, "--threads", threads,
                         "--field.size_pix", std::to_string(p.vm["demo.size_pix"].as<long>()),
-                        "--sources.count", std::to_string(p.vm["demo.sources"].as<long>())});
+                        "--sources.count", std::to_string(p.vm["demo.sources"].as<long>()),
+                        "--counterparts.density_deg2", "1e5"});
 
   const fs::path ref_path = images / "lanternfish_reference.csv";
   std::cout << "\n(demo) writing an invented reference catalogue of the field: " << ref_path.string() << "\n";
@@ -157,6 +160,12 @@ int run_demo(const std::vector<std::string>& args) {
                      run.string(), "--threads", threads, "--match.mode", "one_to_one",
                      "--match.freq_a_mhz", "1400", "--match.freq_b_mhz", "1000", "--match.flux_b", "s_1000mhz_jy",
                      "--match.flux_err_b", "s_1000mhz_err_jy"});
+  // Counterparts of the components in the simulated optical catalogue (about
+  // 10^5 objects per deg^2, 75 % of the radio sources with a counterpart).
+  run_step("match", {(run / "lanternfish_1400MHz.components.csv").string(),
+                     (images / "lanternfish.counterparts.csv").string(), "--out", run.string(), "--threads", threads,
+                     "--match.mode", "likelihood_ratio", "--match.radius_arcsec", "5", "--match.lr_mag_b", "mag",
+                     "--match.name", "lanternfish_1400MHz_counterparts", "--match.chance_shifts", "0"});
   // The spectra are measured for the 1.4 GHz catalogue's components (forced in every band).
   run_step("bands", {(images / "lanternfish_900MHz.fits").string(), img,
                      (images / "lanternfish_3000MHz.fits").string(), "--out", run.string(), "--threads",

@@ -136,7 +136,16 @@ po::options_description simulate_options() {
     ("spectra.alpha_sigma", po::value<double>()->default_value(0.25), "spread of spectral indices (normal)")
     ("spectra.curved_fraction", po::value<double>()->default_value(0.2), "fraction of sources with a curved (log-parabola) spectrum")
     ("spectra.curvature_mean", po::value<double>()->default_value(-0.2), "mean base-10 curvature: log10 S = log10 S_ref + alpha t + curvature t^2, t = log10(nu/nu_ref)")
-    ("spectra.curvature_sigma", po::value<double>()->default_value(0.1), "spread of the curvature (normal)");
+    ("spectra.curvature_sigma", po::value<double>()->default_value(0.1), "spread of the curvature (normal)")
+    ("counterparts.density_deg2", po::value<double>()->default_value(0.0), "also write NAME.counterparts.csv, a dense optical catalogue of the field with this many background objects per deg^2 (0 = none)")
+    ("counterparts.fraction", po::value<double>()->default_value(0.75), "fraction of the radio sources with a counterpart in that catalogue (a close double's companion never has one)")
+    ("counterparts.mag_min", po::value<double>()->default_value(16.0), "brightest magnitude of the catalogue")
+    ("counterparts.mag_max", po::value<double>()->default_value(25.0), "faintest magnitude (the catalogue's limit)")
+    ("counterparts.count_slope", po::value<double>()->default_value(0.35), "background counts dN/dm ~ 10^(count_slope m)")
+    ("counterparts.mag_mean", po::value<double>()->default_value(20.5), "mean magnitude of the true counterparts (normal, truncated to the range)")
+    ("counterparts.mag_sigma", po::value<double>()->default_value(1.2), "spread of the counterparts' magnitudes [mag]")
+    ("counterparts.err_min_arcsec", po::value<double>()->default_value(0.1), "smallest per-coordinate position error of the catalogue [arcsec] (uniform up to err_max)")
+    ("counterparts.err_max_arcsec", po::value<double>()->default_value(0.3), "largest per-coordinate position error [arcsec]");
   // clang-format on
   return d;
 }
@@ -269,6 +278,49 @@ int run_simulate(const std::vector<std::string>& args) {
     throw UsageError(std::string("sources: ") + e.what());
   }
 
+  const double cp_density = get<double>(p, "counterparts.density_deg2");
+  require(cp_density >= 0.0 && std::isfinite(cp_density), "counterparts.density_deg2", fmt(cp_density), "density >= 0");
+  // Drawn before any file is written, so that a bad counterparts.* option
+  // leaves nothing behind; written after the images.
+  std::size_t n_counterpart_rows = 0;
+  Table cp_table;
+  bool write_counterparts = false;
+  if (cp_density > 0.0) {
+    sim::CounterpartOptions co;
+    co.density_deg2 = cp_density;
+    co.fraction = get<double>(p, "counterparts.fraction");
+    co.mag_min = get<double>(p, "counterparts.mag_min");
+    co.mag_max = get<double>(p, "counterparts.mag_max");
+    co.count_slope = get<double>(p, "counterparts.count_slope");
+    co.mag_mean = get<double>(p, "counterparts.mag_mean");
+    co.mag_sigma = get<double>(p, "counterparts.mag_sigma");
+    co.err_min_arcsec = get<double>(p, "counterparts.err_min_arcsec");
+    co.err_max_arcsec = get<double>(p, "counterparts.err_max_arcsec");
+    // Radio systems (a companion of a close double has no counterpart of its own).
+    std::vector<double> rra, rdec;
+    std::vector<std::int64_t> ids;
+    for (const auto& src : model.sources) {
+      if (src.flags & sim::kSimDoubleSecondary) continue;
+      rra.push_back(src.ra_deg);
+      rdec.push_back(src.dec_deg);
+      ids.push_back(src.id);
+    }
+    // The catalogue covers the reference image plus 2 arcmin on every side, so
+    // that background estimates near the image edge see the same density.
+    const double half = 0.5 * size * pix_ref * kArcsecToDeg + 120.0 * kArcsecToDeg;
+    sim::CounterpartCatalogue cc;
+    try {
+      cc = sim::draw_counterparts(rra, rdec, ra0, dec0, half, co, seed);
+    } catch (const std::invalid_argument& e) {
+      throw UsageError(std::string("counterparts: ") + e.what());
+    }
+    cp_table = sim::counterpart_table(cc, ids);
+    cp_table.set_meta("seed", std::to_string(seed));
+    cp_table.set_meta("field",
+                               "Lanternfish Field, Skerrywind Deep Continuum Survey (simulated optical counterparts)");
+    n_counterpart_rows = cp_table.rows();
+    write_counterparts = true;
+  }
   const std::string dir = out + "/";
   const std::vector<std::pair<std::string, std::string>> common_cards = {
       {"OBJECT", fits_string("Lanternfish Field")},
@@ -332,6 +384,7 @@ int run_simulate(const std::vector<std::string>& args) {
     bt.set_meta("field", "Lanternfish Field, Skerrywind Deep Continuum Survey (simulated)");
     write_table(bt, stem + ".truth." + truth_ext);
   }
+  if (write_counterparts) write_table(cp_table, dir + name + ".counterparts." + truth_ext);
   Table st = sim::sky_truth_table(model);
   st.set_meta("seed", std::to_string(seed));
   st.set_meta("field", "Lanternfish Field, Skerrywind Deep Continuum Survey (simulated)");
@@ -341,7 +394,9 @@ int run_simulate(const std::vector<std::string>& args) {
 
   std::cout << "simulate: " << model.sources.size() << " sources, " << nb << " band"
             << (nb == 1 ? "" : "s") << " (" << total_pixels / 1000000.0 << " Mpixel) written to "
-            << out << "\n";
+            << out;
+  if (n_counterpart_rows) std::cout << " (and " << n_counterpart_rows << " counterpart-catalogue rows)";
+  std::cout << "\n";
   return kExitOk;
 }
 

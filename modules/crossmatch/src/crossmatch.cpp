@@ -21,6 +21,7 @@
 #include <numeric>
 #include <stdexcept>
 
+#include "skerry/likelihood_ratio.h"
 #include "skerry/sky.h"
 
 namespace skerry {
@@ -312,7 +313,7 @@ MatchResult match_catalogues(const SkyPositions& a, const SkyPositions& b, const
 
   // Per-row candidate lists are needed for All and OneToOne; Nearest and
   // ErrorAware keep one pair per row.
-  const bool one_per_row = opt.mode == MatchMode::Nearest || err_mode;
+  const bool one_per_row = opt.mode == MatchMode::Nearest || (err_mode && !opt.exclusive);
   std::vector<MatchPair> best;
   if (one_per_row) best.assign(na, MatchPair{});
   std::vector<std::vector<MatchPair>> block_pairs(one_per_row ? 0 : n_blocks(a));
@@ -386,11 +387,13 @@ MatchResult match_catalogues(const SkyPositions& a, const SkyPositions& b, const
   });
   if (opt.mode == MatchMode::All) return res;
 
-  // One-to-one: global order (separation, A, B), greedy acceptance.
+  // One-to-one: global order (separation, A, B), greedy acceptance; ErrorAware
+  // exclusive: global order (d, separation, A, B).
   std::vector<std::size_t> order(res.pairs.size());
   std::iota(order.begin(), order.end(), std::size_t{0});
   const auto& pr = res.pairs;
   tbb::parallel_sort(order.begin(), order.end(), [&](std::size_t x, std::size_t y) {
+    if (err_mode && pr[x].norm_sep != pr[y].norm_sep) return pr[x].norm_sep < pr[y].norm_sep;
     if (pr[x].sep_arcsec != pr[y].sep_arcsec) return pr[x].sep_arcsec < pr[y].sep_arcsec;
     if (pr[x].a != pr[y].a) return pr[x].a < pr[y].a;
     return pr[x].b < pr[y].b;
@@ -666,6 +669,285 @@ FluxRatioSummary flux_ratio_summary(const std::vector<double>& flux_a, const std
   s.median_ratio = median_of(r);
   s.robust_scatter = robust_sigma(r, s.median_ratio);
   return s;
+}
+
+// ---- likelihood-ratio counterparts (skerry/likelihood_ratio.h) ----------------------------
+
+namespace {
+
+/// Combined covariance S = S_A + S_B + sys^2 I [arcsec^2] (B without errors: 0).
+Eigen::Matrix2d combined_cov(const SkyPositions& a, std::size_t i, const SkyPositions& b, std::size_t j, double sys2) {
+  Eigen::Matrix2d s = error_cov(a, i) + sys2 * Eigen::Matrix2d::Identity();
+  if (!b.err_east_arcsec.empty()) s += error_cov(b, j);
+  return s;
+}
+
+}  // namespace
+
+LikelihoodRatioResult likelihood_ratio_match(const SkyPositions& a, const SkyPositions& b,
+                                             const std::vector<double>& b_mag, const LikelihoodRatioOptions& opt) {
+  if (!(opt.radius_arcsec > 0.0) || !std::isfinite(opt.radius_arcsec))
+    throw std::invalid_argument("match radius must be a positive number of arcsec");
+  if (!(opt.systematic_arcsec >= 0.0) || !std::isfinite(opt.systematic_arcsec))
+    throw std::invalid_argument("systematic error must be >= 0");
+  if (!(opt.mag_bin > 0.0) || !std::isfinite(opt.mag_bin)) throw std::invalid_argument("magnitude bin must be > 0");
+  if (opt.background_shifts < 1 || opt.background_shifts > 1000)
+    throw std::invalid_argument("background shifts must lie in 1..1000");
+  if (opt.q0_radii < 2 || opt.q0_radii > 1000) throw std::invalid_argument("Q0 radii must lie in 2..1000");
+  if (!std::isnan(opt.q0) && !(opt.q0 > 0.0 && opt.q0 <= 1.0)) throw std::invalid_argument("Q0 must lie in (0, 1]");
+  if (a.dec_deg.size() != a.ra_deg.size() || b.dec_deg.size() != b.ra_deg.size())
+    throw std::invalid_argument("RA and Dec vectors differ in length");
+  check_errors(a, "A");
+  if (!b.err_east_arcsec.empty() || !b.err_north_arcsec.empty()) check_errors(b, "B");
+  if (b_mag.size() != b.size()) throw std::invalid_argument("magnitude column length differs from catalogue B");
+
+  LikelihoodRatioResult res;
+  const double radius = opt.radius_arcsec, sys2 = opt.systematic_arcsec * opt.systematic_arcsec;
+  const std::size_t na = a.size(), nb = b.size();
+
+  // B rows usable as candidates: valid position and finite magnitude.
+  SkyPositions bc;
+  bc.ra_deg = b.ra_deg;
+  bc.dec_deg = b.dec_deg;
+  double mag_lo = std::numeric_limits<double>::infinity(), mag_hi = -mag_lo;
+  for (std::size_t j = 0; j < nb; ++j) {
+    if (!valid_position(b.ra_deg[j], b.dec_deg[j])) {
+      ++res.b_invalid;
+      continue;
+    }
+    if (!std::isfinite(b_mag[j])) {
+      ++res.b_no_mag;
+      bc.ra_deg[j] = bc.dec_deg[j] = std::nan("");
+      continue;
+    }
+    mag_lo = std::min(mag_lo, b_mag[j]);
+    mag_hi = std::max(mag_hi, b_mag[j]);
+  }
+  // Median per-coordinate error of B, sqrt(median((e_E^2 + e_N^2) / 2)), for F(r).
+  if (!b.err_east_arcsec.empty()) {
+    std::vector<double> v;
+    v.reserve(nb);
+    for (std::size_t j = 0; j < nb; ++j)
+      if (std::isfinite(bc.ra_deg[j])) {
+        const double e2 = 0.5 * (b.err_east_arcsec[j] * b.err_east_arcsec[j] + b.err_north_arcsec[j] * b.err_north_arcsec[j]);
+        if (std::isfinite(e2)) v.push_back(e2);
+      }
+    if (!v.empty()) {
+      const std::size_t h = v.size() / 2;
+      std::nth_element(v.begin(), v.begin() + static_cast<std::ptrdiff_t>(h), v.end());
+      res.b_median_error_arcsec = std::sqrt(v[h]);
+    }
+  }
+  // Magnitude bins of width mag_bin from floor(min / bin) * bin.
+  std::size_t nbins = 1;
+  double edge0 = 0.0;
+  if (std::isfinite(mag_lo)) {
+    edge0 = std::floor(mag_lo / opt.mag_bin) * opt.mag_bin;
+    const double nbf = std::floor((mag_hi - edge0) / opt.mag_bin) + 1.0;
+    if (nbf > 100000) throw std::invalid_argument("magnitude bin too small for the magnitude range (more than 10^5 bins)");
+    nbins = static_cast<std::size_t>(nbf);
+  }
+  auto bin_of = [&](double m) {
+    const double x = std::floor((m - edge0) / opt.mag_bin);
+    return static_cast<std::size_t>(std::clamp(x, 0.0, static_cast<double>(nbins - 1)));
+  };
+
+  // A rows usable: valid position and a positive-definite S_A + sys^2 I.
+  SkyPositions au;
+  au.ra_deg.assign(na, std::nan(""));
+  au.dec_deg.assign(na, std::nan(""));
+  std::vector<double> sigma2(na, 0.0);  // circularised combined variance per coordinate [arcsec^2]
+  for (std::size_t i = 0; i < na; ++i) {
+    if (!valid_position(a.ra_deg[i], a.dec_deg[i])) {
+      ++res.a_invalid;
+      continue;
+    }
+    const Eigen::Matrix2d s = error_cov(a, i) + sys2 * Eigen::Matrix2d::Identity();
+    const double det = s(0, 0) * s(1, 1) - s(0, 1) * s(1, 0);
+    if (!(det > 0.0) || !std::isfinite(det) || !std::isfinite(s.trace())) {
+      ++res.a_no_error;
+      continue;
+    }
+    au.ra_deg[i] = a.ra_deg[i];
+    au.dec_deg[i] = a.dec_deg[i];
+    sigma2[i] = 0.5 * s.trace() + res.b_median_error_arcsec * res.b_median_error_arcsec;
+    ++res.n_a_used;
+  }
+
+  SkyIndex idx(bc, chord_bound(radius));
+  const double inf = std::numeric_limits<double>::infinity();
+
+  // 1. Candidates around the A positions (per block, rows in cell-key order).
+  std::vector<double> nearest_a(na, inf);
+  std::vector<std::vector<LrCandidate>> block_cands(n_blocks(au));
+  for_each_row(au, idx, radius, [&](std::size_t blk, std::size_t i, std::vector<Cand>& cands) {
+    const double ra = au.ra_deg[i], dec = au.dec_deg[i];
+    auto& out = block_cands[blk];
+    for (const auto& c : cands) {
+      const auto j = static_cast<std::size_t>(c.b);
+      const double sep = separation_deg(ra, dec, b.ra_deg[j], b.dec_deg[j]) * 3600.0;
+      if (!(sep <= radius)) continue;
+      nearest_a[i] = std::min(nearest_a[i], sep);
+      // D in the tangent plane at A (east, north) [arcsec]; d^2 = D^T S^-1 D;
+      // f(r) = exp(-d^2/2) / (2 pi sqrt(det S)), the bivariate normal density
+      // of the offset (REF-LR-01).
+      double xi = 0, eta = 0;
+      gnomonic_offset(ra, dec, b.ra_deg[j], b.dec_deg[j], xi, eta);
+      const Eigen::Vector2d d(xi * kArcsecPerRad, eta * kArcsecPerRad);
+      const Eigen::Matrix2d s2 = combined_cov(a, i, b, j, sys2);
+      const double det = s2(0, 0) * s2(1, 1) - s2(0, 1) * s2(1, 0);
+      if (!(det > 0.0) || !std::isfinite(det)) continue;
+      Eigen::Matrix2d inv;
+      inv << s2(1, 1), -s2(0, 1), -s2(1, 0), s2(0, 0);
+      inv /= det;
+      const double dd2 = std::max(0.0, d.dot(inv * d));
+      LrCandidate lc;
+      lc.a = static_cast<std::int64_t>(i);
+      lc.b = c.b;
+      lc.sep_arcsec = sep;
+      lc.pa_deg = position_angle_deg(ra, dec, b.ra_deg[j], b.dec_deg[j]);
+      lc.norm_sep = std::sqrt(dd2);
+      lc.mag = b_mag[j];
+      lc.f_r = std::exp(-0.5 * dd2) / (2.0 * kPi * std::sqrt(det));
+      out.push_back(lc);
+    }
+  });
+  std::vector<LrCandidate> cands;
+  {
+    std::size_t total = 0;
+    for (const auto& v : block_cands) total += v.size();
+    cands.reserve(total);
+    for (auto& v : block_cands) {
+      cands.insert(cands.end(), v.begin(), v.end());
+      std::vector<LrCandidate>().swap(v);
+    }
+  }
+
+  // 2. Background positions: A shifted by (4 + s mod 4) radii at PA 360 s / S.
+  const auto ns = static_cast<std::size_t>(opt.background_shifts);
+  std::vector<std::int64_t> bg_hist(nbins, 0);
+  std::vector<double> nearest_bg;
+  nearest_bg.reserve(res.n_a_used * ns);
+  for (std::size_t s = 0; s < ns; ++s) {
+    SkyPositions sh;
+    sh.ra_deg.assign(na, std::nan(""));
+    sh.dec_deg.assign(na, std::nan(""));
+    const double pa = 360.0 * static_cast<double>(s) / static_cast<double>(ns);
+    const double dist = (4.0 + static_cast<double>(s % 4)) * radius / 3600.0;
+    tbb::parallel_for(std::size_t{0}, na, [&](std::size_t i) {
+      if (std::isfinite(au.ra_deg[i])) offset_position(au.ra_deg[i], au.dec_deg[i], pa, dist, sh.ra_deg[i], sh.dec_deg[i]);
+    });
+    std::vector<double> nearest(na, inf);
+    std::vector<std::vector<std::int64_t>> hist(n_blocks(sh), std::vector<std::int64_t>());
+    for_each_row(sh, idx, radius, [&](std::size_t blk, std::size_t i, std::vector<Cand>& cs) {
+      auto& h = hist[blk];
+      if (h.empty()) h.assign(nbins, 0);
+      for (const auto& c : cs) {
+        const auto j = static_cast<std::size_t>(c.b);
+        const double sep = separation_deg(sh.ra_deg[i], sh.dec_deg[i], b.ra_deg[j], b.dec_deg[j]) * 3600.0;
+        if (!(sep <= radius)) continue;
+        nearest[i] = std::min(nearest[i], sep);
+        ++h[bin_of(b_mag[j])];
+      }
+    });
+    for (const auto& h : hist)
+      for (std::size_t k = 0; k < h.size(); ++k) bg_hist[k] += h[k];
+    for (std::size_t i = 0; i < na; ++i)
+      if (std::isfinite(sh.ra_deg[i])) nearest_bg.push_back(nearest[i]);
+  }
+  res.n_background = nearest_bg.size();
+
+  // 3. Q0 from the blanks: U_A(r) / U_bg(r) = 1 - Q0 F(r) (REF-LR-03).
+  const auto nr = static_cast<std::size_t>(opt.q0_radii);
+  {
+    std::vector<double> na_sorted, nbg_sorted = nearest_bg;
+    for (std::size_t i = 0; i < na; ++i)
+      if (std::isfinite(au.ra_deg[i])) na_sorted.push_back(nearest_a[i]);
+    std::sort(na_sorted.begin(), na_sorted.end());
+    std::sort(nbg_sorted.begin(), nbg_sorted.end());
+    auto blank_fraction = [](const std::vector<double>& v, double r) {
+      // fraction of positions with no candidate within r (nearest > r)
+      const auto it = std::upper_bound(v.begin(), v.end(), r);
+      return v.empty() ? 0.0 : static_cast<double>(v.end() - it) / static_cast<double>(v.size());
+    };
+    double sfy = 0, sff = 0;
+    for (std::size_t j = 1; j <= nr; ++j) {
+      const double r = radius * static_cast<double>(j) / static_cast<double>(nr);
+      double fsum = 0;  // in row order: independent of threads
+      for (std::size_t i = 0; i < na; ++i)
+        if (std::isfinite(au.ra_deg[i])) fsum += -std::expm1(-r * r / (2.0 * sigma2[i]));
+      const double f = res.n_a_used ? fsum / static_cast<double>(res.n_a_used) : 0.0;
+      const double ua = blank_fraction(na_sorted, r), ub = blank_fraction(nbg_sorted, r);
+      res.q0_radius_arcsec.push_back(r);
+      res.q0_blank_a.push_back(ua);
+      res.q0_blank_background.push_back(ub);
+      res.q0_model_f.push_back(f);
+      if (ub > 0.0) {
+        sfy += (1.0 - ua / ub) * f;
+        sff += f * f;
+      }
+    }
+    const double q0_fit = sff > 0.0 ? std::clamp(sfy / sff, 0.0, 1.0) : 0.0;
+    double ss = 0;
+    std::size_t nfit = 0;
+    for (std::size_t j = 0; j < nr; ++j)
+      if (res.q0_blank_background[j] > 0.0) {
+        const double e = 1.0 - res.q0_blank_a[j] / res.q0_blank_background[j] - q0_fit * res.q0_model_f[j];
+        ss += e * e;
+        ++nfit;
+      }
+    res.q0_fit_rms = nfit ? std::sqrt(ss / static_cast<double>(nfit)) : 0.0;
+    res.q0_estimated = std::isnan(opt.q0);
+    res.q0 = res.q0_estimated ? q0_fit : opt.q0;
+  }
+
+  // 4. n(m), real(m), q(m) (REF-LR-02).
+  const double circle = kPi * radius * radius;  // [arcsec^2]
+  std::vector<std::int64_t> tot(nbins, 0);
+  for (const auto& c : cands) ++tot[bin_of(c.mag)];
+  res.bins.resize(nbins);
+  double real_sum = 0;
+  const double bg_area = static_cast<double>(res.n_background) * circle;
+  for (std::size_t k = 0; k < nbins; ++k) {
+    auto& bn = res.bins[k];
+    bn.mag_lo = edge0 + opt.mag_bin * static_cast<double>(k);
+    bn.mag_hi = bn.mag_lo + opt.mag_bin;
+    bn.total = tot[k];
+    bn.background = bg_hist[k];
+    bn.n_m = bg_area > 0 ? static_cast<double>(bg_hist[k]) / bg_area : 0.0;
+    bn.real = std::max(0.0, static_cast<double>(tot[k]) - bn.n_m * static_cast<double>(res.n_a_used) * circle);
+    real_sum += bn.real;
+  }
+  for (auto& bn : res.bins) bn.q_m = real_sum > 0 ? res.q0 * bn.real / real_sum : 0.0;
+  const double n_floor = bg_area > 0 ? 1.0 / bg_area : 1.0;  // one object: an upper limit
+
+  // 5. LR and reliability per A row; ranks by (LR desc, separation, B index).
+  tbb::parallel_for(std::size_t{0}, cands.size(), [&](std::size_t q) {
+    auto& c = cands[q];
+    const auto& bn = res.bins[bin_of(c.mag)];
+    c.lr = bn.q_m * c.f_r / std::max(bn.n_m, n_floor);  // LR = q(m) f(r) / n(m) (REF-LR-01)
+  });
+  tbb::parallel_sort(cands.begin(), cands.end(), [](const LrCandidate& x, const LrCandidate& y) {
+    if (x.a != y.a) return x.a < y.a;
+    if (x.lr != y.lr) return x.lr > y.lr;
+    if (x.sep_arcsec != y.sep_arcsec) return x.sep_arcsec < y.sep_arcsec;
+    return x.b < y.b;
+  });
+  for (std::size_t q = 0; q < cands.size();) {
+    std::size_t e = q;
+    double sum = 0;
+    while (e < cands.size() && cands[e].a == cands[q].a) sum += cands[e++].lr;
+    // R_j = LR_j / (sum_i LR_i + 1 - Q0) (REF-LR-01)
+    const double denom = sum + (1.0 - res.q0);
+    for (std::size_t t = q; t < e; ++t) {
+      cands[t].reliability = denom > 0 ? cands[t].lr / denom : 0.0;
+      cands[t].rank = static_cast<std::int32_t>(t - q + 1);
+      cands[t].n_candidates = static_cast<std::int32_t>(e - q);
+    }
+    q = e;
+  }
+  res.candidates.swap(cands);
+  return res;
 }
 
 }  // namespace skerry

@@ -30,6 +30,9 @@ enum Purpose : std::uint64_t {
   kPurposeAttributes = 2,
   kPurposeNoise = 3,
   kPurposeBackground = 4,
+  kPurposeCounterpart = 5,
+  kPurposeOpticalBackground = 6,
+  kPurposeRadioField = 7,
 };
 
 class Stream {

@@ -2,7 +2,8 @@
 // SkyCoord.match_to_catalog_sky (Debian's python3-astropy), the same result
 // from CSV, FITS and VOTable inputs, sexagesimal and Galactic positions (ERFA
 // eraIcrs2g/eraG2icrs, IAU SOFA), bad input with clear errors, and identical
-// outputs for 1 and 2 threads.
+// outputs for 1 and 2 threads; the likelihood_ratio mode and the exclusive
+// sigma_scaled mode through the command line.
 #include <erfa.h>
 #include <erfam.h>
 #include <gtest/gtest.h>
@@ -14,9 +15,13 @@
 #include <filesystem>
 #include <fstream>
 #include <random>
+#include <numeric>
+#include <set>
 #include <sstream>
 
 #include "io/table_io.h"
+#include "skerry/likelihood_ratio.h"
+#include "skerry/simulate.h"
 #include "skerry/table.h"
 #include "skerry/table_text.h"
 #include "skerry_test_support.h"
@@ -278,5 +283,85 @@ TEST(MatchCli, SelfAndMultiModes) {
     EXPECT_EQ(mm.at("n_catalogues").i64[i], 2);
     EXPECT_NEAR(mm.at("chi2_const").f64[i], 0.0, 1e-20);  // identical epochs: constant flux density
   }
+  fs::remove_all(d);
+}
+
+TEST(MatchCli, LikelihoodRatioAndExclusiveModes) {
+  // A simulated radio-optical field through the command line: the candidates
+  // file holds exactly the module's result (checked against the truth in
+  // counterparts_test.cpp), the magnitude can come from a flux column, the
+  // outputs do not depend on the thread count, and bad input gives clear errors.
+  fs::path d = temp_dir("lr");
+  sim::CounterpartOptions co;
+  co.density_deg2 = 1e5;
+  sim::RadioOpticalField f = sim::draw_radio_optical_field(600, 201.25, -38.6, 0.4, 0.05, 0.3, 1.2, co, 77);
+  Table ra;
+  ra.add_f64("ra_deg", "deg", "pos.eq.ra;meta.main", "RA", f.radio_ra_deg);
+  ra.add_f64("dec_deg", "deg", "pos.eq.dec;meta.main", "Dec", f.radio_dec_deg);
+  ra.add_f64("ra_err_arcsec", "arcsec", "stat.error;pos.eq.ra", "error", f.radio_err_arcsec);
+  ra.add_f64("dec_err_arcsec", "arcsec", "stat.error;pos.eq.dec", "error", f.radio_err_arcsec);
+  write_table(ra, (d / "radio.csv").string());
+  std::vector<std::int64_t> ids(600);
+  std::iota(ids.begin(), ids.end(), std::int64_t{0});
+  Table op = sim::counterpart_table(f.optical, ids);
+  std::vector<double> flux;
+  for (double m : f.optical.mag) flux.push_back(std::pow(10.0, -0.4 * m));
+  op.add_f64("flux_rel", "", "phot.flux", "10^(-0.4 mag)", flux);
+  write_table(op, (d / "optical.csv").string());
+  const std::string base = kBin + " match " + (d / "radio.csv").string() + " " + (d / "optical.csv").string() +
+                           " --out " + (d / "o").string() + " --match.chance_shifts 0 --match.mode likelihood_ratio";
+  std::string out;
+  ASSERT_EQ(run(base + " --threads 1 --match.name t1", &out), 0) << out;
+  ASSERT_EQ(run(base + " --threads 2 --match.name t2", &out), 0) << out;
+  EXPECT_NE(out.find("Q0 = "), std::string::npos) << out;
+  for (const char* s : {".lr_candidates.csv", ".lr_magnitude_bins.csv", ".lr_q0_fit.csv"})
+    EXPECT_EQ(slurp(d / "o" / (std::string("t1") + s)), slurp(d / "o" / (std::string("t2") + s))) << s;
+  SkyPositions a, b;
+  a.ra_deg = f.radio_ra_deg;
+  a.dec_deg = f.radio_dec_deg;
+  a.err_east_arcsec = a.err_north_arcsec = f.radio_err_arcsec;
+  b.ra_deg = f.optical.ra_deg;
+  b.dec_deg = f.optical.dec_deg;
+  b.err_east_arcsec = b.err_north_arcsec = f.optical.err_arcsec;
+  LikelihoodRatioResult r = likelihood_ratio_match(a, b, f.optical.mag, LikelihoodRatioOptions{});
+  Table t = read_table((d / "o" / "t1.lr_candidates.csv").string());
+  ASSERT_EQ(t.rows(), r.candidates.size());
+  for (std::size_t q = 0; q < t.rows(); ++q) {
+    EXPECT_EQ(t.at("row_a").i64[q], r.candidates[q].a);
+    EXPECT_EQ(t.at("row_b").i64[q], r.candidates[q].b);
+    EXPECT_NEAR(t.at("reliability").f64[q], r.candidates[q].reliability, 1e-12);
+    EXPECT_EQ(t.at("best").i64[q], r.candidates[q].rank == 1 ? 1 : 0);
+  }
+  const std::string summary = slurp(d / "o" / "t1.match_summary.json");
+  EXPECT_NE(summary.find("\"q0\""), std::string::npos);
+  EXPECT_NE(summary.find("n_m_per_deg2_per_mag"), std::string::npos);
+  // Flux column instead of a magnitude: -2.5 log10(10^(-0.4 m)) = m, the same candidates.
+  ASSERT_EQ(run(base + " --match.lr_flux_b flux_rel --match.name fl", &out), 0) << out;
+  Table tf = read_table((d / "o" / "fl.lr_candidates.csv").string());
+  ASSERT_EQ(tf.rows(), t.rows());
+  for (std::size_t q = 0; q < t.rows(); ++q) EXPECT_EQ(tf.at("row_b").i64[q], t.at("row_b").i64[q]);
+  // Bad input.
+  std::ofstream(d / "nomag.csv") << "ra_deg,dec_deg\n201.25,-38.6\n";
+  EXPECT_EQ(run(kBin + " match " + (d / "radio.csv").string() + " " + (d / "nomag.csv").string() + " --out " +
+                    (d / "o").string() + " --match.mode likelihood_ratio",
+                &out),
+            3);
+  EXPECT_NE(out.find("nomag.csv: no magnitude column"), std::string::npos) << out;
+  EXPECT_EQ(run(base + " --match.lr_q0 1.5", &out), 2);
+  EXPECT_NE(out.find("match.lr_q0"), std::string::npos) << out;
+  EXPECT_EQ(run(base + " --match.lr_mag_b mag --match.lr_flux_b flux_rel", &out), 2);
+  // Exclusive sigma_scaled: no row of B twice; refused with other modes.
+  const std::string ex = kBin + " match " + (d / "radio.csv").string() + " " + (d / "optical.csv").string() +
+                         " --out " + (d / "o").string() + " --match.chance_shifts 0 --match.mode sigma_scaled";
+  ASSERT_EQ(run(ex + " --match.exclusive true --match.name ex", &out), 0) << out;
+  Table te = read_table((d / "o" / "ex.matches.csv").string());
+  std::set<std::int64_t> used;
+  for (auto v : te.at("row_b").i64) EXPECT_TRUE(used.insert(v).second);
+  EXPECT_GT(te.rows(), 300u);
+  EXPECT_EQ(run(kBin + " match " + (d / "radio.csv").string() + " " + (d / "optical.csv").string() + " --out " +
+                    (d / "o").string() + " --match.exclusive true",
+                &out),
+            2);
+  EXPECT_NE(out.find("match.exclusive"), std::string::npos) << out;
   fs::remove_all(d);
 }

@@ -132,4 +132,39 @@ TEST(SimulateCli, BadOptionsAreUsageErrorsNamingTheOptionAndWriteNothing) {
   fs::remove_all(d);
 }
 
+TEST(SimulateCli, CounterpartCatalogueIsDeterministicAndBadOptionsWriteNothing) {
+  // counterparts.density_deg2 adds NAME.counterparts.csv: the background count
+  // is density x area of the image plus 2 arcmin on every side (equal-area
+  // box), the same bytes for 1 and 2 threads; a bad counterparts.* option is a
+  // usage error before any file is written.
+  const std::string args = "--field.size_pix 256 --bands.freq_mhz 1400 --bands.crpix_shift_pix 0 "
+                           "--noise.rms_jy_per_beam 2e-5 --sources.count 40 --counterparts.density_deg2 1e5";
+  const fs::path a = fresh_dir("cp1"), b = fresh_dir("cp2"), bad = fresh_dir("cpbad");
+  ASSERT_EQ(run(args + " --threads 1", a).code, 0);
+  ASSERT_EQ(run(args + " --threads 2", b).code, 0);
+  const std::string ca = slurp(a / "lanternfish.counterparts.csv");
+  EXPECT_EQ(ca, slurp(b / "lanternfish.counterparts.csv"));
+  std::size_t rows = 0, background = 0;
+  std::istringstream in(ca);
+  std::string line;
+  std::getline(in, line);
+  EXPECT_NE(line.find("true_source_id"), std::string::npos) << line;
+  while (std::getline(in, line)) {
+    if (line.empty() || line[0] == '#') continue;
+    ++rows;
+    background += line.size() >= 3 && line.compare(line.size() - 3, 3, ",-1") == 0;
+  }
+  // Box half-size 0.5 x 256 x 1.5" + 120" = 312" = 0.08667 deg: area (2 x 0.08667)^2 = 0.030044 deg^2
+  // (the equal-area box differs from the flat square by < 1e-4): 3004 objects.
+  EXPECT_NEAR(static_cast<double>(background), 3004.4, 2.0);
+  EXPECT_GT(rows - background, 15u);  // about 75 % of 40 sources
+  CmdResult r = run(args + " --counterparts.fraction 1.5", bad);
+  EXPECT_EQ(r.code, 2);
+  EXPECT_NE(r.err.find("counterparts: fraction"), std::string::npos) << r.err;
+  EXPECT_FALSE(fs::exists(bad) && !fs::is_empty(bad));
+  fs::remove_all(a);
+  fs::remove_all(b);
+  fs::remove_all(bad);
+}
+
 }  // namespace

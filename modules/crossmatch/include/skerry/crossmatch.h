@@ -51,6 +51,13 @@ struct MatchOptions {
   double completeness = 0.997;
   /// ErrorAware: systematic astrometric error per coordinate added to S [arcsec].
   double systematic_arcsec = 0.0;
+  /// ErrorAware: exclusive (one-to-one) assignment. All pairs with d < k are
+  /// taken in the global order (d, separation, A index, B index) and a pair is
+  /// accepted when neither of its rows is used yet, so each row of A and of B
+  /// appears at most once (greedy assignment by increasing normalised
+  /// separation; common practice). n_candidates/rank still describe the full
+  /// candidate list of the A row.
+  bool exclusive = false;
 };
 
 /// One matched pair. `a`, `b` are 0-based row indices.
@@ -65,8 +72,9 @@ struct MatchPair {
 };
 
 struct MatchResult {
-  /// Sorted by (a, rank) — i.e. by (a, separation, b); OneToOne and Nearest give
-  /// at most one pair per row of A.
+  /// Sorted by (a, rank) — i.e. by (a, separation, b); OneToOne, Nearest and
+  /// ErrorAware give at most one pair per row of A (ErrorAware exclusive: and
+  /// per row of B).
   std::vector<MatchPair> pairs;
   std::size_t a_invalid = 0, b_invalid = 0;  ///< rows with no usable position
   double k_threshold = std::numeric_limits<double>::quiet_NaN();  ///< ErrorAware: k

@@ -292,4 +292,64 @@ Table band_truth_table(const std::vector<SkySource>& sky_sources,
                        const std::vector<BandSource>& band_sources, double freq_hz,
                        const Beam& beam);
 
+// ---- Counterpart catalogue (radio-optical field) --------------------------------------
+
+/// A dense "optical" catalogue around radio sources, for counterpart
+/// identification (likelihood-ratio method) tests and the demo.
+///   Background: density_deg2 objects per deg^2, uniform on the sphere in the
+///   box |Dec - Dec0| <= half_size_deg, |RA - RA0| cos Dec0 <= half_size_deg,
+///   magnitudes from dN/dm ~ 10^(count_slope m) on [mag_min, mag_max] (a power
+///   law in flux, as galaxy number counts are; count_slope ~ 0.3-0.4 at
+///   optical depths, common practice).
+///   Counterparts: a fraction `fraction` of the radio sources (chosen by each
+///   source's own stream) has one object at its true position displaced by
+///   that object's own error, with magnitude normal(mag_mean, mag_sigma)
+///   truncated to [mag_min, mag_max] (brighter on average than the background).
+///   Errors: per-coordinate 1-sigma uniform in [err_min_arcsec, err_max_arcsec],
+///   the same in RA cos Dec and Dec.
+/// Rows are sorted by (RA, Dec), so row order says nothing about the truth.
+/// Deterministic for a seed (per-object counter-based streams).
+struct CounterpartOptions {
+  double density_deg2 = 1e5;
+  double mag_min = 16.0, mag_max = 25.0;
+  double count_slope = 0.35;
+  double fraction = 0.75;
+  double mag_mean = 20.5, mag_sigma = 1.2;
+  double err_min_arcsec = 0.1, err_max_arcsec = 0.3;
+};
+
+struct CounterpartCatalogue {
+  std::vector<double> ra_deg, dec_deg;  ///< ICRS [deg]
+  std::vector<double> err_arcsec;       ///< 1-sigma per coordinate [arcsec]
+  std::vector<double> mag;              ///< magnitude [mag]
+  std::vector<std::int64_t> radio_index;  ///< index into the radio positions given; -1 = background
+};
+
+/// Throws std::invalid_argument naming a bad option.
+CounterpartCatalogue draw_counterparts(const std::vector<double>& radio_ra_deg, const std::vector<double>& radio_dec_deg,
+                                       double centre_ra_deg, double centre_dec_deg, double half_size_deg,
+                                       const CounterpartOptions& options, std::uint64_t seed);
+
+/// A whole radio-optical field without images: n_radio radio sources uniform in
+/// the box shrunk by `radio_margin_deg` on every side (so the optical background
+/// surrounds them), each measured with a circular Gaussian error of sigma
+/// uniform in [radio_err_min_arcsec, radio_err_max_arcsec] per coordinate, and
+/// their counterpart catalogue.
+struct RadioOpticalField {
+  std::vector<double> radio_ra_deg, radio_dec_deg;  ///< measured positions [deg]
+  std::vector<double> radio_err_arcsec;             ///< per-coordinate 1-sigma [arcsec]
+  std::vector<std::int64_t> true_counterpart;       ///< optical row, -1 = none
+  CounterpartCatalogue optical;
+};
+
+RadioOpticalField draw_radio_optical_field(std::size_t n_radio, double centre_ra_deg, double centre_dec_deg,
+                                           double half_size_deg, double radio_margin_deg,
+                                           double radio_err_min_arcsec, double radio_err_max_arcsec,
+                                           const CounterpartOptions& options, std::uint64_t seed);
+
+/// The counterpart catalogue as a table: ra_deg, dec_deg, ra_err_arcsec,
+/// dec_err_arcsec, mag, true_source_id (the given ids[radio_index], -1 for the
+/// background), with units, UCDs and descriptions.
+Table counterpart_table(const CounterpartCatalogue& cat, const std::vector<std::int64_t>& ids);
+
 }  // namespace skerry::sim
