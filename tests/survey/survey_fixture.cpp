@@ -2,6 +2,7 @@
 
 #include <fcntl.h>
 #include <signal.h>
+#include <sys/resource.h>
 #include <sys/wait.h>
 #include <unistd.h>
 
@@ -32,7 +33,8 @@ std::string tmp_root() {
   return root;
 }
 
-pid_t spawn(const std::vector<std::string>& args, const std::string& out, const std::string& err) {
+pid_t spawn(const std::vector<std::string>& args, const std::string& out, const std::string& err,
+            long long fsize_limit = -1) {
   std::vector<std::string> full{SKERRY_BINARY};
   full.insert(full.end(), args.begin(), args.end());
   std::vector<char*> argv;
@@ -41,6 +43,11 @@ pid_t spawn(const std::vector<std::string>& args, const std::string& out, const 
   const pid_t pid = ::fork();
   if (pid == 0) {
     int o = ::open(out.c_str(), O_WRONLY | O_CREAT | O_TRUNC, 0644);
+    if (fsize_limit >= 0) {
+      struct rlimit rl {};
+      rl.rlim_cur = rl.rlim_max = static_cast<rlim_t>(fsize_limit);
+      ::setrlimit(RLIMIT_FSIZE, &rl);  // the captured stdout and stderr stay far below it
+    }
     int e = ::open(err.c_str(), O_WRONLY | O_CREAT | O_TRUNC, 0644);
     ::dup2(o, 1);
     ::dup2(e, 2);
@@ -81,6 +88,17 @@ RunResult run_skerry(const std::vector<std::string>& args) {
   RunResult r;
   r.code = wait_skerry(pid);
   r.seconds = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
+  r.out = read_file(base + ".out");
+  r.err = read_file(base + ".err");
+  return r;
+}
+
+RunResult run_skerry_limited(const std::vector<std::string>& args, long long fsize_bytes) {
+  static int counter = 0;
+  const std::string base = tmp_root() + "/limited-" + std::to_string(counter++);
+  const pid_t pid = spawn(args, base + ".out", base + ".err", fsize_bytes);
+  RunResult r;
+  r.code = wait_skerry(pid);
   r.out = read_file(base + ".out");
   r.err = read_file(base + ".err");
   return r;
@@ -153,7 +171,7 @@ std::string make_survey(const std::string& dir, const std::string& extra) {
              "# Test survey of the invented Lanternfish Field (four overlapping tiles).\n"
              "[survey]\nname = lanternfish\ntiles = tiles/*.fits\noutput = out\n"
              "catalogue = lanternfish.components.csv\nworkers = 2\n"
-             "[output]\nformats = csv\nmaps = false\nmodel = false\nresidual = false\n" +
+             "[output]\nformats = csv\nmodel = false\nresidual = false\n" +
                  extra);
   return cfg;
 }
@@ -203,7 +221,7 @@ std::string make_multiband_survey(const std::string& dir, const std::string& ext
              "[survey]\nname = lanternfish\ntiles = tiles/*.fits\noutput = out\n"
              "catalogue = lanternfish.components.csv\nworkers = 2\n"
              "bands = _900MHz,_1400MHz,_3000MHz\ndetection_band = _1400MHz\n"
-             "[output]\nformats = csv\nmaps = false\nmodel = false\nresidual = false\n"
+             "[output]\nformats = csv\nmodel = false\nresidual = false\n"
              "[maps]\nenabled = false\n" +
                  extra);
   return cfg;
