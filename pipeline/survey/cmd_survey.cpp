@@ -621,10 +621,22 @@ int run_survey(const std::vector<std::string>& args) {
   if (cfg.engine == "local" && merge_needed()) {
     const auto mt = merge_list();
     ThreadLimit tl(cfg.workers);
-    if (merge_rows <= cfg.merge_in_memory_rows) {
-      merge_done(merge_tiles(cfg, mt), "local");
-    } else if (auto ms = merge_tiles_on_disk(cfg, mt, merge_failures)) {
-      merge_done(*ms, "local");
+    try {
+      if (merge_rows <= cfg.merge_in_memory_rows) {
+        merge_done(merge_tiles(cfg, mt), "local");
+      } else if (auto ms = merge_tiles_on_disk(cfg, mt, merge_failures)) {
+        merge_done(*ms, "local");
+      }
+    } catch (const OutputError& e) {
+      // Disk full (or a file-size limit) at the catalogue: the message also
+      // names the tiles that failed in this run (often for the same reason).
+      std::string failed;
+      for (const auto& [n, s] : db.tiles())
+        if (s.status == "failed" && discovered.count(n)) failed += (failed.empty() ? "" : ", ") + n;
+      log.write("run " + run_id + " end exit=4: " + e.what(), "\"event\":\"run_end\",\"run\":" + json_str(run_id) +
+                                                          ",\"exit_code\":4,\"message\":" + json_str(e.what()));
+      if (failed.empty()) throw;
+      throw ExitError(kExitOutput, std::string("error: ") + e.what() + "; tiles that failed in this run: " + failed);
     }
   }
   for (const auto& f : merge_failures)

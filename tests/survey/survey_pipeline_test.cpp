@@ -545,7 +545,10 @@ TEST(SurveyPipeline, SlurmEngineMatchesLocal) {
   merges = last_run_events(ds + "/out", "merge");
   ASSERT_EQ(merges.size(), 1u);
   EXPECT_EQ(json::parse(merges[0]).at("where"), "slurm");
-  EXPECT_EQ(json::parse(merges[0]).at("tiles"), 3);
+  // tile_11's last good rows stay in the merge, marked stale.
+  EXPECT_EQ(json::parse(merges[0]).at("tiles"), 4);
+  EXPECT_GT(json::parse(merges[0]).at("stale_rows").get<int>(), 0);
+  EXPECT_NE(r.err.find("tile_11 (failed)"), std::string::npos) << r.err;
   // Repaired: retried on the next run, and the catalogue is the local one again.
   write_file(tile, good);
   r = run_skerry({"survey", cfg, "--engine", "slurm"});
