@@ -9,14 +9,15 @@
 # what CI covers. Without those packages the Slurm tests are skipped (and say so).
 set -euo pipefail
 cd "$(dirname "$0")/.."
+root=$(pwd)
 scripts/deps.sh
 scripts/build.sh -DSKERRY_WERROR=ON
 if [ -z "${SLURM_CONF:-}" ] && command -v slurmctld >/dev/null 2>&1 && command -v slurmd >/dev/null 2>&1 &&
    command -v munged >/dev/null 2>&1; then
   export SKERRY_SLURM_DIR
   SKERRY_SLURM_DIR=$(mktemp -d "${TMPDIR:-/tmp}/skerry-slurm-test.XXXXXX")
-  trap 'tests/cluster/slurm-cluster.sh stop' EXIT
-  if slurm_env=$(tests/cluster/slurm-cluster.sh start); then
+  trap '"$root/tests/cluster/slurm-cluster.sh" stop' EXIT  # from build/ as well
+  if slurm_env=$("$root/tests/cluster/slurm-cluster.sh" start); then
     eval "$slurm_env"
   else
     echo "scripts/test.sh: the Slurm test cluster did not start; the Slurm tests will be skipped" >&2
