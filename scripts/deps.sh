@@ -6,7 +6,7 @@ pkgs=(build-essential cmake ninja-build pkg-config git
       libcfitsio-dev wcslib-dev liberfa-dev libeigen3-dev libtbb-dev
       libboost-program-options-dev libgtest-dev libpng-dev libsqlite3-dev
       libfftw3-dev libhealpix-cxx-dev nlohmann-json3-dev
-      python3 python3-numpy python3-scipy python3-astropy chromium "$@")
+      python3 python3-numpy python3-scipy python3-astropy chromium slurm-wlm munge "$@")
 missing=()
 for p in "${pkgs[@]}"; do
   dpkg-query -W -f='${Status}' "$p" 2>/dev/null | grep -q "install ok installed" || missing+=("$p")

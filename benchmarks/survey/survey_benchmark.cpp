@@ -122,10 +122,10 @@ void bench_merge(std::size_t n_rows) {
       bool same = true;
       if (first.kept.empty()) first = r;
       else same = r.names == first.names && r.kept.size() == first.kept.size();
-      std::printf("  threads %d, partition order %d: %.2f s (%.2f M rows/s), %zu partitions, kept %zu, dropped %zu, "
+      std::printf("  threads %d, partition order %d: %.2f s (%.2f M rows/s), %zu partitions, kept %zu, duplicates removed %zu, "
                   "residual duplicate pairs %zu, name collisions %zu, same catalogue as first: %s\n",
                   threads, order, dt, static_cast<double>(comps.size()) / dt / 1e6, r.partitions, r.kept.size(),
-                  r.dropped_by_cell, r.residual_duplicate_pairs, r.name_collisions, same ? "yes" : "NO");
+                  r.duplicates_removed, r.residual_duplicate_pairs, r.name_collisions, same ? "yes" : "NO");
     }
   }
   std::printf("  peak RSS of the merge benchmark process: %ld MB\n", self_maxrss_mb());
@@ -374,7 +374,7 @@ void bench_survey(int n_tiles, long size, int workers, const std::string& work) 
   std::printf("  simulating the tiles: %.1f s (not part of the survey figures)\n", now_s() - t0);
   std::ofstream(work + "/survey.ini")
       << "[survey]\nname = bench\ntiles = tiles/*.fits\noutput = out\ncatalogue = bench.components.csv\nworkers = "
-      << workers << "\n[output]\nformats = csv\nmaps = false\nmodel = false\nresidual = false\n";
+      << workers << "\n[output]\nformats = csv\nmodel = false\nresidual = false\n";
   t0 = now_s();
   int rc = run({"survey", work + "/survey.ini"}, log);
   const double cold = now_s() - t0;
@@ -389,9 +389,9 @@ void bench_survey(int n_tiles, long size, int workers, const std::string& work) 
   const int rc3 = run({"survey", work + "/survey.ini"}, log);
   const double touched = now_s() - t0;
   std::printf("  cold run: %.1f s (exit %d), %.1f tiles per minute\n", cold, rc, 60.0 * side * side / cold);
-  std::printf("  merge: %s s, %s rows kept of %s, %s dropped by the cell rule, %s residual duplicate pairs\n",
+  std::printf("  merge: %s s, %s rows kept of %s, %s duplicates removed, %s residual duplicate pairs\n",
               json_number(mss.str(), "seconds").c_str(), json_number(mss.str(), "rows").c_str(),
-              json_number(mss.str(), "input_rows").c_str(), json_number(mss.str(), "dropped_by_cell").c_str(),
+              json_number(mss.str(), "input_rows").c_str(), json_number(mss.str(), "duplicates_removed").c_str(),
               json_number(mss.str(), "residual_duplicate_pairs").c_str());
   std::printf("  unchanged rerun: %.3f s (exit %d); after touching a tile: %.3f s (exit %d)\n", rerun, rc2, touched, rc3);
   std::printf("  peak RSS of the largest process (survey controller or one extract): %ld MB\n", children_maxrss_mb());

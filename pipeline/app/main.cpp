@@ -1,5 +1,6 @@
 // The `skerry` command: dispatches to the sub-commands registered in cmd_*.cpp.
 #include <algorithm>
+#include <csignal>
 #include <cstdio>
 #include <exception>
 #include <iostream>
@@ -30,6 +31,11 @@ void usage(std::ostream& os) {
 }  // namespace
 
 int main(int argc, char** argv) {
+  // A file-size limit (ulimit -f, RLIMIT_FSIZE) must not kill the process with
+  // SIGXFSZ: ignored, a write past the limit fails with EFBIG, the writer throws
+  // OutputError and the command exits 4 (output not written) with a message
+  // naming the file. Inherited by the child processes of `skerry survey`.
+  std::signal(SIGXFSZ, SIG_IGN);
   std::vector<std::string> args(argv + 1, argv + argc);
   if (args.empty() || args[0] == "--help" || args[0] == "-h" || args[0] == "help") {
     usage(std::cout);

@@ -7,8 +7,10 @@
 #include <fcntl.h>
 #include <sys/file.h>
 #include <sys/stat.h>
+#include <sys/wait.h>
 #include <unistd.h>
 
+#include <algorithm>
 #include <atomic>
 #include <chrono>
 #include <cstring>
@@ -119,6 +121,117 @@ std::string stage_ini(const SurveyConfig& cfg, const std::map<std::string, std::
   return s.str();
 }
 
+/// Rebuilds the tile table of a fresh state record from the tile folders' run
+/// records (tiles/NAME/tile.json, tiles/NAME.failed.json). Input hashes are not
+/// rebuilt: the next look at each input hashes it again. Returns the number of
+/// tiles recorded.
+std::size_t rebuild_state(const SurveyConfig& cfg, StateRecord& db, const std::vector<TileInput>& tiles) {
+  std::map<std::string, std::string> image;
+  for (const auto& t : tiles) image[t.name] = t.image;
+  std::set<std::string> names;
+  std::error_code ec;
+  const fs::path tdir = fs::path(cfg.output_root) / "tiles";
+  for (const auto& e : fs::directory_iterator(tdir, ec)) {
+    const std::string n = e.path().filename().string();
+    if (is_temporary_name(n) || n.empty() || n[0] == '.') continue;
+    if (e.is_directory(ec)) names.insert(n);
+    else if (n.ends_with(".failed.json")) names.insert(n.substr(0, n.size() - 12));
+  }
+  std::size_t count = 0;
+  db.begin();
+  for (const auto& n : names) {
+    auto r = read_tile_report(cfg, n);
+    if (!r || !r->ok) r = read_failure_report(cfg, n);
+    if (!r) continue;
+    StateRecord::TileState s;
+    s.name = n;
+    s.image = image.count(n) ? image[n] : "";
+    s.status = r->ok ? "ok" : "failed";
+    s.inputs_sha256 = r->ok ? r->inputs_sha256 : "";
+    s.config_sha256 = r->ok ? r->config_sha256 : "";
+    s.tool_version = r->ok ? r->tool_version : "";
+    s.components_sha256 = r->ok ? r->components_sha256 : "";
+    s.message = r->message;
+    s.centre_ra_deg = r->centre_ra_deg;
+    s.centre_dec_deg = r->centre_dec_deg;
+    s.seconds = r->seconds;
+    s.rows = r->rows;
+    s.updated_utc = utc_now();
+    db.set_tile(s);
+    ++count;
+  }
+  db.commit();
+  return count;
+}
+
+/// The stage settings checked by the stage commands themselves before any tile
+/// runs: `skerry extract` (and `skerry bands`) parse them from a temporary copy
+/// of the stage file with an empty image, which they refuse as bad input (exit
+/// 3) after the settings; a refusal of the settings (exit 2) is this survey's
+/// configuration error, naming the key.
+void check_stage_settings(const SurveyConfig& cfg) {
+  auto check = [&](const std::map<std::string, std::string>& kv, const std::string& cmd, int n_images) {
+    if (kv.empty()) return;
+    char dir_tmpl[] = "/tmp/skerry-stage-check.XXXXXX";
+    const char* tmpdir = std::getenv("TMPDIR");
+    std::string tmpl = std::string(tmpdir && *tmpdir ? tmpdir : "/tmp") + "/skerry-stage-check.XXXXXX";
+    std::vector<char> buf(tmpl.begin(), tmpl.end());
+    buf.push_back('\0');
+    const char* made = ::mkdtemp(buf.data());
+    if (!made) made = ::mkdtemp(dir_tmpl);
+    if (!made) return;  // no place to check: the tile runs check the settings
+    const fs::path dir(made);
+    std::error_code ec;
+    const std::string ini = (dir / "stage.ini").string();
+    {
+      std::ofstream o(ini);
+      o << stage_ini(cfg, kv, cmd);
+    }
+    const std::string exe = fs::read_symlink("/proc/self/exe", ec).string();
+    std::vector<std::string> args{exe, cmd};
+    for (int i = 0; i < n_images; ++i) args.push_back((dir / ("empty" + std::to_string(i) + ".fits")).string());
+    for (int i = 0; i < n_images; ++i) std::ofstream((dir / ("empty" + std::to_string(i) + ".fits")).string());
+    for (const std::string a : {"--config", ini.c_str(), "--out", (dir / "out").c_str(), "--threads", "1"})
+      args.push_back(a);
+    std::vector<char*> argv;
+    for (auto& a : args) argv.push_back(a.data());
+    argv.push_back(nullptr);
+    const std::string err_path = (dir / "stderr.txt").string();
+    const pid_t pid = ::fork();
+    if (pid == 0) {
+      int fd = ::open(err_path.c_str(), O_WRONLY | O_CREAT | O_TRUNC, 0644);
+      int nul = ::open("/dev/null", O_RDWR);
+      if (nul >= 0) {
+        ::dup2(nul, 0);
+        ::dup2(nul, 1);
+      }
+      if (fd >= 0) ::dup2(fd, 2);
+      ::execv(argv[0], argv.data());
+      ::_exit(127);
+    }
+    int status = 0;
+    if (pid > 0)
+      while (::waitpid(pid, &status, 0) < 0 && errno == EINTR) {
+      }
+    std::string last;
+    {
+      std::ifstream in(err_path);
+      for (std::string line; std::getline(in, line);)
+        if (!line.empty()) last = line;
+    }
+    fs::remove_all(dir, ec);
+    if (pid > 0 && WIFEXITED(status) && WEXITSTATUS(status) == kExitUsage) {
+      const std::string prefix = "skerry " + cmd + ": error: ";
+      if (last.rfind(prefix, 0) == 0) last = last.substr(prefix.size());
+      // The child names its temporary copy of the stage file: name ours instead.
+      if (last.rfind(ini, 0) == 0) last = last.substr(ini.size() + (last.size() > ini.size() + 1 ? 2 : 0));
+      throw UsageError(cfg.config_path + ": stage settings of skerry " + cmd + ": " + last);
+    }
+  };
+  check(cfg.extract, "extract", 1);
+  if (cfg.bands.size() >= 2) check(cfg.bands_stage, "bands", static_cast<int>(cfg.bands.size()));
+}
+
 bool is_current(const StateRecord::TileState& s, const std::string& inputs_sha256, const SurveyConfig& cfg) {
   return s.status == "ok" && s.inputs_sha256 == inputs_sha256 && s.config_sha256 == cfg.config_sha256 &&
          s.tool_version == tool_version();
@@ -189,6 +302,10 @@ int run_survey(const std::vector<std::string>& args) {
 
   const auto t_start = std::chrono::steady_clock::now();
   const bool tty = stderr_is_terminal();
+  // Configuration checked before any work (nothing is written when it fails):
+  // the tile patterns, then the stage settings as the stage commands read them.
+  const std::vector<TileInput> tiles = discover_tiles(cfg);
+  check_stage_settings(cfg);
   std::error_code ec;
   fs::create_directories(cfg.output_root, ec);
   if (ec) throw OutputError(cfg.output_root, "cannot create the output folder: " + ec.message());
@@ -206,7 +323,16 @@ int run_survey(const std::vector<std::string>& args) {
   SurveyLog log(cfg.output_root);
   const std::string run_id = run_id_now();
 
-  const std::vector<TileInput> tiles = discover_tiles(cfg);
+  if (!db.recovered_from().empty()) {
+    const std::size_t n = rebuild_state(cfg, db, tiles);
+    const std::string msg = "the state record " + (fs::path(cfg.output_root) / "survey.sqlite").string() +
+                            " was damaged (" + db.recovery_reason() + "); moved aside to " + db.recovered_from() +
+                            " and rebuilt from the run records of " + std::to_string(n) + " tile folders";
+    log.write(msg, "\"event\":\"state_rebuilt\",\"run\":" + json_str(run_id) + ",\"moved_to\":" +
+                       json_str(db.recovered_from()) + ",\"reason\":" + json_str(db.recovery_reason()) +
+                       ",\"tiles\":" + std::to_string(n));
+    std::cerr << "skerry survey: " << msg << "\n";
+  }
   std::set<std::string> only;
   if (opts.vm.count("only")) {
     for (const auto& n : opts.vm["only"].as<std::vector<std::string>>()) {
@@ -300,25 +426,53 @@ int run_survey(const std::vector<std::string>& args) {
     pending.push_back({t, inputs_sha[i], reason});
   }
 
+  // The tiles the merge takes: every current tile, and every other tile (missing,
+  // unreadable, failed, or changed but not reprocessed) with last good results
+  // on disk, marked stale, until the operator retires it (survey.retired_tiles).
   std::int64_t merge_rows = 0;  // tile rows of the last merge_list()
+  std::map<std::string, std::size_t> discovered;
+  for (std::size_t i = 0; i < tiles.size(); ++i) discovered[tiles[i].name] = i;
   auto merge_list = [&]() {
     std::vector<MergeTile> m;
     auto st = db.tiles();
     merge_rows = 0;
-    for (std::size_t i = 0; i < tiles.size(); ++i) {
-      auto s = st.find(tiles[i].name);
-      if (s != st.end() && is_current(s->second, inputs_sha[i], cfg)) {
-        m.push_back({tiles[i].name, s->second.components_sha256, s->second.centre_ra_deg, s->second.centre_dec_deg});
+    std::set<std::string> names;
+    for (const auto& t : tiles) names.insert(t.name);
+    for (const auto& [n, s] : st) names.insert(n);
+    for (const auto& n : names) {
+      if (cfg.retired_tiles.count(n)) continue;
+      auto s = st.find(n);
+      auto found = discovered.find(n);
+      if (found != discovered.end() && s != st.end() && is_current(s->second, inputs_sha[found->second], cfg)) {
+        m.push_back({n, s->second.components_sha256, s->second.centre_ra_deg, s->second.centre_dec_deg, false});
         merge_rows += s->second.rows;
+        continue;
+      }
+      const auto rep = read_tile_report(cfg, n);
+      if (rep && rep->ok) {
+        m.push_back({n, rep->components_sha256, rep->centre_ra_deg, rep->centre_dec_deg, true});
+        merge_rows += rep->rows;
       }
     }
     return m;
   };
+  // Why a stale tile is stale, for the messages.
+  auto stale_reason = [&](const std::string& n) -> std::string {
+    auto found = discovered.find(n);
+    if (found == discovered.end()) return "missing";
+    if (!unreadable[found->second].empty()) return "unreadable";
+    const auto st = db.tiles();
+    auto s = st.find(n);
+    if (s != st.end() && s->second.status == "failed") return "failed";
+    return "not reprocessed";
+  };
 
   // ---- Nothing to do? ------------------------------------------------------------
   if (pending.empty() && failures_now.empty()) {
-    const std::string fp = merge_fingerprint(cfg, merge_list());
-    if (fp == db.get("merge_fingerprint") && fs::exists(catalogue_path(cfg), ec)) {
+    const auto ml = merge_list();
+    const bool any_stale = std::any_of(ml.begin(), ml.end(), [](const MergeTile& t) { return t.stale; });
+    const std::string fp = merge_fingerprint(cfg, ml);
+    if (!any_stale && fp == db.get("merge_fingerprint") && fs::exists(catalogue_path(cfg), ec)) {
       log.write("run " + run_id + " nothing to do (" + std::to_string(tiles.size()) + " tiles up to date)",
                 "\"event\":\"run\",\"run\":" + json_str(run_id) + ",\"outcome\":\"nothing_to_do\",\"tiles\":" +
                     std::to_string(tiles.size()));
@@ -401,11 +555,15 @@ int run_survey(const std::vector<std::string>& args) {
     merged = true;
     prune_merge_folders(cfg, merge_list(), ms.fingerprint);
     log.write("merge ok " + fixed(ms.seconds, 2) + " s (" + where + ") tiles=" + std::to_string(ms.tiles) + " rows=" +
-                  std::to_string(ms.rows) + " of " + std::to_string(ms.input_rows) + " residual_duplicate_pairs=" +
+                  std::to_string(ms.rows) + " of " + std::to_string(ms.input_rows) + " duplicates_removed=" +
+                  std::to_string(ms.duplicates_removed) + " rescued=" + std::to_string(ms.rescued) + " stale_rows=" +
+                  std::to_string(ms.stale_rows) + " residual_duplicate_pairs=" +
                   std::to_string(ms.residual_duplicate_pairs) + " partitions=" + std::to_string(ms.partitions),
               "\"event\":\"merge\",\"run\":" + json_str(run_id) + ",\"where\":" + json_str(where) + ",\"seconds\":" +
                   fixed(ms.seconds, 3) + ",\"tiles\":" + std::to_string(ms.tiles) + ",\"rows\":" +
                   std::to_string(ms.rows) + ",\"input_rows\":" + std::to_string(ms.input_rows) +
+                  ",\"duplicates_removed\":" + std::to_string(ms.duplicates_removed) + ",\"rescued\":" +
+                  std::to_string(ms.rescued) + ",\"stale_rows\":" + std::to_string(ms.stale_rows) +
                   ",\"residual_duplicate_pairs\":" + std::to_string(ms.residual_duplicate_pairs) +
                   ",\"partitions\":" + std::to_string(ms.partitions));
   };
@@ -437,7 +595,14 @@ int run_survey(const std::vector<std::string>& args) {
     ProgressCtx pc{&prog};
     std::string run_dir;
     db.set("slurm_run_dir", (fs::path(cfg.output_root) / "slurm" / run_id).string());
-    auto reports = run_slurm(cfg, pending, merge_list(), run_id, &slurm_progress, &pc, &run_dir, &merge_failures);
+    // The tiles that stay as they are (the plan job adds each pending tile: its
+    // new results, or its last good ones marked stale when it fails).
+    std::set<std::string> pending_names;
+    for (const auto& p : pending) pending_names.insert(p.tile.name);
+    std::vector<MergeTile> keep;
+    for (const auto& t : merge_list())
+      if (!pending_names.count(t.name)) keep.push_back(t);
+    auto reports = run_slurm(cfg, pending, keep, run_id, &slurm_progress, &pc, &run_dir, &merge_failures);
     db.set("slurm_run_dir", "");
     for (std::size_t i = 0; i < reports.size(); ++i) record(reports[i], &pending[i]);
     prog.finish();
@@ -462,10 +627,22 @@ int run_survey(const std::vector<std::string>& args) {
   if (cfg.engine == "local" && merge_needed()) {
     const auto mt = merge_list();
     ThreadLimit tl(cfg.workers);
-    if (merge_rows <= cfg.merge_in_memory_rows) {
-      merge_done(merge_tiles(cfg, mt), "local");
-    } else if (auto ms = merge_tiles_on_disk(cfg, mt, merge_failures)) {
-      merge_done(*ms, "local");
+    try {
+      if (merge_rows <= cfg.merge_in_memory_rows) {
+        merge_done(merge_tiles(cfg, mt), "local");
+      } else if (auto ms = merge_tiles_on_disk(cfg, mt, merge_failures)) {
+        merge_done(*ms, "local");
+      }
+    } catch (const OutputError& e) {
+      // Disk full (or a file-size limit) at the catalogue: the message also
+      // names the tiles that failed in this run (often for the same reason).
+      std::string failed;
+      for (const auto& [n, s] : db.tiles())
+        if (s.status == "failed" && discovered.count(n)) failed += (failed.empty() ? "" : ", ") + n;
+      log.write("run " + run_id + " end exit=4: " + e.what(), "\"event\":\"run_end\",\"run\":" + json_str(run_id) +
+                                                          ",\"exit_code\":4,\"message\":" + json_str(e.what()));
+      if (failed.empty()) throw;
+      throw ExitError(kExitOutput, std::string("error: ") + e.what() + "; tiles that failed in this run: " + failed);
     }
   }
   for (const auto& f : merge_failures)
@@ -473,28 +650,54 @@ int run_survey(const std::vector<std::string>& args) {
               "\"event\":\"merge_failed\",\"run\":" + json_str(run_id) + ",\"message\":" + json_str(f));
 
   const double secs = std::chrono::duration<double>(std::chrono::steady_clock::now() - t_start).count();
-  const int code = n_failed > 0 || !merge_failures.empty() ? kExitSomeFailed : kExitOk;
+  // Stale tiles: kept from their last good results, never silently.
+  std::vector<std::string> stale;
+  for (const auto& t : merge_list())
+    if (t.stale) stale.push_back(t.name + " (" + stale_reason(t.name) + ")");
+  {
+    std::string list;
+    for (const auto& t : stale) list += (list.empty() ? "" : ",") + t;
+    db.begin();
+    db.set("stale_tiles", list);
+    db.commit();
+  }
+  const int code = n_failed > 0 || !merge_failures.empty() || !stale.empty() ? kExitSomeFailed : kExitOk;
   log.write("run " + run_id + " end exit=" + std::to_string(code) + " processed=" + std::to_string(n_ok) +
-                " failed=" + std::to_string(n_failed) + (merge_failures.empty() ? "" : " merge=failed") + " " + fixed(secs, 2) + " s",
+                " failed=" + std::to_string(n_failed) + " stale=" + std::to_string(stale.size()) +
+                (merge_failures.empty() ? "" : " merge=failed") + " " + fixed(secs, 2) + " s",
             "\"event\":\"run_end\",\"run\":" + json_str(run_id) + ",\"exit_code\":" + std::to_string(code) +
                 ",\"processed\":" + std::to_string(n_ok) + ",\"failed\":" + std::to_string(n_failed) +
-                ",\"seconds\":" + fixed(secs, 3));
+                ",\"stale\":" + std::to_string(stale.size()) + ",\"seconds\":" + fixed(secs, 3));
+  const std::string see = "see " + (fs::path(cfg.output_root) / "survey.log").string();
   if (!merge_failures.empty()) {
     // Not quiet: cron mails these lines to whoever owns the job.
     std::cerr << "skerry survey: the merge did not complete (retried next run): " << merge_failures.front()
-              << (merge_failures.size() > 1 ? " (and " + std::to_string(merge_failures.size() - 1) + " more; see " +
-                                                  (fs::path(cfg.output_root) / "survey.log").string() + ")"
+              << (merge_failures.size() > 1 ? " (and " + std::to_string(merge_failures.size() - 1) + " more; " + see + ")"
                                             : std::string())
               << "\n";
-    if (n_failed > 0)
-      std::cerr << "skerry survey: " << n_failed << " of " << (n_ok + n_failed)
-                << " tiles failed (retried next run; see " << (fs::path(cfg.output_root) / "survey.log").string()
-                << ")\n";
-  } else if (n_failed > 0) {
-    // Not quiet: cron mails this line to whoever owns the job.
-    std::cerr << "skerry survey: " << n_failed << " of " << (n_ok + n_failed) << " tiles failed (retried next run; see "
-              << (fs::path(cfg.output_root) / "survey.log").string() << ")\n";
-  } else if (tty) {
+  }
+  if (n_failed > 0 || !stale.empty()) {
+    // One line naming the tiles: failures (retried next run) and stale tiles
+    // (their last good rows kept in the catalogue, marked in merge_flags).
+    std::string line = "skerry survey: ";
+    if (n_failed > 0) {
+      std::vector<std::string> names;
+      for (const auto& [n, s] : db.tiles())
+        if (s.status == "failed" && discovered.count(n) && (only.empty() || only.count(n))) names.push_back(n);
+      std::string nl;
+      for (const auto& n : names) nl += (nl.empty() ? "" : ", ") + n;
+      line += std::to_string(n_failed) + " of " + std::to_string(n_ok + n_failed) + " tiles failed (" + nl +
+              "; retried next run)";
+    }
+    if (!stale.empty()) {
+      std::string sl;
+      for (const auto& t : stale) sl += (sl.empty() ? "" : ", ") + t;
+      line += std::string(n_failed > 0 ? "; " : "") + std::to_string(stale.size()) + " stale tile" +
+              (stale.size() > 1 ? "s" : "") + " kept from last good results: " + sl +
+              " (drop with survey.retired_tiles)";
+    }
+    std::cerr << line << "; " << see << "\n";
+  } else if (merge_failures.empty() && tty) {
     std::cerr << "skerry survey: " << n_ok << " tiles processed, catalogue " << catalogue_path(cfg) << " ("
               << fixed(secs, 1) << " s)\n";
   }

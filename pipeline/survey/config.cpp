@@ -43,13 +43,29 @@ std::string absolute_from(const std::string& base, const std::string& p) {
   return q.lexically_normal().string();
 }
 
+/// The survey's own checks of settings that other commands would only find
+/// later (all in one place).
+void check_survey_settings(const SurveyConfig& cfg, const std::string& path) {
+  if (auto m = cfg.extract.find("output.maps"); m != cfg.extract.end()) {
+    std::string v = m->second;
+    std::transform(v.begin(), v.end(), v.begin(), [](unsigned char c) { return std::tolower(c); });
+    if (v == "false" || v == "0" || v == "no" || v == "off")
+      throw UsageError(path + ": output.maps = " + m->second +
+                       " breaks being true (the survey merge reads each tile's rms map to give every position to "
+                       "the tile with the lowest noise there)");
+  }
+  for (const auto& r : cfg.retired_tiles)
+    if (r.find_first_of("/*?[") != std::string::npos)
+      throw UsageError(path + ": survey.retired_tiles = " + r + " breaks being a tile name (no '/' or wildcards)");
+}
+
 }  // namespace
 
 namespace {
 
 /// Where the survey file's values go while it is read.
 struct FileValues {
-  std::string tiles, output, catalogue, engine, prefix, bands, detection_band;
+  std::string tiles, output, catalogue, engine, prefix, bands, detection_band, retired;
   int workers = 2, tpt = 1, order = 4;
   double radius = 5.0, margin = 3.0;
 };
@@ -63,6 +79,7 @@ po::options_description survey_file_description(SurveyConfig& cfg, FileValues& t
     ("survey.name", po::value<std::string>(&cfg.name)->default_value("survey"), "survey name (logs, catalogue meta)")
     ("survey.tiles", po::value<std::string>(&t.tiles), "tile images: globs or files, comma-separated, relative to this file")
     ("survey.output", po::value<std::string>(&t.output), "output root folder, relative to this file")
+    ("survey.retired_tiles", po::value<std::string>(&t.retired)->default_value(""), "tiles (by name, comma-separated) dropped from the survey: not processed even when matched, their rows no longer merged (a tile that is missing, unreadable or failed otherwise keeps its last good rows, marked stale)")
     ("survey.catalogue", po::value<std::string>(&t.catalogue)->default_value("survey.components.csv"), "merged catalogue file name in the output root (.csv, .fits or .vot)")
     ("survey.bands", po::value<std::string>(&t.bands)->default_value(""), "multi-band tiles: file-stem suffix of each band, comma-separated (e.g. _0900MHz,_1400MHz,_3000MHz); empty = one band")
     ("survey.detection_band", po::value<std::string>(&t.detection_band)->default_value(""), "suffix of the band whose extract catalogue gives a tile's components (default: the first of survey.bands)")
@@ -127,6 +144,7 @@ SurveyConfig load_survey_config(const std::string& path) {
   int& order = t.order;
   double& radius = t.radius;
   double& margin = t.margin;
+  std::string& retired = t.retired;
   std::ifstream in(cfg.config_path);
   if (!in) throw InputError(path, "cannot open survey configuration file");
   po::variables_map vm;
@@ -197,6 +215,8 @@ SurveyConfig load_survey_config(const std::string& path) {
     need(!cfg.bands_stage.count(k), k, cfg.bands_stage.count(k) ? cfg.bands_stage[k] : "",
          "being unset (frequencies come from the band headers; outputs are named after the tile)");
   cfg.tile_patterns = split_list(tiles);
+  for (const auto& r : split_list(retired)) cfg.retired_tiles.insert(r);
+  check_survey_settings(cfg, path);
   cfg.output_root = absolute_from(cfg.base_dir, output);
   cfg.catalogue = catalogue;
   cfg.engine = engine;
@@ -266,6 +286,7 @@ std::vector<TileInput> discover_tiles(const SurveyConfig& cfg) {
         throw UsageError(cfg.config_path + ": survey.tiles lists " + pat + ", which is not a file");
       found.push_back(abs);
     }
+    std::size_t matched = 0;
     for (auto& f : found) {
       const std::string fname = fs::path(f).filename().string();
       if (fname.empty() || fname[0] == '.') continue;  // hidden and temporary files are not tiles
@@ -280,8 +301,15 @@ std::vector<TileInput> discover_tiles(const SurveyConfig& cfg) {
         if (stem.size() <= suf.size() || !stem.ends_with(suf)) continue;
         stem = stem.substr(0, stem.size() - suf.size());
       }
+      ++matched;  // a retired tile counts as matched: the pattern is not empty
+      if (cfg.retired_tiles.count(stem)) continue;
       out.push_back({stem, f});
     }
+    // A pattern that matches nothing (a renamed folder, an unmounted disk) is a
+    // configuration error before anything is written: treating it as "no
+    // tiles" would drop every tile's rows from the catalogue.
+    if (matched == 0)
+      throw UsageError(cfg.config_path + ": survey.tiles pattern '" + pat + "' matches no tile image (" + abs + ")");
   }
   std::sort(out.begin(), out.end(), [](const TileInput& a, const TileInput& b) { return a.name < b.name; });
   for (std::size_t i = 1; i < out.size(); ++i)

@@ -24,8 +24,11 @@
 #include <iosfwd>
 #include <map>
 #include <optional>
+#include <set>
 #include <string>
 #include <vector>
+
+#include <nlohmann/json_fwd.hpp>
 
 #include "skerry/survey.h"
 #include "skerry/table.h"
@@ -50,6 +53,8 @@ struct SurveyConfig {
   std::string base_dir;         ///< folder of the configuration file (relative paths start here)
   std::string name = "survey";
   std::vector<std::string> tile_patterns;  ///< globs or files, as written
+  /// [survey] retired_tiles: tiles dropped on purpose (not processed, not merged).
+  std::set<std::string> retired_tiles;
   std::string output_root;      ///< absolute
   std::string catalogue = "survey.components.csv";
   std::string engine = "local"; ///< "local" or "slurm"
@@ -139,15 +144,37 @@ struct MergeTile {
   std::string name;
   std::string components_sha256;
   double centre_ra_deg = 0.0, centre_dec_deg = 0.0;
+  /// The tile's last good results, kept while the tile is missing, unreadable or
+  /// failed (its rows carry the stale bit of merge_flags) until it is retired.
+  bool stale = false;
 };
+
+/// Descriptions of the merged catalogue's tile and merge_flags columns.
+inline constexpr const char* kTileColumnDescription =
+    "tile the row comes from (the tile owning its position, or the best tile that detected it)";
+inline constexpr const char* kMergeFlagsDescription =
+    "merge warnings: 1 = stale tile (its last good results; the tile is missing, unreadable or failed), "
+    "2 = rescued (the tile owning the position did not detect it; kept from the lowest-noise tile that did)";
+/// Bits of the merged catalogue's merge_flags column.
+constexpr std::int64_t kMergeStaleTile = 1;  ///< from a stale tile's last good results
+constexpr std::int64_t kMergeRescued = 2;    ///< the tile owning the position did not detect it
+
+/// Tile worker: reads the rms map `skerry extract` wrote into `dir` and writes
+/// dir/noise_cells.csv (the tile's local noise on HEALPix cells). Throws
+/// InputError when there is no rms map.
+void write_tile_noise(const std::string& dir);
+/// The tile's noise cells (tiles/NAME/noise_cells.csv); an empty map (no valid
+/// data known) when the file is absent. Throws InputError when it is damaged.
+survey::TileNoise read_tile_noise(const SurveyConfig& cfg, const std::string& tile);
 
 /// Fingerprint of a merge: settings, tool version and each tile's results.
 std::string merge_fingerprint(const SurveyConfig& cfg, const std::vector<MergeTile>& tiles);
 
 struct MergeSummary {
   std::string fingerprint;
-  std::size_t tiles = 0, input_rows = 0, rows = 0, dropped_by_cell = 0, residual_duplicate_pairs = 0,
-              name_collisions = 0, partitions = 0;
+  std::size_t tiles = 0, input_rows = 0, rows = 0, duplicates_removed = 0, rescued = 0, stale_rows = 0,
+              residual_duplicate_pairs = 0, name_collisions = 0, partitions = 0;
+  std::vector<std::string> stale_tiles;  ///< name order
   double seconds = 0.0;
 };
 
@@ -208,6 +235,9 @@ void prune_merge_folders(const SurveyConfig& cfg, const std::vector<MergeTile>& 
 std::string catalogue_path(const SurveyConfig& cfg);
 std::string merge_summary_path(const SurveyConfig& cfg);
 std::optional<MergeSummary> read_merge_summary(const SurveyConfig& cfg);
+/// The counts of a merge summary (rows, duplicates_removed, rescued, stale_rows,
+/// stale_tiles, residual_duplicate_pairs, name_collisions, partitions) into `j`.
+void put_summary_counts(nlohmann::json& j, const MergeSummary& sum);
 
 /// Appends one line to survey.log and one JSON object to survey.jsonl (each by
 /// one write(2) on an O_APPEND descriptor, then fsync).
@@ -281,8 +311,16 @@ class StateRecord {
   void begin();
   void commit();
 
+  /// The integrity check at open found the record damaged: it was moved aside
+  /// to this path and a fresh, empty record made (the caller rebuilds it from
+  /// the tile folders). Empty when the record was sound.
+  const std::string& recovered_from() const { return recovered_from_; }
+  const std::string& recovery_reason() const { return recovery_reason_; }
+
  private:
+  void open_checked();
   void exec(const std::string& sql);
+  std::string recovered_from_, recovery_reason_;
   void* db_ = nullptr;
   std::string path_;
 };

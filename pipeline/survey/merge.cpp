@@ -264,7 +264,7 @@ Table tile_rows(const SurveyConfig& cfg, const MergeTile& tile, std::vector<doub
   ra = rc->f64;
   dec = dc->f64;
   Table out;
-  std::set<std::string> names{"designation", "tile"};
+  std::set<std::string> names{"designation", "tile", "merge_flags"};
   std::vector<std::int64_t> rows(tab.rows());
   for (std::size_t i = 0; i < rows.size(); ++i) rows[i] = static_cast<std::int64_t>(i + 1);
   out.add_i64("tile_row", "", "meta.number", "1-based row of the component in its tile's component table", rows);
@@ -376,7 +376,8 @@ json plan_json(const MergePlan& p, const std::vector<std::vector<std::size_t>>& 
   j["tiles"] = json::array();
   for (const auto& t : p.tiles)
     j["tiles"].push_back({{"name", t.name}, {"components_sha256", t.components_sha256},
-                          {"centre_ra_deg", t.centre_ra_deg}, {"centre_dec_deg", t.centre_dec_deg}});
+                          {"centre_ra_deg", t.centre_ra_deg}, {"centre_dec_deg", t.centre_dec_deg},
+                          {"stale", t.stale}});
   j["partitions"] = json::array();
   for (std::size_t i = 0; i < p.partitions.size(); ++i)
     j["partitions"].push_back({{"pixel", p.partitions[i]}, {"tiles", part_tiles[i]}});
@@ -430,7 +431,8 @@ MergePlan read_merge_plan(const std::string& dir) {
     p.input_rows = j->at("input_rows").get<std::int64_t>();
     for (const auto& t : j->at("tiles"))
       p.tiles.push_back({t.at("name").get<std::string>(), t.at("components_sha256").get<std::string>(),
-                         t.at("centre_ra_deg").get<double>(), t.at("centre_dec_deg").get<double>()});
+                         t.at("centre_ra_deg").get<double>(), t.at("centre_dec_deg").get<double>(),
+                         t.at("stale").get<bool>()});
     for (const auto& e : j->at("partitions")) p.partitions.push_back(e.at("pixel").get<std::int64_t>());
     return p;
   } catch (const std::exception& e) {
@@ -447,6 +449,23 @@ bool partition_done(const MergePlan& plan, std::int64_t pixel) {
 
 // ---- (b) Partition merge ------------------------------------------------------------------
 
+namespace {
+/// The plan's noise maps (plan tile order), read once per process and plan.
+std::vector<survey::TileNoise> plan_noise(const SurveyConfig& cfg, const MergePlan& plan) {
+  static std::mutex mu;
+  static std::string cached_fp;
+  static std::vector<survey::TileNoise> cached;
+  std::lock_guard g(mu);
+  if (cached_fp != plan.fingerprint || cached.size() != plan.tiles.size()) {
+    std::vector<survey::TileNoise> v;
+    for (const auto& t : plan.tiles) v.push_back(read_tile_noise(cfg, t.name));
+    cached = std::move(v);
+    cached_fp = plan.fingerprint;
+  }
+  return cached;
+}
+}  // namespace
+
 std::size_t merge_one_partition(const SurveyConfig& cfg, const MergePlan& plan, std::int64_t pixel) {
   if (partition_done(plan, pixel)) return 0;
   const auto t0 = std::chrono::steady_clock::now();
@@ -460,6 +479,9 @@ std::size_t merge_one_partition(const SurveyConfig& cfg, const MergePlan& plan, 
   if (tiles.empty()) throw InputError(pf.string(), "has no partition " + std::to_string(pixel));
   std::vector<survey::SkyPoint> centres;
   for (const auto& t : plan.tiles) centres.push_back({t.centre_ra_deg, t.centre_dec_deg});
+  // Every tile's noise cells (ownership looks at all tiles with valid data, not
+  // only those with rows here), as the in-memory merge reads them.
+  const std::vector<survey::TileNoise> noise = plan_noise(cfg, plan);
 
   survey::PartitionInput in;
   in.pixel = pixel;
@@ -498,17 +520,24 @@ std::size_t merge_one_partition(const SurveyConfig& cfg, const MergePlan& plan, 
     }
   }
   const std::size_t members = in.members.size();
-  const survey::PartitionResult r = survey::merge_partition(in, centres, cfg.merge);
+  const survey::PartitionResult r = survey::merge_partition(in, centres, cfg.merge, noise);
   in.members.clear();
   in.members.shrink_to_fit();
 
   Table out;
   std::vector<std::string> tile_names;
-  for (const auto& k : r.kept) tile_names.push_back(plan.tiles[static_cast<std::size_t>(k.tile)].name);
+  std::vector<std::int64_t> merge_flags;
+  std::size_t stale_rows = 0;
+  for (std::size_t i = 0; i < r.kept.size(); ++i) {
+    const MergeTile& mt = plan.tiles[static_cast<std::size_t>(r.kept[i].tile)];
+    tile_names.push_back(mt.name);
+    merge_flags.push_back((mt.stale ? kMergeStaleTile : 0) | (r.rescued[i] ? kMergeRescued : 0));
+    stale_rows += mt.stale ? 1 : 0;
+  }
   out.add_text("designation", "", "meta.id;meta.main",
                "IAU-style designation from the position, truncated (suffix a, b, ... when several share it)", r.names);
-  out.add_text("tile", "", "meta.id;obs.field", "tile whose cell holds the component (its catalogue is the source)",
-               tile_names);
+  out.add_text("tile", "", "meta.id;obs.field", kTileColumnDescription, tile_names);
+  out.add_i64("merge_flags", "", "meta.code.qual", kMergeFlagsDescription, merge_flags);
   for (std::size_t c = 0; c < first->ncols(); ++c) {
     Column col = empty_like(first->columns()[c]);
     for (const auto& k : r.kept) {
@@ -530,7 +559,9 @@ std::size_t merge_one_partition(const SurveyConfig& cfg, const MergePlan& plan, 
   j["members"] = members;
   j["rows"] = r.kept.size();
   j["home_rows"] = r.home_rows;
-  j["dropped_by_cell"] = r.dropped_by_cell;
+  j["duplicates_removed"] = r.duplicates_removed;
+  j["rescued"] = r.rescued_rows;
+  j["stale_rows"] = stale_rows;
   j["residual_duplicate_pairs"] = r.residual_duplicate_pairs;
   j["name_collisions"] = r.name_collisions;
   j["text_widths"] = widths;
@@ -606,7 +637,8 @@ MergeSummary concatenate_partitions(const SurveyConfig& cfg, const MergePlan& pl
   proto.name = "survey_components";
   proto.add_text("designation", "", "meta.id;meta.main",
                  "IAU-style designation from the position, truncated (suffix a, b, ... when several share it)");
-  proto.add_text("tile", "", "meta.id;obs.field", "tile whose cell holds the component (its catalogue is the source)");
+  proto.add_text("tile", "", "meta.id;obs.field", kTileColumnDescription);
+  proto.add_i64("merge_flags", "", "meta.code.qual", kMergeFlagsDescription);
   if (plan.tiles.empty()) {
     proto.add_i64("tile_row", "", "meta.number", "1-based row of the component in its tile's component table");
   } else {
@@ -625,11 +657,15 @@ MergeSummary concatenate_partitions(const SurveyConfig& cfg, const MergePlan& pl
       throw InputError(jp.string(), "its columns differ from those of the first tile (the same columns in every tile?)");
     for (std::size_t c = 0; c < w.size(); ++c) widths[c] = std::max(widths[c], w[c]);
     sum.rows += j->at("rows").get<std::size_t>();
-    sum.dropped_by_cell += j->at("dropped_by_cell").get<std::size_t>();
+    sum.duplicates_removed += j->at("duplicates_removed").get<std::size_t>();
+    sum.rescued += j->at("rescued").get<std::size_t>();
+    sum.stale_rows += j->at("stale_rows").get<std::size_t>();
     sum.residual_duplicate_pairs += j->at("residual_duplicate_pairs").get<std::size_t>();
     sum.name_collisions += j->at("name_collisions").get<std::size_t>();
     pj.push_back(*j);
   }
+  for (const auto& t : plan.tiles)
+    if (t.stale) sum.stale_tiles.push_back(t.name);
   set_catalogue_meta(proto, cfg, plan.tiles.size(), sum);
 
   const std::string cat = catalogue_path(cfg);
@@ -744,11 +780,7 @@ MergeSummary concatenate_partitions(const SurveyConfig& cfg, const MergePlan& pl
   j["catalogue_sha256"] = sha256_file(cat);
   j["tiles"] = sum.tiles;
   j["input_rows"] = sum.input_rows;
-  j["rows"] = sum.rows;
-  j["dropped_by_cell"] = sum.dropped_by_cell;
-  j["residual_duplicate_pairs"] = sum.residual_duplicate_pairs;
-  j["name_collisions"] = sum.name_collisions;
-  j["partitions"] = sum.partitions;
+  put_summary_counts(j, sum);
   j["seconds"] = sum.seconds;
   j["merge"] = "on disk";
   write_text_atomic(merge_summary_path(cfg), j.dump(2) + "\n");

@@ -91,7 +91,7 @@ void write_script(const std::string& path, const std::string& body) {
 
 json merge_tile_json(const MergeTile& t) {
   return json{{"name", t.name}, {"components_sha256", t.components_sha256}, {"centre_ra_deg", t.centre_ra_deg},
-              {"centre_dec_deg", t.centre_dec_deg}};
+              {"centre_dec_deg", t.centre_dec_deg}, {"stale", t.stale}};
 }
 
 }  // namespace
@@ -344,7 +344,7 @@ int slurm_worker_task(const SurveyConfig& cfg, const std::string& run_dir, int t
   if (r.ok) {
     // Step (a) of the merge for this tile, while its results are fresh on this node.
     try {
-      ensure_scatter(cfg, {r.name, r.components_sha256, r.centre_ra_deg, r.centre_dec_deg});
+      ensure_scatter(cfg, {r.name, r.components_sha256, r.centre_ra_deg, r.centre_dec_deg, false});
     } catch (const std::exception& e) {
       std::cout << "scatter of tile " << tile.name << " failed (the plan job redoes it): " << e.what() << "\n";
     }
@@ -360,12 +360,15 @@ int slurm_merge_job(const SurveyConfig& cfg, const std::string& run_dir) {
   std::vector<MergeTile> tiles;
   for (const auto& c : j.at("current"))
     tiles.push_back({c.at("name").get<std::string>(), c.at("components_sha256").get<std::string>(),
-                     c.at("centre_ra_deg").get<double>(), c.at("centre_dec_deg").get<double>()});
+                     c.at("centre_ra_deg").get<double>(), c.at("centre_dec_deg").get<double>(),
+                     c.at("stale").get<bool>()});
   for (const auto& t : j.at("tasks")) {
     auto r = read_tile_report(cfg, t.at("name").get<std::string>());
     if (r && r->ok && r->run_id == run_id && r->inputs_sha256 == t.at("inputs_sha256").get<std::string>() &&
         r->config_sha256 == cfg.config_sha256 && r->tool_version == tool_version())
-      tiles.push_back({r->name, r->components_sha256, r->centre_ra_deg, r->centre_dec_deg});
+      tiles.push_back({r->name, r->components_sha256, r->centre_ra_deg, r->centre_dec_deg, false});
+    else if (r && r->ok)  // failed in this run: its last good results, marked stale (as the controller does)
+      tiles.push_back({r->name, r->components_sha256, r->centre_ra_deg, r->centre_dec_deg, true});
   }
   const auto t0 = std::chrono::steady_clock::now();
   for (const auto& t : tiles) ensure_scatter(cfg, t);  // normally done by the tile tasks already

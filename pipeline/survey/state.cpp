@@ -1,6 +1,11 @@
 // `skerry survey`: the SQLite state record (controller only).
 #include <sqlite3.h>
 
+#include <unistd.h>
+
+#include <cerrno>
+#include <cstring>
+
 #include "app/errors.h"
 #include "survey/engine.h"
 
@@ -26,23 +31,105 @@ struct Stmt {
 };
 }  // namespace
 
-StateRecord::StateRecord(const std::string& path) : path_(path) {
+namespace {
+/// True for the SQLite errors that mean the file itself is damaged.
+bool damaged_code(int rc) {
+  const int primary = rc & 0xff;
+  return primary == SQLITE_CORRUPT || primary == SQLITE_NOTADB || primary == SQLITE_FORMAT;
+}
+struct Damaged {
+  std::string why;
+};
+}  // namespace
+
+void StateRecord::open_checked() {
   sqlite3* db = nullptr;
-  if (sqlite3_open_v2(path.c_str(), &db, SQLITE_OPEN_READWRITE | SQLITE_OPEN_CREATE | SQLITE_OPEN_FULLMUTEX,
+  if (sqlite3_open_v2(path_.c_str(), &db, SQLITE_OPEN_READWRITE | SQLITE_OPEN_CREATE | SQLITE_OPEN_FULLMUTEX,
                       nullptr) != SQLITE_OK) {
     std::string msg = db ? sqlite3_errmsg(db) : "cannot open";
+    const int rc = db ? sqlite3_extended_errcode(db) : SQLITE_CANTOPEN;
     sqlite3_close(db);
-    throw OutputError(path, "cannot open the state record: " + msg);
+    if (damaged_code(rc)) throw Damaged{msg};
+    throw OutputError(path_, "cannot open the state record: " + msg);
   }
   db_ = db;
   sqlite3_busy_timeout(db, 5000);
-  exec("PRAGMA journal_mode=DELETE");
-  exec("PRAGMA synchronous=FULL");
-  exec("CREATE TABLE IF NOT EXISTS inputs(path TEXT PRIMARY KEY, size INTEGER, mtime_ns INTEGER, inode INTEGER, sha256 TEXT)");
-  exec("CREATE TABLE IF NOT EXISTS tiles(name TEXT PRIMARY KEY, image TEXT, status TEXT, inputs_sha256 TEXT, "
-       "config_sha256 TEXT, tool_version TEXT, components_sha256 TEXT, message TEXT, centre_ra_deg REAL, "
-       "centre_dec_deg REAL, seconds REAL, rows INTEGER, updated_utc TEXT)");
-  exec("CREATE TABLE IF NOT EXISTS state(key TEXT PRIMARY KEY, value TEXT)");
+  auto run = [&](const char* sql) {
+    char* err = nullptr;
+    const int rc = sqlite3_exec(db, sql, nullptr, nullptr, &err);
+    if (rc == SQLITE_OK) return;
+    std::string msg = err ? err : sqlite3_errmsg(db);
+    sqlite3_free(err);
+    if (damaged_code(sqlite3_extended_errcode(db)) || damaged_code(rc)) throw Damaged{msg};
+    throw OutputError(path_, "state record: " + msg);
+  };
+  run("PRAGMA journal_mode=DELETE");
+  run("PRAGMA synchronous=FULL");
+  // Integrity check at open (SQLite's quick_check: every page, record and index
+  // entry well formed; linear in the file size).
+  {
+    sqlite3_stmt* st = nullptr;
+    if (sqlite3_prepare_v2(db, "PRAGMA quick_check", -1, &st, nullptr) != SQLITE_OK) {
+      const std::string msg = sqlite3_errmsg(db);
+      const int rc = sqlite3_extended_errcode(db);
+      if (damaged_code(rc)) throw Damaged{msg};
+      throw OutputError(path_, "state record: " + msg);
+    }
+    std::string first;
+    int rc;
+    while ((rc = sqlite3_step(st)) == SQLITE_ROW) {
+      const unsigned char* t = sqlite3_column_text(st, 0);
+      if (first.empty() && t) first = reinterpret_cast<const char*>(t);
+    }
+    const int ext = sqlite3_extended_errcode(db);
+    sqlite3_finalize(st);
+    if (rc != SQLITE_DONE) {
+      if (damaged_code(rc) || damaged_code(ext)) throw Damaged{sqlite3_errstr(rc)};
+      throw OutputError(path_, std::string("state record: ") + sqlite3_errstr(rc));
+    }
+    if (first != "ok") throw Damaged{"integrity check: " + first};
+  }
+  run("CREATE TABLE IF NOT EXISTS inputs(path TEXT PRIMARY KEY, size INTEGER, mtime_ns INTEGER, inode INTEGER, sha256 TEXT)");
+  run("CREATE TABLE IF NOT EXISTS tiles(name TEXT PRIMARY KEY, image TEXT, status TEXT, inputs_sha256 TEXT, "
+      "config_sha256 TEXT, tool_version TEXT, components_sha256 TEXT, message TEXT, centre_ra_deg REAL, "
+      "centre_dec_deg REAL, seconds REAL, rows INTEGER, updated_utc TEXT)");
+  run("CREATE TABLE IF NOT EXISTS state(key TEXT PRIMARY KEY, value TEXT)");
+  // The tables must have the columns this version reads.
+  {
+    sqlite3_stmt* st = nullptr;
+    const char* probe = "SELECT name, image, status, inputs_sha256, config_sha256, tool_version, components_sha256, "
+                        "message, centre_ra_deg, centre_dec_deg, seconds, rows, updated_utc FROM tiles LIMIT 0";
+    const int rc = sqlite3_prepare_v2(db, probe, -1, &st, nullptr);
+    sqlite3_finalize(st);
+    if (rc != SQLITE_OK) throw Damaged{std::string("tiles table: ") + sqlite3_errmsg(db)};
+  }
+}
+
+StateRecord::StateRecord(const std::string& path) : path_(path) {
+  try {
+    open_checked();
+    return;
+  } catch (const Damaged& d) {
+    sqlite3_close(H(db_));
+    db_ = nullptr;
+    // Moved aside (with its rollback journal), never deleted: the operator may
+    // want to look at it. A fresh record is made; the caller rebuilds it.
+    const std::string stamp = utc_now();
+    std::string aside = path + ".damaged-" + stamp;
+    for (int k = 1; ::access(aside.c_str(), F_OK) == 0; ++k) aside = path + ".damaged-" + stamp + "-" + std::to_string(k);
+    if (::rename(path.c_str(), aside.c_str()) != 0)
+      throw OutputError(path, "the state record is damaged (" + d.why + ") and cannot be moved aside: " +
+                                  std::strerror(errno));
+    const std::string journal = path + "-journal";
+    if (::access(journal.c_str(), F_OK) == 0) ::rename(journal.c_str(), (aside + "-journal").c_str());
+    recovered_from_ = aside;
+    recovery_reason_ = d.why;
+  }
+  try {
+    open_checked();
+  } catch (const Damaged& d) {
+    throw OutputError(path, "a new state record is damaged at once (" + d.why + ")");
+  }
 }
 
 StateRecord::~StateRecord() { sqlite3_close(H(db_)); }

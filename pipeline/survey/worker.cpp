@@ -55,11 +55,21 @@ void set_catalogue_meta(Table& catalogue, const SurveyConfig& cfg, std::size_t n
   catalogue.set_meta("survey", cfg.name);
   catalogue.set_meta("tool", "skerry survey " + tool_version());
   catalogue.set_meta("tiles", std::to_string(n_tiles));
-  catalogue.set_meta("merge_rule", "a component is kept only by the tile whose centre is nearest to it (great-circle distance; ties to the first tile by name)");
+  catalogue.set_meta("merge_rule",
+                     "each position belongs to the tile with the lowest local noise there (its rms map; ties to the "
+                     "first tile by name); a copy within the match radius is kept from the owning tile, else from "
+                     "the lowest-noise tile that detected it (merge_flags bit 2, rescued)");
   catalogue.set_meta("self_match_radius_arcsec", radius.str());
   catalogue.set_meta("input_rows", std::to_string(sum.input_rows));
-  catalogue.set_meta("dropped_outside_cell", std::to_string(sum.dropped_by_cell));
+  catalogue.set_meta("duplicates_removed", std::to_string(sum.duplicates_removed));
+  catalogue.set_meta("rescued", std::to_string(sum.rescued));
   catalogue.set_meta("residual_duplicate_pairs", std::to_string(sum.residual_duplicate_pairs));
+  {
+    std::string st;
+    for (const auto& t : sum.stale_tiles) st += (st.empty() ? "" : ",") + t;
+    catalogue.set_meta("stale_tiles", st.empty() ? "none" : st);
+    catalogue.set_meta("stale_rows", std::to_string(sum.stale_rows));
+  }
   catalogue.set_meta("designation", cfg.merge.designation_prefix + " JHHMMSS.s+DDMMSS, truncated");
   catalogue.set_meta("row_order", "HEALPix NESTED index at order 29, then RA, Dec, tile, row");
   catalogue.set_meta("merge_fingerprint", sum.fingerprint);
@@ -262,6 +272,12 @@ TileReport process_tile(const SurveyConfig& cfg, const TileInput& tile, const st
     r.components_file = comps[0];
     r.components_sha256 = sha256_file((tmp / comps[0]).string());
     r.rows = static_cast<std::int64_t>(read_table((tmp / comps[0]).string()).rows());
+    // The tile's local noise on sky cells, for the merge's ownership rule.
+    try {
+      write_tile_noise(tmp.string());
+    } catch (const InputError& e) {
+      return fail(kExitBadInput, tile.image + ": " + e.what());
+    }
     if (cfg.bands.size() >= 2) {
       // Multi-band tile: forced measurements of the extract components in every
       // band (`skerry bands --catalogue`, so spectra row component_id = component
@@ -338,9 +354,22 @@ std::string merge_fingerprint(const SurveyConfig& cfg, const std::vector<MergeTi
   std::ostringstream s;
   s.precision(17);
   s << "skerry-survey-merge-v1\n" << tool_version() << "\n" << cfg.merge_settings << "\n";
-  for (const auto& t : tiles) s << t.name << " " << t.components_sha256 << " " << t.centre_ra_deg << " " << t.centre_dec_deg << "\n";
+  for (const auto& t : tiles)
+    s << t.name << " " << t.components_sha256 << " " << t.centre_ra_deg << " " << t.centre_dec_deg
+      << (t.stale ? " stale" : "") << "\n";
   const std::string text = s.str();
   return sha256_hex(text.data(), text.size());
+}
+
+void put_summary_counts(nlohmann::json& j, const MergeSummary& sum) {
+  j["rows"] = sum.rows;
+  j["duplicates_removed"] = sum.duplicates_removed;
+  j["rescued"] = sum.rescued;
+  j["stale_rows"] = sum.stale_rows;
+  j["stale_tiles"] = sum.stale_tiles;
+  j["residual_duplicate_pairs"] = sum.residual_duplicate_pairs;
+  j["name_collisions"] = sum.name_collisions;
+  j["partitions"] = sum.partitions;
 }
 
 std::optional<MergeSummary> read_merge_summary(const SurveyConfig& cfg) {
@@ -353,7 +382,10 @@ std::optional<MergeSummary> read_merge_summary(const SurveyConfig& cfg) {
     m.tiles = j.at("tiles").get<std::size_t>();
     m.input_rows = j.at("input_rows").get<std::size_t>();
     m.rows = j.at("rows").get<std::size_t>();
-    m.dropped_by_cell = j.at("dropped_by_cell").get<std::size_t>();
+    m.duplicates_removed = j.at("duplicates_removed").get<std::size_t>();
+    m.rescued = j.at("rescued").get<std::size_t>();
+    m.stale_rows = j.at("stale_rows").get<std::size_t>();
+    m.stale_tiles = j.at("stale_tiles").get<std::vector<std::string>>();
     m.residual_duplicate_pairs = j.at("residual_duplicate_pairs").get<std::size_t>();
     m.name_collisions = j.at("name_collisions").get<std::size_t>();
     m.partitions = j.at("partitions").get<std::size_t>();
@@ -443,11 +475,17 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
     centres.push_back({tiles[t].centre_ra_deg, tiles[t].centre_dec_deg});
     tables.push_back(std::move(tab));
   }
+  std::vector<survey::TileNoise> noise(tiles.size());
+  for (std::size_t t = 0; t < tiles.size(); ++t) {
+    noise[t] = read_tile_noise(cfg, tiles[t].name);
+    if (tiles[t].stale) sum.stale_tiles.push_back(tiles[t].name);
+  }
   survey::MergeResult mr;
-  if (!comps.empty()) mr = survey::merge_components(comps, centres, cfg.merge);
+  if (!comps.empty()) mr = survey::merge_components(comps, centres, cfg.merge, noise);
   sum.input_rows = comps.size();
   sum.rows = mr.kept.size();
-  sum.dropped_by_cell = mr.dropped_by_cell;
+  sum.duplicates_removed = mr.duplicates_removed;
+  sum.rescued = mr.rescued_rows;
   sum.residual_duplicate_pairs = mr.residual_duplicate_pairs;
   sum.name_collisions = mr.name_collisions;
   sum.partitions = mr.partitions;
@@ -455,15 +493,19 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
   Table out;
   out.name = "survey_components";
   std::vector<std::string> tile_names;
-  std::vector<std::int64_t> tile_rows;
-  for (const auto& k : mr.kept) {
+  std::vector<std::int64_t> tile_rows, merge_flags;
+  for (std::size_t i = 0; i < mr.kept.size(); ++i) {
+    const auto& k = mr.kept[i];
+    const bool stale = tiles[static_cast<std::size_t>(k.tile)].stale;
     tile_names.push_back(tiles[static_cast<std::size_t>(k.tile)].name);
     tile_rows.push_back(k.row + 1);
+    merge_flags.push_back((stale ? kMergeStaleTile : 0) | (mr.rescued[i] ? kMergeRescued : 0));
+    sum.stale_rows += stale ? 1 : 0;
   }
   out.add_text("designation", "", "meta.id;meta.main",
                "IAU-style designation from the position, truncated (suffix a, b, ... when several share it)", mr.names);
-  out.add_text("tile", "", "meta.id;obs.field", "tile whose cell holds the component (its catalogue is the source)",
-               tile_names);
+  out.add_text("tile", "", "meta.id;obs.field", kTileColumnDescription, tile_names);
+  out.add_i64("merge_flags", "", "meta.code.qual", kMergeFlagsDescription, merge_flags);
   out.add_i64("tile_row", "", "meta.number", "1-based row of the component in its tile's component table", tile_rows);
   if (!tables.empty()) {
     for (std::size_t c = 0; c < tables.front().columns().size(); ++c) {
@@ -521,11 +563,7 @@ MergeSummary merge_tiles(const SurveyConfig& cfg, const std::vector<MergeTile>& 
   j["catalogue_sha256"] = sha256_file(catalogue_path(cfg));
   j["tiles"] = sum.tiles;
   j["input_rows"] = sum.input_rows;
-  j["rows"] = sum.rows;
-  j["dropped_by_cell"] = sum.dropped_by_cell;
-  j["residual_duplicate_pairs"] = sum.residual_duplicate_pairs;
-  j["name_collisions"] = sum.name_collisions;
-  j["partitions"] = sum.partitions;
+  put_summary_counts(j, sum);
   j["seconds"] = sum.seconds;
   write_text_atomic(merge_summary_path(cfg), j.dump(2) + "\n");
   return sum;

@@ -9,6 +9,7 @@
 
 #include <algorithm>
 #include <cmath>
+#include <limits>
 #include <map>
 #include <stdexcept>
 #include <tuple>
@@ -96,15 +97,18 @@ void validate(const MergeOptions& o) {
     bad("partition_order", o.partition_order, "0 <= partition_order <= 13");
   if (!(o.match_radius_arcsec > 0.0 && o.match_radius_arcsec <= 3600.0))
     bad("match_radius_arcsec", o.match_radius_arcsec, "0 < match_radius_arcsec <= 3600");
-  if (!(o.margin_match_radii >= 1.0 && o.margin_match_radii <= 100.0))
-    bad("margin_match_radii", o.margin_match_radii, "1 <= margin_match_radii <= 100");
+  if (!(o.margin_match_radii >= 2.0 && o.margin_match_radii <= 100.0))
+    bad("margin_match_radii", o.margin_match_radii, "2 <= margin_match_radii <= 100");
 }
 
 namespace {
 double margin_arcsec(const MergeOptions& o) {
-  // >= 2 arcsec: one designation covers 0.1 s of RA (<= 1.5 arcsec) by 1 arcsec of
-  // Dec, so two components sharing a name are < 1.9 arcsec apart.
-  return std::max(o.match_radius_arcsec * o.margin_match_radii, 2.0);
+  // >= 2 match radii: whether a member within one radius of a home member is
+  // kept depends on its own neighbours, one more radius out. >= 2 arcsec + one
+  // radius: one designation covers 0.1 s of RA (<= 1.5 arcsec) by 1 arcsec of
+  // Dec, so two components sharing a name are < 1.9 arcsec apart, and whether
+  // they are kept looks one radius further.
+  return std::max(o.match_radius_arcsec * o.margin_match_radii, 2.0 + o.match_radius_arcsec);
 }
 }  // namespace
 
@@ -149,13 +153,68 @@ std::int64_t home_partition(std::int64_t sort_key, const MergeOptions& o) {
   return sort_key >> (2 * (kSortOrder - o.partition_order));
 }
 
+double local_noise(const TileNoise& n, std::int64_t sort_key) {
+  if (n.order < 0 || n.cells.empty()) return std::numeric_limits<double>::infinity();
+  const std::int64_t cell = sort_key >> (2 * (kSortOrder - n.order));
+  auto it = std::lower_bound(n.cells.begin(), n.cells.end(), cell);
+  if (it == n.cells.end() || *it != cell) return std::numeric_limits<double>::infinity();
+  return n.rms[static_cast<std::size_t>(it - n.cells.begin())];
+}
+
+void validate(const TileNoise& n) {
+  if (n.order < -1 || n.order > kSortOrder)
+    throw std::invalid_argument("noise map order " + std::to_string(n.order) + " is outside -1..29");
+  if (n.cells.size() != n.rms.size()) throw std::invalid_argument("noise map: cells and values differ in number");
+  for (std::size_t i = 0; i < n.cells.size(); ++i) {
+    if (i > 0 && !(n.cells[i - 1] < n.cells[i])) throw std::invalid_argument("noise map: cells not sorted and unique");
+    if (!(std::isfinite(n.rms[i]) && n.rms[i] > 0.0))
+      throw std::invalid_argument("noise map: cell " + std::to_string(n.cells[i]) + " has no finite positive rms");
+  }
+}
+
+TileNoise make_tile_noise(int order, std::vector<std::pair<std::int64_t, double>> cells) {
+  std::sort(cells.begin(), cells.end());
+  TileNoise n;
+  n.order = order;
+  for (const auto& [c, v] : cells) {
+    n.cells.push_back(c);
+    n.rms.push_back(v);
+  }
+  validate(n);
+  if (n.cells.empty() || order < 0) return n;
+  const T_Healpix_Base<int64> base(order, NEST);
+  Vec3 c{0, 0, 0};
+  std::vector<Vec3> v;
+  v.reserve(n.cells.size());
+  for (auto px : n.cells) {
+    const vec3 u = base.pix2vec(px);
+    v.push_back({u.x, u.y, u.z});
+    c = {c.x + u.x, c.y + u.y, c.z + u.z};
+  }
+  const double cn = std::sqrt(c.x * c.x + c.y * c.y + c.z * c.z);
+  double r = 3.14159265358979323846;  // cells all over the sky: the whole sphere
+  if (cn > 1e-6) {
+    c = {c.x / cn, c.y / cn, c.z / cn};
+    double m = 0.0;
+    for (const auto& x : v) m = std::max(m, chord2(x, c));
+    r = 2.0 * std::asin(std::min(1.0, 0.5 * std::sqrt(m))) + base.max_pixrad();
+  }
+  n.cap_ra_deg = std::atan2(c.y, c.x) / kDegToRad;
+  n.cap_dec_deg = std::asin(std::max(-1.0, std::min(1.0, c.z))) / kDegToRad;
+  n.cap_radius_deg = r / kDegToRad;
+  return n;
+}
+
 PartitionResult merge_partition(const PartitionInput& input, const std::vector<SkyPoint>& centres,
-                                const MergeOptions& o) {
+                                const MergeOptions& o, const std::vector<TileNoise>& noise) {
   validate(o);
   PartitionResult res;
   res.pixel = input.pixel;
   if (input.members.empty()) return res;
   if (centres.empty()) throw std::invalid_argument("merge_partition: no tile centres");
+  if (!noise.empty() && noise.size() != centres.size())
+    throw std::invalid_argument("merge_partition: " + std::to_string(noise.size()) + " noise maps for " +
+                                std::to_string(centres.size()) + " tiles");
   const int shift = 2 * (kSortOrder - o.partition_order);
 
   std::vector<Member> m;
@@ -168,116 +227,155 @@ PartitionResult merge_partition(const PartitionInput& input, const std::vector<S
   }
   std::sort(m.begin(), m.end(), catalogue_less);
 
-  // ---- Cell selection --------------------------------------------------------
-  // Candidate tiles: with c the partition's mean direction and R the largest
-  // angle from c to a member, a tile t can be nearest to some member p only if
-  // d(c,t) <= d(c,t0) + 2R, t0 being the tile nearest to c (triangle
-  // inequality: d(p,t) >= d(c,t) - R > d(c,t0) + R >= d(p,t0)). Candidates keep
-  // their list order, so ties still go to the lower index: the same answer as a
-  // scan of every tile.
+  // ---- Local noise of every tile at every member ---------------------------------
+  // With noise maps: a tile is a candidate for the partition when its cap meets
+  // the partition's cap (mean direction c, radius R: the largest angle from c to
+  // a member); for each member, the tiles whose cap holds it are looked up.
+  // Without: the angular distance from each tile centre, over the tiles that can
+  // be nearest to some member (triangle inequality: with t0 the tile nearest to
+  // c, a tile t with d(c,t) > d(c,t0) + 2R is farther than t0 from every member).
+  // Candidates keep their list order, so ties still go to the lower index.
   Vec3 c{0, 0, 0};
   for (const auto& x : m) c = {c.x + x.v.x, c.y + x.v.y, c.z + x.v.z};
   const double cn = std::sqrt(c.x * c.x + c.y * c.y + c.z * c.z);
+  auto angle_of_chord2 = [](double c2) { return 2.0 * std::asin(std::min(1.0, 0.5 * std::sqrt(c2))); };
   std::vector<std::size_t> cand;
+  std::vector<Vec3> cand_v;
+  std::vector<double> cand_r;  // cap radius [rad] (noise maps)
+  const bool by_noise = !noise.empty();
   if (cn > 1e-3 * static_cast<double>(m.size())) {
     c = {c.x / cn, c.y / cn, c.z / cn};
-    auto ang = [&](const Vec3& a) { return 2.0 * std::asin(std::min(1.0, 0.5 * std::sqrt(chord2(a, c)))); };
     double r_max = 0.0;
-    for (const auto& x : m) r_max = std::max(r_max, ang(x.v));
-    std::vector<double> dct(centres.size());
-    double d0 = 1e300;
-    for (std::size_t i = 0; i < centres.size(); ++i) {
-      dct[i] = ang(unit(centres[i].ra_deg, centres[i].dec_deg));
-      d0 = std::min(d0, dct[i]);
+    for (const auto& x : m) r_max = std::max(r_max, angle_of_chord2(chord2(x.v, c)));
+    if (by_noise) {
+      for (std::size_t i = 0; i < noise.size(); ++i) {
+        if (noise[i].cap_radius_deg < 0.0) continue;
+        const Vec3 t = unit(noise[i].cap_ra_deg, noise[i].cap_dec_deg);
+        if (angle_of_chord2(chord2(t, c)) <= noise[i].cap_radius_deg * kDegToRad + r_max + 1e-9) cand.push_back(i);
+      }
+    } else {
+      std::vector<double> dct(centres.size());
+      double d0 = 1e300;
+      for (std::size_t i = 0; i < centres.size(); ++i) {
+        dct[i] = angle_of_chord2(chord2(unit(centres[i].ra_deg, centres[i].dec_deg), c));
+        d0 = std::min(d0, dct[i]);
+      }
+      const double limit = d0 + 2.0 * r_max + 1e-9;
+      for (std::size_t i = 0; i < centres.size(); ++i)
+        if (dct[i] <= limit) cand.push_back(i);
     }
-    // + 2 match radii: the candidates also hold every tile within 2 r of being
-    // nearest, which the boundary test below needs.
-    const double limit = d0 + 2.0 * r_max + 2.0 * o.match_radius_arcsec * kArcsecToRad + 1e-9;
-    for (std::size_t i = 0; i < centres.size(); ++i)
-      if (dct[i] <= limit) cand.push_back(i);
   } else {
-    for (std::size_t i = 0; i < centres.size(); ++i) cand.push_back(i);
+    for (std::size_t i = 0; i < centres.size(); ++i)
+      if (!by_noise || noise[i].cap_radius_deg >= 0.0) cand.push_back(i);
   }
-  std::vector<Vec3> cand_v;
-  for (auto i : cand) cand_v.push_back(unit(centres[i].ra_deg, centres[i].dec_deg));
-
-  // near_edge: the second-nearest tile centre is within 2 match radii of the
-  // nearest one's distance. Two kept components of different tiles A and B
-  // closer than r are both near an edge: d(a, cB) <= d(b, cB) + r <= d(b, cA) + r
-  // <= d(a, cA) + 2r (triangle inequality, b in B's cell). Only they enter the
-  // self-match below.
-  const double two_r = 2.0 * o.match_radius_arcsec * kArcsecToRad;
-  auto angle_of_chord2 = [](double c2) { return 2.0 * std::asin(std::min(1.0, 0.5 * std::sqrt(c2))); };
-  std::vector<char> kept(m.size(), 0), home(m.size(), 0), near_edge(m.size(), 0);
+  for (auto i : cand) {
+    if (by_noise) {
+      cand_v.push_back(unit(noise[i].cap_ra_deg, noise[i].cap_dec_deg));
+      cand_r.push_back(noise[i].cap_radius_deg * kDegToRad + 1e-9);
+    } else {
+      cand_v.push_back(unit(centres[i].ra_deg, centres[i].dec_deg));
+    }
+  }
+  // Per member: owned (its tile is the best at its position) and the local
+  // noise of its own tile there (infinite where it has no valid data).
+  const double inf = std::numeric_limits<double>::infinity();
+  std::vector<char> owned(m.size(), 0), home(m.size(), 0);
+  std::vector<double> own_noise(m.size(), inf);
   for (std::size_t k = 0; k < m.size(); ++k) {
     home[k] = (m[k].key >> shift) == input.pixel;
-    std::size_t best = 0;
-    double best_c2 = chord2(m[k].v, cand_v[0]), second_c2 = 1e300;
-    for (std::size_t j = 1; j < cand.size(); ++j) {
-      const double c2 = chord2(m[k].v, cand_v[j]);
-      if (c2 < best_c2) {
-        second_c2 = best_c2;
-        best_c2 = c2;
-        best = j;
-      } else if (c2 < second_c2) {
-        second_c2 = c2;
+    const auto tile = static_cast<std::size_t>(m[k].c.tile);
+    double best = inf;
+    std::size_t best_tile = centres.size();
+    for (std::size_t j = 0; j < cand.size(); ++j) {
+      double q;
+      if (by_noise) {
+        if (angle_of_chord2(chord2(m[k].v, cand_v[j])) > cand_r[j]) continue;
+        q = local_noise(noise[cand[j]], m[k].key);
+      } else {
+        q = chord2(m[k].v, cand_v[j]);
+      }
+      if (q < best) {  // strict: ties keep the lower index
+        best = q;
+        best_tile = cand[j];
       }
     }
-    kept[k] = static_cast<std::size_t>(m[k].c.tile) == cand[best];
-    near_edge[k] = second_c2 < 1e300 && angle_of_chord2(second_c2) - angle_of_chord2(best_c2) <= two_r + 1e-12;
+    if (by_noise) {
+      own_noise[k] = local_noise(noise[tile], m[k].key);
+    } else {
+      own_noise[k] = chord2(m[k].v, unit(centres[tile].ra_deg, centres[tile].dec_deg));
+    }
+    owned[k] = best_tile == tile && std::isfinite(best);
+  }
+  // Rank key: owned first, then own local noise, tile, row (a strict total order).
+  auto better = [&](std::size_t a, std::size_t b) {
+    return std::make_tuple(owned[a] ? 0 : 1, own_noise[a], m[a].c.tile, m[a].c.row) <
+           std::make_tuple(owned[b] ? 0 : 1, own_noise[b], m[b].c.tile, m[b].c.row);
+  };
+
+  // ---- Neighbours from other tiles within the match radius -------------------------
+  // A grid of cubes in 3-D unit-vector space (side L = 2 x the radius' chord, at
+  // least 2e-6 so that indices fit 21 bits): a ball of radius <= L/2 about p
+  // meets at most two cubes per axis, the one holding p and the neighbour on the
+  // side of the half p lies in, so 8 cubes are searched (no special cases at RA
+  // 0/360 or the poles).
+  const double r_c2 = chord2_of_angle(o.match_radius_arcsec * kArcsecToRad);
+  const double L = std::max(2.0 * std::sqrt(r_c2), 2e-6);
+  auto gkey = [](std::int64_t x, std::int64_t y, std::int64_t z) {
+    const std::int64_t off = std::int64_t{1} << 20;
+    return static_cast<std::uint64_t>(x + off) << 42 | static_cast<std::uint64_t>(y + off) << 21 |
+           static_cast<std::uint64_t>(z + off);
+  };
+  std::unordered_map<std::uint64_t, std::vector<std::uint32_t>> grid;
+  grid.reserve(2 * m.size());
+  for (std::size_t k = 0; k < m.size(); ++k) {
+    const auto cx = static_cast<std::int64_t>(std::floor(m[k].v.x / L));
+    const auto cy = static_cast<std::int64_t>(std::floor(m[k].v.y / L));
+    const auto cz = static_cast<std::int64_t>(std::floor(m[k].v.z / L));
+    grid[gkey(cx, cy, cz)].push_back(static_cast<std::uint32_t>(k));
+  }
+  auto for_neighbours = [&](std::size_t a, auto&& fn) {
+    const double fx = m[a].v.x / L, fy = m[a].v.y / L, fz = m[a].v.z / L;
+    const auto cx = static_cast<std::int64_t>(std::floor(fx));
+    const auto cy = static_cast<std::int64_t>(std::floor(fy));
+    const auto cz = static_cast<std::int64_t>(std::floor(fz));
+    const std::int64_t sx = fx - static_cast<double>(cx) < 0.5 ? -1 : 1;
+    const std::int64_t sy = fy - static_cast<double>(cy) < 0.5 ? -1 : 1;
+    const std::int64_t sz = fz - static_cast<double>(cz) < 0.5 ? -1 : 1;
+    for (int q = 0; q < 8; ++q) {
+      auto it = grid.find(gkey(cx + ((q & 1) ? sx : 0), cy + ((q & 2) ? sy : 0), cz + ((q & 4) ? sz : 0)));
+      if (it == grid.end()) continue;
+      for (const std::uint32_t b : it->second) {
+        if (b == a || m[a].c.tile == m[b].c.tile) continue;
+        if (chord2(m[a].v, m[b].v) > r_c2) continue;
+        fn(static_cast<std::size_t>(b));
+      }
+    }
+  };
+  // Kept: no neighbour of another tile ranks better. Decided for the home
+  // members and for the margin members within one radius of them (the pair
+  // check below needs those); a member's neighbours lie within one radius, so
+  // inside the margin.
+  std::vector<char> kept(m.size(), 0);
+  for (std::size_t k = 0; k < m.size(); ++k) {
+    bool beaten = false;
+    for_neighbours(k, [&](std::size_t b) { beaten |= better(b, k); });
+    kept[k] = !beaten;
     if (home[k]) {
       ++res.home_rows;
-      if (!kept[k]) ++res.dropped_by_cell;
+      if (!kept[k]) ++res.duplicates_removed;
+      else if (!owned[k]) ++res.rescued_rows;
     }
   }
 
-  // ---- Self-match check of the kept components -------------------------------
-  // Pairs from different tiles closer than the match radius, found through a
-  // grid of cubes in 3-D unit-vector space with the side h of the radius' chord:
-  // two points closer than the radius lie in the same or adjacent cubes (no
-  // special cases at RA 0/360 or the poles). A pair is counted by the partition
-  // that is home to its earlier member (catalogue order), so that each pair is
-  // counted exactly once over all partitions.
-  {
-    const double r_c2 = chord2_of_angle(o.match_radius_arcsec * kArcsecToRad);
-    // Cube side L = 2 x chord (>= 2e-6 so that indices fit 21 bits): a ball of
-    // radius <= L/2 about p meets at most two cubes per axis, the one holding p
-    // and the neighbour on the side of the half p lies in: 8 cubes to search.
-    const double L = std::max(2.0 * std::sqrt(r_c2), 2e-6);
-    auto key = [](std::int64_t x, std::int64_t y, std::int64_t z) {
-      const std::int64_t off = std::int64_t{1} << 20;
-      return static_cast<std::uint64_t>(x + off) << 42 | static_cast<std::uint64_t>(y + off) << 21 |
-             static_cast<std::uint64_t>(z + off);
-    };
-    std::unordered_map<std::uint64_t, std::vector<std::uint32_t>> grid;
-    grid.reserve(2 * m.size());
-    for (std::size_t k = 0; k < m.size(); ++k) {
-      if (!kept[k] || !near_edge[k]) continue;
-      const auto cx = static_cast<std::int64_t>(std::floor(m[k].v.x / L));
-      const auto cy = static_cast<std::int64_t>(std::floor(m[k].v.y / L));
-      const auto cz = static_cast<std::int64_t>(std::floor(m[k].v.z / L));
-      grid[key(cx, cy, cz)].push_back(static_cast<std::uint32_t>(k));
-    }
-    for (std::size_t a = 0; a < m.size(); ++a) {
-      if (!kept[a] || !home[a] || !near_edge[a]) continue;
-      const double fx = m[a].v.x / L, fy = m[a].v.y / L, fz = m[a].v.z / L;
-      const auto cx = static_cast<std::int64_t>(std::floor(fx));
-      const auto cy = static_cast<std::int64_t>(std::floor(fy));
-      const auto cz = static_cast<std::int64_t>(std::floor(fz));
-      const std::int64_t sx = fx - static_cast<double>(cx) < 0.5 ? -1 : 1;
-      const std::int64_t sy = fy - static_cast<double>(cy) < 0.5 ? -1 : 1;
-      const std::int64_t sz = fz - static_cast<double>(cz) < 0.5 ? -1 : 1;
-      for (int q = 0; q < 8; ++q) {
-        auto it = grid.find(key(cx + ((q & 1) ? sx : 0), cy + ((q & 2) ? sy : 0), cz + ((q & 4) ? sz : 0)));
-        if (it == grid.end()) continue;
-        for (const std::uint32_t b : it->second) {
-          if (b <= a) continue;  // each pair once, from its earlier member a (m is in catalogue order)
-          if (m[a].c.tile == m[b].c.tile) continue;
-          if (chord2(m[a].v, m[b].v) > r_c2) continue;
-          ++res.residual_duplicate_pairs;
-        }
-      }
-    }
+  // ---- Self-match check of the kept components ---------------------------------
+  // Pairs of kept components from different tiles closer than the match radius,
+  // counted by the partition that is home to the earlier member (catalogue
+  // order), so each pair is counted exactly once over all partitions.
+  for (std::size_t a = 0; a < m.size(); ++a) {
+    if (!kept[a] || !home[a]) continue;
+    for_neighbours(a, [&](std::size_t b) {
+      if (b > a && kept[b]) ++res.residual_duplicate_pairs;
+    });
   }
 
   // ---- Designations and collision suffixes -----------------------------------
@@ -306,12 +404,13 @@ PartitionResult merge_partition(const PartitionInput& input, const std::vector<S
     }
     res.kept.push_back(m[k].c);
     res.names.push_back(std::move(name));
+    res.rescued.push_back(owned[k] ? 0 : 1);
   }
   return res;
 }
 
 MergeResult merge_components(const std::vector<TileComponent>& comps, const std::vector<SkyPoint>& centres,
-                             const MergeOptions& o) {
+                             const MergeOptions& o, const std::vector<TileNoise>& noise) {
   validate(o);
   MergeResult out;
   out.input_rows = comps.size();
@@ -352,17 +451,19 @@ MergeResult merge_components(const std::vector<TileComponent>& comps, const std:
     PartitionInput in;
     in.pixel = pairs[ranges[r].first].first;
     for (std::size_t k = ranges[r].first; k < ranges[r].second; ++k) in.members.push_back(comps[pairs[k].second]);
-    results[r] = merge_partition(in, centres, o);
+    results[r] = merge_partition(in, centres, o, noise);
   });
   for (auto& r : results) {
     if (r.home_rows == 0) continue;
     ++out.partitions;
-    out.dropped_by_cell += r.dropped_by_cell;
+    out.duplicates_removed += r.duplicates_removed;
+    out.rescued_rows += r.rescued_rows;
     out.residual_duplicate_pairs += r.residual_duplicate_pairs;
     out.name_collisions += r.name_collisions;
     for (std::size_t k = 0; k < r.kept.size(); ++k) {
       out.kept.push_back(r.kept[k]);
       out.names.push_back(std::move(r.names[k]));
+      out.rescued.push_back(r.rescued[k]);
     }
   }
   return out;

@@ -2,6 +2,7 @@
 
 #include <fcntl.h>
 #include <signal.h>
+#include <sys/resource.h>
 #include <sys/wait.h>
 #include <unistd.h>
 
@@ -33,6 +34,37 @@ std::string tmp_root() {
 }
 
 }  // namespace
+
+RunResult run_skerry_limited(const std::vector<std::string>& args, long long fsize_bytes) {
+  static int counter = 0;
+  const std::string base = tmp_root() + "/limited-" + std::to_string(counter++);
+  std::vector<std::string> full{test::skerry_binary()};
+  full.insert(full.end(), args.begin(), args.end());
+  std::vector<char*> argv;
+  for (auto& a : full) argv.push_back(a.data());
+  argv.push_back(nullptr);
+  const pid_t pid = ::fork();
+  if (pid == 0) {
+    // The limit applies to this child only; its captured stdout and stderr stay far below it.
+    struct rlimit rl {};
+    rl.rlim_cur = rl.rlim_max = static_cast<rlim_t>(fsize_bytes);
+    ::setrlimit(RLIMIT_FSIZE, &rl);
+    const int o = ::open((base + ".out").c_str(), O_WRONLY | O_CREAT | O_TRUNC, 0644);
+    const int e = ::open((base + ".err").c_str(), O_WRONLY | O_CREAT | O_TRUNC, 0644);
+    const int nul = ::open("/dev/null", O_RDONLY);
+    if (o < 0 || e < 0 || nul < 0) ::_exit(127);
+    ::dup2(o, 1);
+    ::dup2(e, 2);
+    ::dup2(nul, 0);
+    ::execv(argv[0], argv.data());
+    ::_exit(127);
+  }
+  RunResult r;
+  r.code = pid < 0 ? -1 : test::wait_exit(pid);
+  r.out = read_file(base + ".out");
+  r.err = read_file(base + ".err");
+  return r;
+}
 
 int start_skerry(const std::vector<std::string>& args, const std::string& log_dir) {
   static int counter = 0;
@@ -103,7 +135,7 @@ std::string make_survey(const std::string& dir, const std::string& extra) {
              "# Test survey of the invented Lanternfish Field (four overlapping tiles).\n"
              "[survey]\nname = lanternfish\ntiles = tiles/*.fits\noutput = out\n"
              "catalogue = lanternfish.components.csv\nworkers = 2\n"
-             "[output]\nformats = csv\nmaps = false\nmodel = false\nresidual = false\n" +
+             "[output]\nformats = csv\nmodel = false\nresidual = false\n" +
                  extra);
   return cfg;
 }
@@ -153,7 +185,7 @@ std::string make_multiband_survey(const std::string& dir, const std::string& ext
              "[survey]\nname = lanternfish\ntiles = tiles/*.fits\noutput = out\n"
              "catalogue = lanternfish.components.csv\nworkers = 2\n"
              "bands = _900MHz,_1400MHz,_3000MHz\ndetection_band = _1400MHz\n"
-             "[output]\nformats = csv\nmaps = false\nmodel = false\nresidual = false\n"
+             "[output]\nformats = csv\nmodel = false\nresidual = false\n"
              "[maps]\nenabled = false\n" +
                  extra);
   return cfg;

@@ -14,6 +14,9 @@ namespace skerry::testing {
 using test::RunResult;
 /// Runs SKERRY_BINARY with `args`; stdout and stderr captured.
 using test::run_skerry;
+/// Runs SKERRY_BINARY with a file-size limit (RLIMIT_FSIZE, as `ulimit -f`) of
+/// `fsize_bytes`; the exit code is 128 + signal when a signal ended it.
+RunResult run_skerry_limited(const std::vector<std::string>& args, long long fsize_bytes);
 /// Starts SKERRY_BINARY in the background; returns its PID (stdout/stderr to files in `log_dir`).
 int start_skerry(const std::vector<std::string>& args, const std::string& log_dir);
 /// Waits for a PID started by start_skerry; returns its exit code (128 + signal).

@@ -2,24 +2,34 @@
 /// Survey merge: one catalogue from many overlapping tiles.
 ///
 /// Three pure pieces, no files, no command line:
-///  1. Tile cells. A component is kept only by the tile in whose cell it lies;
-///     the cell of tile i is the set of sky points nearer tile i's centre than
-///     any other tile's centre (great-circle distance; ties go to the lower tile
-///     index). This is a spherical Voronoi partition: deterministic, and decided
-///     for each component alone, so it is the same in every sky partition. It
-///     never keeps "the highest signal-to-noise duplicate", which would prefer
-///     upward noise fluctuations.
+///  1. Ownership by measurement quality. Each sky position belongs to the tile
+///     with the lowest local noise there among the tiles with valid data there
+///     (TileNoise: the tile's rms map on HEALPix cells; ties go to the lower
+///     tile index). Without noise maps the local noise is replaced by the
+///     angular distance from the tile centre (the primary-beam response of a
+///     circular beam falls monotonically with it), which makes the owner the
+///     nearest tile centre. Each component gets a rank key (owned by its tile
+///     first, then the local noise of its own tile at its position, tile index,
+///     row); a component is kept unless a component of another tile within the
+///     match radius has a better key. So a source detected by its owner is kept
+///     from the owner; a source the owner missed (blank there, or below its
+///     threshold) is kept from the lowest-noise tile that detected it and marked
+///     `rescued`; every other copy is counted as a duplicate removed. The rule
+///     looks only at components within one match radius, so it is the same in
+///     every sky partition. It never keeps "the highest signal-to-noise copy",
+///     which would prefer upward noise fluctuations.
 ///  2. Sky partitions. The sky is cut into HEALPix pixels (NESTED scheme,
 ///     Gorski et al. 2005, ApJ 622, 759; REF-HEALPIX-01) at `partition_order`.
 ///     Each partition holds the components whose position lies in it ("home")
 ///     plus every component within an overlap margin of it, and is processed
-///     independently: cell selection, a self-match of the kept components as a
-///     check (pairs from different tiles closer than the match radius are
-///     counted, never removed), and designations with their collision suffixes.
-///     The partitions are concatenated in pixel order. Within a partition rows
-///     are sorted by (NESTED index at order 29, RA, Dec, tile, row); since a
-///     NESTED pixel at any order is a contiguous range of order-29 indices, the
-///     concatenation is the same catalogue for every partition order.
+///     independently: ownership and duplicate removal, a self-match of the kept
+///     components as a check (pairs from different tiles closer than the match
+///     radius are counted; zero by construction), and designations with their
+///     collision suffixes. The partitions are concatenated in pixel order.
+///     Within a partition rows are sorted by (NESTED index at order 29, RA, Dec,
+///     tile, row); since a NESTED pixel at any order is a contiguous range of
+///     order-29 indices, the concatenation is the same catalogue for every
+///     partition order.
 ///  3. Designations in the IAU-recommended style, PREFIX JHHMMSS.s+DDMMSS, from
 ///     the position truncated, never rounded (IAU Commission 5 "Specifications
 ///     concerning designations for astronomical radiation sources", common
@@ -70,15 +80,42 @@ struct TileComponent {
   std::int64_t row = 0;   ///< row in the tile's own catalogue (0-based)
 };
 
+/// One tile's local noise on HEALPix cells (NESTED at `order`): the median of
+/// the tile's rms map [Jy/beam] over the map pixels with valid data whose centres
+/// lie in the cell. A position whose cell is absent has no valid data of the
+/// tile. An empty map (order < 0) has no valid data anywhere.
+struct TileNoise {
+  int order = -1;
+  std::vector<std::int64_t> cells;  ///< sorted, unique
+  std::vector<double> rms;          ///< per cell, finite and > 0 [Jy/beam]
+  /// A cap holding every cell (set by make_tile_noise): a quick test before
+  /// the cell look-up.
+  double cap_ra_deg = 0.0, cap_dec_deg = 0.0, cap_radius_deg = -1.0;
+};
+
+/// Builds a TileNoise from (cell, rms) pairs in any order (validate()d; the cap
+/// computed). Throws std::invalid_argument.
+TileNoise make_tile_noise(int order, std::vector<std::pair<std::int64_t, double>> cells);
+
+/// The tile's local noise at a position given by its sort key (sky_sort_key)
+/// [Jy/beam]; +infinity where the tile has no valid data.
+double local_noise(const TileNoise& noise, std::int64_t sort_key);
+
+/// Throws std::invalid_argument when the cells are not sorted and unique, a
+/// value is not finite and positive, or the order is outside -1..29.
+void validate(const TileNoise& noise);
+
 struct MergeOptions {
   /// HEALPix order of the sky partitions (N_side = 2^order, 12 N_side^2 pixels).
   /// The result does not depend on it; memory per partition does.
   int partition_order = 4;
   /// Self-match radius of the duplicate check [arcsec].
   double match_radius_arcsec = 5.0;
-  /// Overlap margin of each partition, in match radii (>= 1). The margin is at
-  /// least 2 arcsec too, so that every component sharing a designation with a
-  /// home component is present (one designation spans < 1.9 arcsec).
+  /// Overlap margin of each partition, in match radii (>= 2: whether a
+  /// neighbour of a home component is kept depends on its own neighbours). The
+  /// margin is at least 2 arcsec + one radius too, so that every component
+  /// sharing a designation with a home component is present with its
+  /// neighbours (one designation spans < 1.9 arcsec).
   double margin_match_radii = 3.0;
   /// Designation prefix (our invented survey: "SKDC").
   std::string designation_prefix = "SKDC";
@@ -100,18 +137,26 @@ struct PartitionResult {
   std::int64_t pixel = 0;
   std::vector<TileComponent> kept;   ///< in catalogue order
   std::vector<std::string> names;    ///< designation (+ collision suffix) per kept row
+  /// Per kept row: 1 when its tile does not own its position (no owner's copy
+  /// within the match radius; kept from the best tile that detected it).
+  std::vector<char> rescued;
   std::size_t home_rows = 0;         ///< home components seen
-  std::size_t dropped_by_cell = 0;   ///< home components outside their tile's cell
+  /// Home components not kept: a component of another tile within the match
+  /// radius ranks better (the same source measured better).
+  std::size_t duplicates_removed = 0;
+  std::size_t rescued_rows = 0;      ///< kept home rows marked rescued
   /// Pairs of kept components from different tiles closer than the match radius
-  /// (each pair counted once, by the partition of the earlier one): duplicates
-  /// that cell selection left. Zero for tiles that overlap and agree on positions.
+  /// (each pair counted once, by the partition of the earlier one): a check,
+  /// zero by construction of the rule.
   std::size_t residual_duplicate_pairs = 0;
   std::size_t name_collisions = 0;   ///< kept rows that needed a suffix
 };
 
 /// Processes one partition. Pure and independent of every other partition.
+/// `noise` is empty (ownership by the nearest tile centre) or holds one map per
+/// tile centre.
 PartitionResult merge_partition(const PartitionInput& input, const std::vector<SkyPoint>& tile_centres,
-                                const MergeOptions& options);
+                                const MergeOptions& options, const std::vector<TileNoise>& noise = {});
 
 /// Scatter: the partition pixels (sorted, unique) a component belongs to, its
 /// home pixel and every pixel that overlaps the margin disc around it (a
@@ -130,8 +175,10 @@ std::int64_t home_partition(std::int64_t sort_key, const MergeOptions& options);
 struct MergeResult {
   std::vector<TileComponent> kept;   ///< catalogue order
   std::vector<std::string> names;
+  std::vector<char> rescued;         ///< per kept row
   std::size_t input_rows = 0;
-  std::size_t dropped_by_cell = 0;
+  std::size_t duplicates_removed = 0;
+  std::size_t rescued_rows = 0;
   std::size_t residual_duplicate_pairs = 0;
   std::size_t name_collisions = 0;
   std::size_t partitions = 0;        ///< non-empty partitions processed
@@ -141,6 +188,7 @@ struct MergeResult {
 /// (in parallel, oneTBB), concatenate in pixel order. Byte-identical results
 /// for every thread count and every partition order.
 MergeResult merge_components(const std::vector<TileComponent>& components,
-                             const std::vector<SkyPoint>& tile_centres, const MergeOptions& options);
+                             const std::vector<SkyPoint>& tile_centres, const MergeOptions& options,
+                             const std::vector<TileNoise>& noise = {});
 
 }  // namespace skerry::survey
