@@ -263,8 +263,8 @@ document.getElementById('vw-ov').onchange=function(e){V.ov=e.target.checked;draw
 Array.prototype.forEach.call(document.querySelectorAll('.vw-layer'),function(b){b.onclick=function(){V.k=+b.getAttribute('data-k');
  Array.prototype.forEach.call(document.querySelectorAll('.vw-layer'),function(o){o.classList.toggle('on',o===b);});
  D.layers.forEach(function(L,k){document.getElementById('vw-cbar-'+L.key).hidden=(k!==V.k);});draw();};});
-Array.prototype.forEach.call(document.querySelectorAll('[data-goto]'),function(b){b.onclick=function(){var p=b.getAttribute('data-goto').split(',');
- V.x=+p[0];V.y=+p[1];V.s=+p[2];V.sel=+p[3];show(V.sel);draw();document.getElementById('viewer').scrollIntoView();};});
+document.addEventListener('click',function(e){var b=e.target.closest?e.target.closest('[data-goto]'):null;if(!b)return;var p=b.getAttribute('data-goto').split(',');
+ V.x=+p[0];V.y=+p[1];V.s=+p[2];V.sel=+p[3];show(V.sel);draw();document.getElementById('viewer').scrollIntoView();});
 window.addEventListener('resize',draw);
 window.skerryViewer={state:function(){return {layer:D.layers[V.k].key,x:V.x,y:V.y,zoom:V.s,selected:V.sel};},
  view:function(x,y,s){V.x=x;V.y=y;V.s=s;draw();},toScreen:function(X,Y){return [SX(X),SY(Y)];},comps:D.comps};
