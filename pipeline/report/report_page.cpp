@@ -108,7 +108,7 @@ struct Run {
 std::string find_name(const fs::path& dir, const std::string& wanted) {
   if (!wanted.empty()) return wanted;
   std::vector<std::string> names;
-  for (const char* suffix : {".run.json", ".components.csv", ".components.fits", ".rms.fits"}) {
+  for (const char* suffix : {rn::kRunRecord, rn::kComponentsCsv, rn::kComponentsFits, rn::kRmsMap}) {
     const std::string sfx = suffix;
     for (const auto& e : fs::directory_iterator(dir)) {
       const std::string f = e.path().filename().string();
@@ -141,8 +141,8 @@ ReportResult write_report(const ReportOptions& opt) {
   auto P = [&](const std::string& suffix) { return (dir / (N + suffix)).string(); };
 
   // ---- run record
-  if (fs::exists(P(".run.json"))) {
-    std::ifstream in(P(".run.json"));
+  if (fs::exists(P(rn::kRunRecord))) {
+    std::ifstream in(P(rn::kRunRecord));
     try {
       run.record = nlohmann::json::parse(in);
       run.have_record = true;
@@ -160,7 +160,7 @@ ReportResult write_report(const ReportOptions& opt) {
   // ---- catalogue
   Table comps;
   bool have_comps = false;
-  for (const char* ext : {".components.csv", ".components.fits", ".components.vot"}) {
+  for (const char* ext : {rn::kComponentsCsv, rn::kComponentsFits, rn::kComponentsVot}) {
     if (!fs::exists(P(ext))) continue;
     comps = read_table(P(ext));
     have_comps = true;
@@ -171,8 +171,8 @@ ReportResult write_report(const ReportOptions& opt) {
   res.n_components = have_comps ? comps.rows() : 0;
   if (have_comps && comps.rows() == 0) res.missing.push_back("the component catalogue " + N + ".components.csv is empty: nothing was detected above the threshold");
   Table sources;
-  bool have_sources = fs::exists(P(".sources.csv"));
-  if (have_sources) sources = read_table(P(".sources.csv"));
+  bool have_sources = fs::exists(P(rn::kSourcesCsv));
+  if (have_sources) sources = read_table(P(rn::kSourcesCsv));
 
   // ---- component columns
   const auto s_int = column(comps, rn::kSInt), s_int_err = column(comps, rn::kSIntErr);
@@ -518,15 +518,18 @@ ReportResult write_report(const ReportOptions& opt) {
     for (auto& c : cuts) c.patch[2] = cut(residual->pixels, c.box);
   }
   progress.advance();
-  std::optional<SkyImage> model = read_map(rn::kModelMap);
-  if (model) for (auto& c : cuts) c.patch[1] = cut(model->pixels, c.box);
-  progress.advance();
-  std::optional<SkyImage> image;
   std::string image_path;
   if (run.have_record && run.record.contains("inputs"))
     for (const auto& in : run.record["inputs"])
       if (in.value("role", "") == "image") image_path = in.value("path", "");
-  if (!image_path.empty() && fs::exists(image_path)) {
+  const bool image_file = !image_path.empty() && fs::exists(image_path);
+  if (image_file) residual.reset();  // not needed to rebuild the image: one map in memory at a time
+  std::optional<SkyImage> model = read_map(rn::kModelMap);
+  if (model) for (auto& c : cuts) c.patch[1] = cut(model->pixels, c.box);
+  if (image_file) model.reset();
+  progress.advance();
+  std::optional<SkyImage> image;
+  if (image_file) {
     try {
       image = read_sky_image(image_path, ro);
       if (geom && (image->pixels.cols() != W || image->pixels.rows() != H)) {
@@ -628,11 +631,11 @@ ReportResult write_report(const ReportOptions& opt) {
   // Counting rule (modules/quality, count_flux_jy): an unresolved component counts by its
   // peak, a resolved one by S_int, a source by the sum over its components. A catalogue
   // without the resolved column (not written by extract) counts by S_int.
-  const bool have_rule = comps.find("resolved") != nullptr;
+  const bool have_rule = comps.find(rn::kResolved) != nullptr;
   const std::vector<double> comp_count_flux = have_rule ? count_flux_jy(s_peak, s_int, resolved) : s_int;
-  const bool by_source = have_sources && comps.find("source_id") && sources.find("source_id");
+  const bool by_source = have_sources && comps.find(rn::kSourceId) && sources.find(rn::kSourceId);
   const std::vector<double> count_flux =
-      by_source ? sum_by_group(comp_count_flux, column(comps, "source_id"), column(sources, "source_id")) : comp_count_flux;
+      by_source ? sum_by_group(comp_count_flux, column(comps, rn::kSourceId), column(sources, rn::kSourceId)) : comp_count_flux;
   std::size_t n_counted = 0;
   for (double s : count_flux) if (std::isfinite(s) && s > 0) ++n_counted;
   if (n_counted == 0) {
@@ -731,12 +734,12 @@ ReportResult write_report(const ReportOptions& opt) {
   }
 
   // ---- completeness and reliability (from skerry completeness, when run into this folder)
-  const bool have_compl = fs::exists(P(".completeness.csv")), have_rel = fs::exists(P(".reliability.csv"));
+  const bool have_compl = fs::exists(P(rn::kCompletenessCsv)), have_rel = fs::exists(P(rn::kReliabilityCsv));
   double compl90_jy = kNaN;
   section("quality", "Completeness and reliability");
   if (have_compl) {
-    const Table t = read_table(P(".completeness.csv"));
-    const auto var = t.find("variable");
+    const Table t = read_table(P(rn::kCompletenessCsv));
+    const auto var = t.find(rn::kCompletenessBinnedBy);
     const auto x = column(t, "centre"), f = column(t, "completeness"), lo = column(t, "completeness_lo"),
                hi = column(t, "completeness_hi"), ratio = column(t, "mean_flux_ratio"), nn = column(t, "n_injected");
     Series cf{SeriesKind::ErrorPoints, {}, {}, {}, {}, col::kBlue, "", 3.5, 1.6, false};
@@ -795,9 +798,9 @@ ReportResult write_report(const ReportOptions& opt) {
          << "</code> to add it.</p>\n";
   }
   if (have_rel) {
-    const Table t = read_table(P(".reliability.csv"));
+    const Table t = read_table(P(rn::kReliabilityCsv));
     const auto x = column(t, "snr_centre"), f = column(t, "reliability"), lo = column(t, "reliability_lo"),
-               hi = column(t, "reliability_hi"), fdr = column(t, "false_detection_rate");
+               hi = column(t, "reliability_hi"), fdr = column(t, rn::kNegToPos);
     Series rs{SeriesKind::ErrorPoints, x, f, lo, hi, col::kGreen, "reliability", 3.5, 1.6, false};
     Series fs_{SeriesKind::Points, x, fdr, {}, {}, col::kVermillion, "false detection rate", 3.5, 1.6, false};
     Plot a;
@@ -818,7 +821,7 @@ ReportResult write_report(const ReportOptions& opt) {
   // ---- cross-match
   for (const auto& e : fs::directory_iterator(dir)) {
     const std::string f = e.path().filename().string();
-    const std::string sfx = ".match_summary.json";
+    const std::string sfx = rn::kMatchSummary;
     if (f.size() <= sfx.size() || f.compare(f.size() - sfx.size(), sfx.size(), sfx) != 0) continue;
     const std::string base = f.substr(0, f.size() - sfx.size());
     nlohmann::json js;
@@ -830,8 +833,8 @@ ReportResult write_report(const ReportOptions& opt) {
     for (const std::string& pre : {N + ".components_", N + "_"})
       if (other.size() > pre.size() && other.compare(0, pre.size(), pre) == 0) { other = other.substr(pre.size()); break; }
     section("match-" + base, "Cross-match with " + other);
-    if (fs::exists(dir / (base + ".matches.csv"))) {
-      const Table m = read_table((dir / (base + ".matches.csv")).string());
+    if (fs::exists(dir / (base + rn::kMatches))) {
+      const Table m = read_table((dir / (base + rn::kMatches)).string());
       const auto sep = column(m, "sep_arcsec"), pa = column(m, "pa_deg");
       std::vector<double> de, dn, ed, c;
       for (std::size_t i = 0; i < m.rows(); ++i) {
@@ -865,7 +868,7 @@ ReportResult write_report(const ReportOptions& opt) {
   // ---- spectra
   for (const auto& e : fs::directory_iterator(dir)) {
     const std::string f = e.path().filename().string();
-    const std::string sfx = ".spectra.csv";
+    const std::string sfx = rn::kSpectra;
     if (f.size() <= sfx.size() || f.compare(f.size() - sfx.size(), sfx.size(), sfx) != 0) continue;
     const Table t = read_table(e.path().string());
     const auto alpha = column(t, "alpha");
@@ -1023,7 +1026,7 @@ ReportResult write_report(const ReportOptions& opt) {
   }
   html << "</section>\n" << body.str() << "</main></body></html>\n";
 
-  res.path = opt.output.empty() ? P(".report.html") : opt.output;
+  res.path = opt.output.empty() ? P(rn::kReportHtml) : opt.output;
   write_text_atomic(res.path, html.str());
   return res;
 }

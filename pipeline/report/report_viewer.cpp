@@ -84,6 +84,7 @@ ViewerLayer build_layer(const ImageF& image, const std::string& key, const std::
     const long ntx = (w + T - 1) / T, nty = (h + T - 1) / T;
     for (long ty = 0; ty < nty; ++ty)
       for (long tx = 0; tx < ntx; ++tx) {
+        if (l > 0 && l < L.complete_from) continue;  // between full resolution and the overview: nothing (the viewer draws level 0 there)
         if (l < L.complete_from) {
           // Sparse level: kept when it covers a wanted level-0 tile. Picture extent of the
           // tile: x [tx T f, (tx+1) T f), y [oy + ty T f, oy + (ty+1) T f), oy = H - h f.
@@ -227,6 +228,7 @@ function level(L,l){var f=1<<l,T=D.T,lh=Math.ceil(D.H/f),oy=D.H-lh*f,missing=0,x
 function draw(){size();var L=D.layers[V.k];cx.fillStyle='#6d6d6d';cx.fillRect(0,0,cv.width,cv.height);cx.imageSmoothingEnabled=V.s<1;
  var want=Math.max(0,Math.min(L.n-1,Math.floor(Math.log2(1/V.s)+1e-9))),shown=L.cf,miss=0;level(L,L.cf);
  for(var l=L.cf-1;l>=want;l--){var m=level(L,l);if(l===want)miss=m;shown=l;}
+ if(want>0&&want<L.cf)level(L,0);
  if(V.ov)overlay();compass();
  var px=V.s>=1?V.s.toFixed(1)+' screen px per map pixel':(1/V.s).toFixed(1)+' map pixels per screen px';
  st.textContent=L.title+' \u00b7 '+px+' \u00b7 '+(want<L.cf&&miss>0?L.note:'level '+shown+' ('+(1<<shown)+'\u00d7'+(1<<shown)+' map pixels per tile pixel)');

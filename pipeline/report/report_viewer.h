@@ -21,8 +21,10 @@ struct PixBox {
 
 /// One map of the viewer: levels of a 2x pyramid, each a set of square tiles.
 /// Level 0 is full resolution. Levels from `complete_from` up are complete;
-/// finer ones hold only the tiles that meet a box of `detail` (islands), as far
-/// as the pixel budget allows.
+/// level 0 holds only the tiles that meet a box of `detail` (islands), as far as
+/// the pixel budget allows, and the levels between hold nothing (a sparse tile of
+/// a coarser level would cover up to as many pixels as the full-resolution tiles
+/// under it, doubling the page for each level; the browser scales level 0 down).
 struct ViewerLayer {
   std::string key, title, unit;  ///< key: "image", "residual", "rms"
   std::string colour_bar;        ///< <svg> colour bar
