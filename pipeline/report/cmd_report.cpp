@@ -19,7 +19,7 @@ int run_report(const std::vector<std::string>& args) {
       ("run_dir", po::value<std::string>(), "run folder written by skerry extract")
       ("report.name", po::value<std::string>()->default_value(""), "NAME of the run in the folder; default: the only one")
       ("report.thumbnail_px", po::value<int>()->default_value(1024), "longer side of the map viewer's whole-map level [pixels]")
-      ("report.detail_pixels", po::value<long>()->default_value(2000000), "full-resolution map pixels embedded per map at most, around islands (brightest first) [pixels]")
+      ("report.detail_pixels", po::value<long>()->default_value(1000000), "full-resolution map pixels embedded per map at most, around islands (brightest first) [pixels]")
       ("report.count_bins_per_decade", po::value<int>()->default_value(5), "source-count bins per decade of flux density")
       ("report.output", po::value<std::string>()->default_value(""), "page file; default RUN_DIR/NAME.report.html");
   ParsedOptions p = parse_options("report", "RUN_DIR [options]", desc, {{"run_dir", 1}}, args);

@@ -12,7 +12,7 @@ struct ReportOptions {
   std::string run_dir;        ///< folder with NAME.run.json, NAME.components.csv, ...
   std::string name;           ///< NAME; "" = the single NAME.run.json (or NAME.components.csv) found
   int thumbnail_px = 1024;    ///< longer side of the viewer's complete overview level [px]
-  long detail_pixels = 2000000;  ///< full-resolution pixels embedded per map at most (around islands)
+  long detail_pixels = 1000000;  ///< full-resolution pixels embedded per map at most (around islands)
   int count_bins_per_decade = 5;
   std::string output;         ///< page path; "" = RUN_DIR/NAME.report.html
 };

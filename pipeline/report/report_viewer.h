@@ -39,7 +39,7 @@ struct ViewerLayer {
 struct ViewerOptions {
   int tile_px = 128;               ///< tile side [pixels of its level]: small, so that full resolution is spent near islands
   int overview_px = 1024;          ///< levels are complete while their longer side is at most this
-  long detail_budget_px = 2000000; ///< level-0 pixels embedded at most per map (where there are islands)
+  long detail_budget_px = 1000000; ///< level-0 pixels embedded at most per map (where there are islands)
   int zlib_level = 6;
 };
 
