@@ -18,7 +18,8 @@ int run_report(const std::vector<std::string>& args) {
   desc.add_options()
       ("run_dir", po::value<std::string>(), "run folder written by skerry extract")
       ("report.name", po::value<std::string>()->default_value(""), "NAME of the run in the folder; default: the only one")
-      ("report.thumbnail_px", po::value<int>()->default_value(620), "longer side of the image thumbnails [pixels]")
+      ("report.thumbnail_px", po::value<int>()->default_value(1024), "longer side of the map viewer's whole-map level [pixels]")
+      ("report.detail_pixels", po::value<long>()->default_value(1000000), "full-resolution map pixels embedded per map at most, around islands (brightest first) [pixels]")
       ("report.count_bins_per_decade", po::value<int>()->default_value(5), "source-count bins per decade of flux density")
       ("report.output", po::value<std::string>()->default_value(""), "page file; default RUN_DIR/NAME.report.html");
   ParsedOptions p = parse_options("report", "RUN_DIR [options]", desc, {{"run_dir", 1}}, args);
@@ -29,8 +30,11 @@ int run_report(const std::vector<std::string>& args) {
   o.name = p.vm["report.name"].as<std::string>();
   o.thumbnail_px = p.vm["report.thumbnail_px"].as<int>();
   o.count_bins_per_decade = p.vm["report.count_bins_per_decade"].as<int>();
+  o.detail_pixels = p.vm["report.detail_pixels"].as<long>();
   o.output = p.vm["report.output"].as<std::string>();
   require(o.thumbnail_px >= 64 && o.thumbnail_px <= 4096, "report.thumbnail_px", std::to_string(o.thumbnail_px), "64 <= value <= 4096");
+  require(o.detail_pixels >= 0 && o.detail_pixels <= 400000000L, "report.detail_pixels", std::to_string(o.detail_pixels),
+          "0 <= value <= 400000000");
   require(o.count_bins_per_decade >= 1 && o.count_bins_per_decade <= 50, "report.count_bins_per_decade",
           std::to_string(o.count_bins_per_decade), "1 <= value <= 50");
   const ReportResult r = write_report(o);

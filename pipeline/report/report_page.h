@@ -1,6 +1,6 @@
 #pragma once
-/// The run report: one self-contained static HTML page (no scripts, no network;
-/// images embedded as data: URIs) summarising a run folder written by
+/// The run report: one self-contained HTML page (no network; images embedded as
+/// data: URIs; one small inline script for the zoomable map viewer) summarising a run folder written by
 /// `skerry extract` (and, where present, `skerry match`, `skerry bands` and
 /// `skerry completeness` outputs placed in the same folder).
 #include <string>
@@ -11,7 +11,8 @@ namespace skerry {
 struct ReportOptions {
   std::string run_dir;        ///< folder with NAME.run.json, NAME.components.csv, ...
   std::string name;           ///< NAME; "" = the single NAME.run.json (or NAME.components.csv) found
-  int thumbnail_px = 620;     ///< longer side of the image thumbnails [px]
+  int thumbnail_px = 1024;    ///< longer side of the viewer's complete overview level [px]
+  long detail_pixels = 1000000;  ///< full-resolution pixels embedded per map at most (around islands)
   int count_bins_per_decade = 5;
   std::string output;         ///< page path; "" = RUN_DIR/NAME.report.html
 };

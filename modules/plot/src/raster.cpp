@@ -5,6 +5,7 @@
 #include <cmath>
 #include <cstdio>
 #include <cstring>
+#include <limits>
 #include <sstream>
 #include <stdexcept>
 
@@ -65,11 +66,18 @@ double Stretch::from_unit(double t) const {
   return vmin + t * (vmax - vmin);
 }
 
-Stretch auto_stretch(const ImageF& image, bool symmetric, bool linear) {
+std::vector<float> sample_pixels(const ImageF& image, std::size_t max_samples) {
+  const std::size_t n = static_cast<std::size_t>(image.size());
+  const std::size_t stride = std::max<std::size_t>(1, (n + max_samples - 1) / std::max<std::size_t>(max_samples, 1));
   std::vector<float> v;
-  v.reserve(static_cast<std::size_t>(image.size()));
-  for (Eigen::Index i = 0; i < image.size(); ++i)
+  v.reserve(std::min(n, max_samples));
+  for (std::size_t i = 0; i < n; i += stride)
     if (std::isfinite(image.data()[i])) v.push_back(image.data()[i]);
+  return v;
+}
+
+Stretch auto_stretch(const ImageF& image, bool symmetric, bool linear) {
+  std::vector<float> v = sample_pixels(image);
   Stretch s;
   if (v.empty()) return s;
   if (symmetric) {
@@ -121,6 +129,78 @@ Raster thumbnail(const ImageF& image, const Stretch& stretch, ColourMap map, int
     }
   }
   return r;
+}
+
+IndexedRaster index_block(const ImageF& image, long x0, long y0, long w, long h, const Stretch& stretch) {
+  IndexedRaster r;
+  const long nx = image.cols(), ny = image.rows();
+  const long xa = std::max(0L, x0), ya = std::max(0L, y0), xb = std::min(nx, x0 + w), yb = std::min(ny, y0 + h);
+  if (xb <= xa || yb <= ya) return r;
+  r.width = static_cast<int>(xb - xa);
+  r.height = static_cast<int>(yb - ya);
+  r.idx.resize(static_cast<std::size_t>(r.width) * static_cast<std::size_t>(r.height));
+  for (long y = ya; y < yb; ++y) {
+    std::uint8_t* row = &r.idx[static_cast<std::size_t>(yb - 1 - y) * static_cast<std::size_t>(r.width)];
+    for (long x = xa; x < xb; ++x) {
+      const float v = image(y, x);
+      row[x - xa] = std::isfinite(v) ? static_cast<std::uint8_t>(std::lround(254.0 * stretch.to_unit(v))) : kNoDataIndex;
+    }
+  }
+  return r;
+}
+
+ImageF halve(const ImageF& image) {
+  const long ny = image.rows(), nx = image.cols();
+  ImageF o((ny + 1) / 2, (nx + 1) / 2);
+  for (long y = 0; y < o.rows(); ++y)
+    for (long x = 0; x < o.cols(); ++x) {
+      double s = 0;
+      int n = 0;
+      for (long yy = 2 * y; yy < std::min(ny, 2 * y + 2); ++yy)
+        for (long xx = 2 * x; xx < std::min(nx, 2 * x + 2); ++xx) {
+          const float v = image(yy, xx);
+          if (std::isfinite(v)) { s += v; ++n; }
+        }
+      o(y, x) = n ? static_cast<float>(s / n) : std::numeric_limits<float>::quiet_NaN();
+    }
+  return o;
+}
+
+std::vector<std::uint8_t> encode_png_indexed(const IndexedRaster& raster, ColourMap map, int zlib_level) {
+  if (raster.width <= 0 || raster.height <= 0 ||
+      raster.idx.size() != static_cast<std::size_t>(raster.width) * static_cast<std::size_t>(raster.height))
+    throw std::runtime_error("encode_png_indexed: raster size does not match its pixels");
+  std::vector<std::uint8_t> out;
+  png_structp png = png_create_write_struct(PNG_LIBPNG_VER_STRING, nullptr, png_error_fn, png_warn_fn);
+  if (!png) throw std::runtime_error("libpng: cannot create a write struct");
+  png_infop info = png_create_info_struct(png);
+  if (!info) { png_destroy_write_struct(&png, nullptr); throw std::runtime_error("libpng: cannot create an info struct"); }
+  try {
+    png_set_write_fn(png, &out, [](png_structp p, png_bytep data, png_size_t len) {
+      auto* v = static_cast<std::vector<std::uint8_t>*>(png_get_io_ptr(p));
+      v->insert(v->end(), data, data + len);
+    }, nullptr);
+    png_set_compression_level(png, std::clamp(zlib_level, 1, 9));
+    png_set_IHDR(png, info, static_cast<png_uint_32>(raster.width), static_cast<png_uint_32>(raster.height), 8,
+                 PNG_COLOR_TYPE_PALETTE, PNG_INTERLACE_NONE, PNG_COMPRESSION_TYPE_DEFAULT, PNG_FILTER_TYPE_DEFAULT);
+    png_color pal[256];
+    for (int i = 0; i < 255; ++i) {
+      std::uint8_t c[3];
+      colour_at(map, i / 254.0, c);
+      pal[i] = {c[0], c[1], c[2]};
+    }
+    pal[kNoDataIndex] = {128, 128, 128};
+    png_set_PLTE(png, info, pal, 256);
+    png_write_info(png, info);
+    for (int y = 0; y < raster.height; ++y)
+      png_write_row(png, const_cast<png_bytep>(&raster.idx[static_cast<std::size_t>(y) * static_cast<std::size_t>(raster.width)]));
+    png_write_end(png, nullptr);
+  } catch (...) {
+    png_destroy_write_struct(&png, &info);
+    throw;
+  }
+  png_destroy_write_struct(&png, &info);
+  return out;
 }
 
 std::vector<std::uint8_t> encode_png(const Raster& raster) {
@@ -192,7 +272,8 @@ std::string base64(const std::vector<std::uint8_t>& b) {
 
 std::string colour_bar_svg(const Stretch& s, ColourMap map, const std::string& unit_label, double value_scale,
                            int width_px) {
-  const int W = width_px, H = 52, x0 = 10, x1 = W - 10, bh = 14;
+  // Side margins wide enough for a centred end label such as "-0.015" (no clipping).
+  const int W = width_px, H = 52, x0 = 30, x1 = W - 30, bh = 14;
   std::ostringstream o;
   o << "<svg xmlns=\"http://www.w3.org/2000/svg\" class=\"colourbar\" width=\"" << W << "\" height=\"" << H
     << "\" viewBox=\"0 0 " << W << ' ' << H << "\" font-family=\"DejaVu Sans, Verdana, sans-serif\" font-size=\"11\">\n";

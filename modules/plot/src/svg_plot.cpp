@@ -137,7 +137,11 @@ std::string tick_label(double v) {
 
 std::string render_svg(const Plot& p) {
   const double W = p.width_px, H = p.height_px;
-  const double ml = 70, mr = 18, mt = p.title.empty() ? 16 : 34, mb = 52;
+  // The note and the legend sit in a band above the plot area, never over the data.
+  bool has_legend = false;
+  for (const Series& s : p.series) has_legend = has_legend || !s.label.empty();
+  const double band = (has_legend || !p.note.empty()) ? 20 : 0;
+  const double ml = 70, mr = 18, mt = (p.title.empty() ? 16 : 34) + band, mb = 52;
   double xlo, xhi, ylo, yhi;
   data_range(p, true, p.x_log, xlo, xhi);
   data_range(p, false, p.y_log, ylo, yhi);
@@ -236,22 +240,25 @@ std::string render_svg(const Plot& p) {
     o << "<text class=\"nodata\" x=\"" << num((ml + W - mr) / 2) << "\" y=\"" << num((mt + H - mb) / 2)
       << "\" text-anchor=\"middle\" font-size=\"15\" fill=\"#888\">no data</text>\n";
   if (!p.note.empty())
-    o << "<text class=\"note\" x=\"" << num(ml + 8) << "\" y=\"" << num(mt + 16) << "\" fill=\"#333\">"
+    o << "<text class=\"note\" x=\"" << num(ml) << "\" y=\"" << num(mt - 8) << "\" fill=\"#333\">"
       << xml_escape(p.note) << "</text>\n";
-  // Legend (top right).
-  double ly = mt + 14;
-  for (const Series& s : p.series) {
+  // Legend: right-aligned entries in the band above the plot area.
+  double lx = W - mr;
+  for (auto it = p.series.rbegin(); it != p.series.rend(); ++it) {
+    const Series& s = *it;
     if (s.label.empty()) continue;
-    const double lx = W - mr - 10;
-    o << "<g class=\"legend\"><text x=\"" << num(lx - 22) << "\" y=\"" << num(ly + 4) << "\" text-anchor=\"end\" fill=\"#222\">"
+    const double ly = mt - 12;
+    o << "<g class=\"legend\"><text x=\"" << num(lx) << "\" y=\"" << num(ly + 4) << "\" text-anchor=\"end\" fill=\"#222\">"
       << xml_escape(s.label) << "</text>";
+    const double tw = 7.0 * static_cast<double>(s.label.size());  // ~ advance of a 12 px sans-serif character
+    const double sx = lx - tw - 22;
     if (s.kind == SeriesKind::Line)
-      o << "<line x1=\"" << num(lx - 18) << "\" y1=\"" << num(ly) << "\" x2=\"" << num(lx) << "\" y2=\"" << num(ly)
+      o << "<line x1=\"" << num(sx) << "\" y1=\"" << num(ly) << "\" x2=\"" << num(sx + 18) << "\" y2=\"" << num(ly)
         << "\" stroke=\"" << s.colour << "\" stroke-width=\"2\"" << (s.dashed ? " stroke-dasharray=\"6 4\"" : "") << "/>";
     else
-      o << "<rect x=\"" << num(lx - 14) << "\" y=\"" << num(ly - 5) << "\" width=\"10\" height=\"10\" fill=\"" << s.colour << "\"/>";
+      o << "<rect x=\"" << num(sx + 4) << "\" y=\"" << num(ly - 5) << "\" width=\"10\" height=\"10\" fill=\"" << s.colour << "\"/>";
     o << "</g>\n";
-    ly += 17;
+    lx = sx - 14;
   }
   o << "</svg>\n";
   return o.str();

@@ -113,18 +113,23 @@ double VisibilityArea::area_at(double rms) const {
 VisibilityArea visibility_area(const ImageF& rms, double pixel_area_sr, std::vector<double> rms_grid) {
   VisibilityArea v;
   std::sort(rms_grid.begin(), rms_grid.end());
-  std::vector<float> vals;
-  vals.reserve(static_cast<std::size_t>(rms.size()));
+  // One pass, no copy or sort of the map: each pixel is counted at the first grid
+  // value it does not exceed, then the counts are summed up the grid.
+  std::vector<float> gf(rms_grid.begin(), rms_grid.end());
+  std::vector<std::size_t> at(gf.size() + 1, 0);
+  std::size_t finite = 0;
   for (Eigen::Index i = 0; i < rms.size(); ++i) {
     const float r = rms.data()[i];
-    if (std::isfinite(r)) vals.push_back(r);
+    if (!std::isfinite(r)) continue;
+    ++finite;
+    ++at[static_cast<std::size_t>(std::lower_bound(gf.begin(), gf.end(), r) - gf.begin())];
   }
-  std::sort(vals.begin(), vals.end());
-  v.total_area_sr = static_cast<double>(vals.size()) * pixel_area_sr;
+  v.total_area_sr = static_cast<double>(finite) * pixel_area_sr;
   v.rms_jy_per_beam = rms_grid;
-  for (double g : rms_grid) {
+  std::size_t cnt = 0;
+  for (std::size_t k = 0; k < gf.size(); ++k) {
     // Pixels with rms <= g: an exact count (integer), times the pixel solid angle.
-    const auto cnt = std::upper_bound(vals.begin(), vals.end(), static_cast<float>(g)) - vals.begin();
+    cnt += at[k];
     v.area_sr.push_back(static_cast<double>(cnt) * pixel_area_sr);
   }
   return v;

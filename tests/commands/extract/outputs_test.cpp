@@ -204,8 +204,10 @@ TEST(Outputs, ResidualIsImageMinusModelWithTheBackgroundKept) {
   const RunResult rep = run_skerry({"report", tmp / "out"}, tmp.path());
   ASSERT_EQ(rep.code, 0) << rep.err;
   const std::string html = slurp(tmp / "out/field.report.html");
-  EXPECT_NE(html.find("Residual (image - model)"), std::string::npos);
-  EXPECT_NE(html.find("Image with fitted components"), std::string::npos) << "image not rebuilt from residual + model";
+  // The map viewer's buttons: one per map shown.
+  EXPECT_NE(html.find("id=\"vw-btn-residual\""), std::string::npos);
+  EXPECT_NE(html.find("id=\"vw-btn-image\""), std::string::npos) << "image not rebuilt from residual + model";
+  EXPECT_EQ(html.find("input image not found"), std::string::npos) << "image not rebuilt from residual + model";
 }
 
 TEST(Outputs, IdenticalForAnyThreadCount) {

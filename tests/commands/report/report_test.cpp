@@ -87,7 +87,10 @@ std::string ReportRun::html_;
 
 TEST_F(ReportRun, SelfContained) {
   ASSERT_FALSE(html_.empty());
-  EXPECT_EQ(html_.find("<script"), std::string::npos);  // no JavaScript at all
+  // One inline script (the map viewer) and its JSON data block; nothing loaded from elsewhere.
+  EXPECT_EQ(html_.find("<script src"), std::string::npos);
+  EXPECT_EQ(html_.find("<link"), std::string::npos);
+  EXPECT_NE(html_.find("id=\"vw-data\""), std::string::npos);
   EXPECT_EQ(html_.find("http://"), html_.find("http://www.w3.org/2000/svg"));  // only the SVG namespace name
   EXPECT_EQ(html_.find("https://"), std::string::npos);
   EXPECT_NE(html_.find("data:image/png;base64,"), std::string::npos);
@@ -112,9 +115,13 @@ TEST_F(ReportRun, CountsMatchDirectCountOfCatalogue) {
   const auto rows = html_table(html_, "counts-table");
   ASSERT_GE(rows.size(), 3u);
   std::size_t total = 0;
-  for (const auto& r : rows) {
+  for (auto r : rows) {
     ASSERT_EQ(r.size(), 8u);
     std::size_t n = 0;
+    // The table is in the plot's units: S in mJy, area in deg^2 (1 sr = (180/pi)^2 deg^2).
+    r[0] *= 1e-3;
+    r[1] *= 1e-3;
+    r[4] /= std::pow(180.0 / M_PI, 2);
     for (double v : f) if (v >= r[0] && v < r[1]) ++n;  // direct count in [lo, hi)
     EXPECT_EQ(static_cast<std::size_t>(r[3]), n) << "bin " << r[0];
     total += n;
@@ -122,7 +129,8 @@ TEST_F(ReportRun, CountsMatchDirectCountOfCatalogue) {
     if (r[4] == 0) {
       EXPECT_TRUE(std::isnan(r[5])) << "no visibility area: no value";  // sources below every pixel's threshold
     } else if (n > 0) {
-      EXPECT_NEAR(r[5], std::pow(std::sqrt(r[0] * r[1]), 2.5) * n / (r[4] * (r[1] - r[0])), 1e-5 * r[5]);
+      // Printed to 4 significant digits (area and value), 6 (edges).
+      EXPECT_NEAR(r[5], std::pow(std::sqrt(r[0] * r[1]), 2.5) * n / (r[4] * (r[1] - r[0])), 2e-3 * r[5]);
     }
   }
   EXPECT_GT(total, 50u);
@@ -137,15 +145,19 @@ TEST_F(ReportRun, VisibilityAreaMatchesRmsMap) {
   const double pix_sr = std::pow(1.5 / 206264.80624709636, 2);
   const auto rows = html_table(html_, "visibility-table");
   ASSERT_GE(rows.size(), 5u);
-  for (const auto& r : rows) {
+  for (auto r : rows) {
+    // The table is in the plot's units: mJy/beam and deg^2.
+    r[0] *= 1e-3;
+    r[1] /= std::pow(180.0 / M_PI, 2);
     std::size_t n = 0;
     for (Eigen::Index i = 0; i < rms.pixels.size(); ++i)
       if (std::isfinite(rms.pixels.data()[i]) && rms.pixels.data()[i] <= static_cast<float>(r[0])) ++n;
-    // 1e-4: the pixel area off the tangent point; one pixel: a pixel at the printed
-    // (rounded) rms value may fall on either side of it.
-    EXPECT_NEAR(r[1], n * pix_sr, 1e-4 * n * pix_sr + 1e-6 * r[1] + 1.01 * pix_sr) << "rms " << r[0];
+    // 1e-4: the pixel area off the tangent point; 1e-5: the area printed to 6 digits;
+    // a pixel count of 1e-5 of the map plus one: pixels at the printed (rounded to 6
+    // digits) rms value may fall on either side of it.
+    EXPECT_NEAR(r[1], n * pix_sr, 1e-4 * n * pix_sr + 1e-5 * r[1] + (1.01 + 1e-5 * rms.pixels.size()) * pix_sr) << "rms " << r[0];
   }
-  EXPECT_NEAR(rows.back()[1], static_cast<double>(rms.pixels.size()) * pix_sr, 1e-4 * rows.back()[1]);
+  EXPECT_NEAR(rows.back()[1] / std::pow(180.0 / M_PI, 2), static_cast<double>(rms.pixels.size()) * pix_sr, 1e-4 * rows.back()[1] / std::pow(180.0 / M_PI, 2));
 }
 
 TEST_F(ReportRun, RendersInHeadlessBrowser) {
@@ -168,7 +180,7 @@ TEST_F(ReportRun, RendersInHeadlessBrowser) {
   const Cmd dom = run(browser + flags + "--dump-dom file://" + page_.string(), dir_);
   ASSERT_EQ(dom.code, 0) << dom.err;
   // The browser parsed the page into the expected elements.
-  for (const char* id : {"img-image", "img-residual", "img-rms", "plot-counts", "plot-visibility", "plot-rms-hist",
+  for (const char* id : {"vw-canvas", "vw-btn-image", "vw-btn-residual", "vw-btn-rms", "gallery", "plot-counts", "plot-visibility", "plot-rms-hist",
                          "plot-ratio", "plot-fluxerr", "provenance", "counts-table"})
     EXPECT_NE(dom.out.find(std::string("id=\"") + id + "\""), std::string::npos) << id;
   EXPECT_NE(dom.out.find("</html>"), std::string::npos);

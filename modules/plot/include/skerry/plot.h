@@ -93,10 +93,16 @@ struct Stretch {
   double from_unit(double t) const;
 };
 
+/// At most `max_samples` finite pixels of `image` taken at a fixed stride
+/// (deterministic; all of them when there are fewer): the statistics of a display
+/// stretch do not need every pixel of a large map.
+std::vector<float> sample_pixels(const ImageF& image, std::size_t max_samples = 1u << 20);
+
 /// asinh stretch that shows faint emission: vmin = median - 2 sigma_robust,
 /// soft = sigma_robust, vmax = the 99.9th percentile (at least vmin + 20 soft).
 /// sigma_robust = 1.4826 MAD (common practice). `symmetric`: vmin = -vmax, linear
 /// (residual maps). Linear percentile stretch (0.5 %, 99.5 %) when `linear`.
+/// Quantiles from sample_pixels (2^20 pixels at most).
 Stretch auto_stretch(const ImageF& image, bool symmetric = false, bool linear = false);
 
 /// Thumbnail of `image` (row 0 of the image = bottom of the picture, FITS
@@ -111,6 +117,28 @@ std::vector<std::uint8_t> encode_png(const Raster& raster);
 /// Decode 8-bit RGB(A)/grey PNG bytes into an RGB raster (used by tests and
 /// checks). Throws std::runtime_error for bytes that are not a PNG.
 Raster decode_png(const std::vector<std::uint8_t>& bytes);
+
+/// 8-bit indexed raster, row 0 at the top: indices 0..254 are colour-map steps
+/// t = i / 254, index 255 is "no data" (drawn mid grey). One byte per pixel, so a
+/// PNG of it is about a third of the RGB one (zoomable maps in the report).
+struct IndexedRaster {
+  int width = 0, height = 0;
+  std::vector<std::uint8_t> idx;  ///< width * height
+};
+inline constexpr std::uint8_t kNoDataIndex = 255;
+
+/// The block (x0, y0, w, h) of `image` (0-based, y up; clipped to the image) as an
+/// indexed raster, flipped so that the picture has north-ish up (FITS row 0 at the
+/// bottom).
+IndexedRaster index_block(const ImageF& image, long x0, long y0, long w, long h, const Stretch& stretch);
+
+/// NaN-aware 2 x 2 block mean (odd edges averaged over what is there): one level
+/// of a multi-resolution pyramid, (rows+1)/2 x (cols+1)/2.
+ImageF halve(const ImageF& image);
+
+/// PNG bytes of an indexed raster with the palette of `map` (PNG colour type 3).
+/// `zlib_level` 1 (fast) .. 9 (small).
+std::vector<std::uint8_t> encode_png_indexed(const IndexedRaster& raster, ColourMap map, int zlib_level = 6);
 
 /// Base64 (RFC 4648) of bytes, for data: URIs.
 std::string base64(const std::vector<std::uint8_t>& bytes);
