@@ -191,7 +191,9 @@ void check_stage_settings(const SurveyConfig& cfg) {
     std::vector<std::string> args{exe, cmd};
     for (int i = 0; i < n_images; ++i) args.push_back((dir / ("empty" + std::to_string(i) + ".fits")).string());
     for (int i = 0; i < n_images; ++i) std::ofstream((dir / ("empty" + std::to_string(i) + ".fits")).string());
-    for (const std::string a : {"--config", ini.c_str(), "--out", (dir / "out").c_str(), "--threads", "1"})
+    const std::string out_dir = (dir / "out").string();
+    for (const std::string& a : {std::string("--config"), ini, std::string("--out"), out_dir, std::string("--threads"),
+                                 std::string("1")})
       args.push_back(a);
     std::vector<char*> argv;
     for (auto& a : args) argv.push_back(a.data());
