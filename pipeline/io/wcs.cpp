@@ -16,7 +16,6 @@
 #include <erfa.h>
 #include <Eigen/LU>
 #include <wcslib/wcs.h>
-#include <wcslib/wcserr.h>
 #include <wcslib/wcsfix.h>
 #include <wcslib/wcshdr.h>
 #include <wcslib/wcsmath.h>
@@ -40,10 +39,9 @@ namespace skerry {
 
 namespace {
 
-// wcspih/wcserr_enable touch global state in WCSLIB; parsing is serialised.
+// wcspih touches global state in WCSLIB (its parser); parsing is serialised.
 std::mutex g_parse_mutex;
 
-using header_text::one_line;
 using header_text::trim;
 using header_text::upper;
 
@@ -64,24 +62,15 @@ WcsPtr new_blank_wcs() {
   return w;
 }
 
-/// Frees the error records WCSLIB attaches to a wcsprm and its parts. WCSLIB 7.12
-/// replaces an old message without freeing it, so records are cleared after every
-/// conversion that reported invalid points (found with LeakSanitizer).
-void clear_wcs_errors(wcsprm* w) {
-  wcserr_clear(&w->err);
-  wcserr_clear(&w->lin.err);
-  wcserr_clear(&w->cel.err);
-  wcserr_clear(&w->cel.prj.err);
-  wcserr_clear(&w->spc.err);
-}
-
-std::string wcs_error_text(const wcsprm* w, int status, const char* what) {
+/// WCSLIB's reason for a failed call, from its static message table. WCSLIB's
+/// detailed error records (wcserr_enable) are left disabled: version 7.12 loses
+/// records on several paths (a record replaced without being freed, records on
+/// distortion and tabular parts that wcsfree does not reach), which LeakSanitizer
+/// found one path at a time under fuzzing; without them WCSLIB allocates nothing
+/// for errors, and its status codes carry the reason.
+std::string wcs_error_text(int status, const char* what) {
   std::string msg = what;
-  if (w && w->err && w->err->msg[0]) {
-    msg += ": " + one_line(w->err->msg);
-  } else if (status > 0 && status < 15) {
-    msg += std::string(": ") + wcs_errmsg[status];
-  }
+  if (status > 0 && status < 15) msg += std::string(": ") + wcs_errmsg[status];
   return msg;
 }
 
@@ -174,7 +163,6 @@ class WcslibSky final : public PixelSky {
       s.pix[2 * i + 1] = s.bad[i] ? 1.0 : y[i] + 1.0;
     }
     const int status = wcsp2s(w, static_cast<int>(m), 2, s.pix, s.img, s.phi, s.theta, s.world, s.stat);
-    if (status != 0) clear_wcs_errors(w);
     for (std::size_t i = 0; i < m; ++i) {
       // WCSERR_BAD_PIX (8): some pixels invalid, flagged in stat[].
       const bool ok = !s.bad[i] && (status == 0 || (status == 8 && s.stat[i] == 0)) &&
@@ -198,7 +186,6 @@ class WcslibSky final : public PixelSky {
       s.world[2 * i + lat_] = lat;
     }
     const int status = wcss2p(w, static_cast<int>(m), 2, s.world, s.phi, s.theta, s.img, s.pix, s.stat);
-    if (status != 0) clear_wcs_errors(w);
     for (std::size_t i = 0; i < m; ++i) {
       // WCSERR_BAD_WORLD (9): some positions invalid, flagged in stat[].
       const bool ok = !s.bad[i] && (status == 0 || (status == 9 && s.stat[i] == 0)) &&
@@ -410,11 +397,6 @@ std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
   WcsPtr sub = new_blank_wcs();
   {
     std::lock_guard<std::mutex> lock(g_parse_mutex);
-    static bool err_enabled = false;
-    if (!err_enabled) {
-      wcserr_enable(1);
-      err_enabled = true;
-    }
     int nreject = 0, nwcs = 0;
     wcsprm* all = nullptr;
     // WCSHDR_all: accept the common non-standard forms too (CROTAn, EPOCH,
@@ -452,22 +434,19 @@ std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
     if (status != 0) throw std::invalid_argument("WCSLIB could not select the celestial axes 1 and 2");
 
     // Translate AIPS-style NCP/GLS and unit spellings (WCSLIB's celfix, unitfix).
-    // celfix runs wcsset itself (whose error record WCSLIB 7.12 can leak), so only
-    // where there is something to translate.
+    // celfix runs wcsset itself, so only where there is something to translate.
     auto ends_with = [](const std::string& a, const char* b) {
       const std::size_t n = std::strlen(b);
       return a.size() >= n && a.compare(a.size() - n, n, b) == 0;
     };
     // Only when both axes carry the code: with different codes (e.g. RA---SIN with
-    // DEC--GLS) celfix's failing wcsset leaks its error record (LeakSanitizer,
-    // fuzz_fits_image); wcsset below reports the inconsistent axes instead.
+    // DEC--GLS) wcsset below reports the inconsistent axes.
     if ((ends_with(ct1, "NCP") && ends_with(ct2, "NCP")) || (ends_with(ct1, "GLS") && ends_with(ct2, "GLS")))
       celfix(sub.get());
     unitfix(0, sub.get());
-    clear_wcs_errors(sub.get());
     status = wcsset(sub.get());
     if (status != 0)
-      throw std::invalid_argument(wcs_error_text(sub.get(), status, "invalid celestial WCS"));
+      throw std::invalid_argument(wcs_error_text(status, "invalid celestial WCS"));
     if (sub->lng < 0 || sub->lat < 0 || sub->cubeface >= 0)
       throw std::invalid_argument("no celestial WCS on axes 1 and 2 (CTYPE1 = '" + ct1 +
                                   "', CTYPE2 = '" + ct2 + "')");
@@ -519,7 +498,7 @@ std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
     const int status = wcshdo(WCSHDO_P17, sub.get(), &nkey, &hdr);
     if (status != 0 || hdr == nullptr) {
       if (hdr) wcsdealloc(hdr);
-      throw std::invalid_argument(wcs_error_text(sub.get(), status, "WCSLIB could not write the WCS"));
+      throw std::invalid_argument(wcs_error_text(status, "WCSLIB could not write the WCS"));
     }
     std::string cards(hdr, static_cast<std::size_t>(nkey) * 80);
     wcsdealloc(hdr);
