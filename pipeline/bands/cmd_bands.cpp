@@ -501,7 +501,7 @@ int run_bands(const std::vector<std::string>& args) {
   int det_band = 0;  // 1-based, 0 = user catalogue
   if (!catalogue_path.empty()) {
     comps = read_components(catalogue_path);
-    record.add_input("catalogue", catalogue_path);
+    record.add_input("catalogue", table_file_path(catalogue_path));
   } else {
     det_band = combined ? 0 : detect_band;
     if (det_band == 0 && !combined) {

@@ -457,9 +457,9 @@ TableFormat table_format_from_name(const std::string& path) {
   throw UsageError(path + ": unknown table format (expected a name ending in .csv, .ecsv, .fits, .fit, .vot or .xml)");
 }
 
-Table read_table(const std::string& path_with_selection) {
-  // "FILE[SEL]" chooses one TABLE of a VOTable (SEL: 0-based index or name),
-  // when FILE itself is not a file of that whole name.
+namespace {
+/// "FILE[SEL]" -> (FILE, SEL) when FILE itself is not a file of that whole name.
+std::pair<std::string, std::string> split_table_selection(const std::string& path_with_selection) {
   std::string path = path_with_selection, selection;
   if (!path.empty() && path.back() == ']' && !std::filesystem::exists(path)) {
     const std::size_t open = path.rfind('[');
@@ -468,6 +468,17 @@ Table read_table(const std::string& path_with_selection) {
       path.resize(open);
     }
   }
+  return {path, selection};
+}
+}  // namespace
+
+std::string table_file_path(const std::string& path_with_selection) {
+  return split_table_selection(path_with_selection).first;
+}
+
+Table read_table(const std::string& path_with_selection) {
+  // "FILE[SEL]" chooses one TABLE of a VOTable (SEL: 0-based index or name).
+  const auto [path, selection] = split_table_selection(path_with_selection);
   const TableFormat fmt = table_format_from_name(path);
   if (!selection.empty() && fmt != TableFormat::VOTable)
     throw UsageError(path_with_selection + ": a table selection [" + selection +

@@ -19,6 +19,10 @@ TableFormat table_format_from_name(const std::string& path);
 /// bad; UsageError for an unknown ending or a selection on another format.
 Table read_table(const std::string& path);
 
+/// The file of a table argument: "FILE[SEL]" -> "FILE" (as read_table reads it),
+/// anything else unchanged. For checksums and sizes of the file read.
+std::string table_file_path(const std::string& path_with_selection);
+
 /// Write atomically. Throws OutputError.
 void write_table(const Table& table, const std::string& path);
 

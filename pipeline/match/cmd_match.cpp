@@ -752,11 +752,12 @@ int run_match(const std::vector<std::string>& args) {
       const SideOptions& so = i == 0 ? sa : sb;
       const bool need_err = mode == MatchMode::ErrorAware && !self && !multi && !(lr && i == 1);
       cats.push_back(load_catalogue(files[i], so, i == 0 ? "a" : "b", need_err, lr && i == 1));
-      rec.add_input(i == 0 ? "catalogue_a" : "catalogue_b", files[i]);
+      // The checksum is of the file read; a VOTable selection FILE[SEL] stays in "file".
+      const std::string sha = rec.add_input(i == 0 ? "catalogue_a" : "catalogue_b", table_file_path(files[i]));
       const Catalogue& c = cats.back();
       nlohmann::ordered_json ij;
       ij["file"] = files[i];
-      ij["sha256"] = sha256_file(files[i]);
+      ij["sha256"] = sha;
       ij["rows"] = c.table.rows();
       ij["rows_without_position"] = c.no_position;
       ij["position_columns"] = {c.ra_col, c.dec_col};

@@ -163,6 +163,39 @@ TEST(MatchCli, SameResultFromEveryFormatAndThreadCount) {
   fs::remove_all(d);
 }
 
+// A VOTable with several TABLEs: FILE[SEL] picks one (0-based index or name, as
+// astropy counts and names them), on either side of a match; the summary keeps
+// the argument as given and the checksum of the file read (SHA-256 from Python's
+// hashlib, FIPS PUB 180-4).
+TEST(MatchCli, VotableSelectionOnTheCommandLine) {
+  fs::path d = temp_dir("votsel");
+  const std::string vot = std::string(SKERRY_TEST_DATA_DIR) + "/tables/astropy_two_tables.vot";
+  std::string out;
+  ASSERT_EQ(run(kBin + " match '" + vot + "[sources]' '" + vot + "[1]' --out " + (d / "o").string() +
+                    " --match.name m 2>&1",
+                &out),
+            0)
+      << out;
+  const Table m = read_table((d / "o" / "m.matches.csv").string());
+  EXPECT_EQ(m.rows(), 3u);  // the 3-row "sources" table against itself
+  const std::string summary = slurp(d / "o" / "m.match_summary.json");
+  EXPECT_NE(summary.find("astropy_two_tables.vot[sources]"), std::string::npos) << summary;
+  std::string sha;
+  ASSERT_EQ(run("/usr/bin/python3 -c \"import hashlib,sys; print(hashlib.sha256(open(sys.argv[1],'rb').read())"
+                ".hexdigest(), end='')\" " + vot, &sha),
+            0);
+  ASSERT_EQ(sha.size(), 64u) << sha;
+  EXPECT_NE(summary.find(sha), std::string::npos) << summary;
+  // A selection on a format with one table is a usage error naming the argument.
+  EXPECT_EQ(run(kBin + " match '" + vot + "[sources]' '" + (d / "o" / "m.matches.csv").string() + "[1]' --out " +
+                    (d / "o2").string() + " 2>&1",
+                &out),
+            2)
+      << out;
+  EXPECT_NE(out.find("m.matches.csv[1]"), std::string::npos) << out;
+  fs::remove_all(d);
+}
+
 TEST(MatchCli, SexagesimalAndGalacticInputs) {
   fs::path d = temp_dir("frames");
   std::mt19937_64 g(44);
