@@ -7,8 +7,9 @@
 // threads `skerry extract` runs as a child process, so that its peak RSS
 // (wait4 / ru_maxrss) covers only the extraction. Prints: end-to-end wall time
 // (read to every output written), the per-stage times of the run record,
-// components fitted per second (fit stage), peak RSS beside the float32 image
-// size. Prints figures only; asserts nothing.
+// components fitted per second (fit stage), cores used (CPU / wall), peak RSS
+// beside the float32 image size, and the bytes written (all files; the maps).
+// Prints figures only; asserts nothing.
 //
 //   bench_extract [work_dir=/tmp/skerry-bench-extract] [size=8192] [sources=20000]
 #include <sys/resource.h>
@@ -110,9 +111,15 @@ int main(int argc, char** argv) {
     const double cpu = ru.ru_utime.tv_sec + ru.ru_stime.tv_sec + 1e-6 * (ru.ru_utime.tv_usec + ru.ru_stime.tv_usec);
     std::ifstream in(out + "/" + fs::path(image).stem().string() + ".run.json");
     const auto j = nlohmann::json::parse(in);
-    std::printf("\nthreads %d: end-to-end %.2f s wall (process, incl. start-up), CPU %.2f s; "
-                "peak RSS %.0f MB = %.2f x image\n",
-                threads, wall, cpu, rss / 1e6, rss / image_bytes);
+    std::uintmax_t written = 0, maps = 0;
+    for (const auto& e : fs::directory_iterator(out)) {
+      if (!e.is_regular_file()) continue;
+      written += e.file_size();
+      if (e.path().filename().string().ends_with("_map.fits")) maps += e.file_size();
+    }
+    std::printf("\nthreads %d: end-to-end %.2f s wall (process, incl. start-up), CPU %.2f s = %.2f cores; "
+                "peak RSS %.0f MB = %.2f x image; written %.1f MB (maps %.1f MB, as output.map_storage's default)\n",
+                threads, wall, cpu, cpu / wall, rss / 1e6, rss / image_bytes, written / 1e6, maps / 1e6);
     std::printf("  islands %lld, components %lld, sources %lld\n", j["counts"]["islands"].get<long long>(),
                 j["counts"]["components"].get<long long>(), j["counts"]["sources"].get<long long>());
     double fit_s = 0;

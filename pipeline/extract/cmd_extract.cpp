@@ -28,6 +28,7 @@
 #include <filesystem>
 #include <future>
 #include <iostream>
+#include <limits>
 #include <optional>
 #include <sstream>
 
@@ -52,6 +53,12 @@ namespace {
 namespace fs = std::filesystem;
 
 // ---- Configuration ------------------------------------------------------------
+
+/// What a survey wants by default (README, "Output maps"): the smooth noise maps
+/// quantised far below the noise, labels and model lossless (mostly zeros), and
+/// the residual, whose noise is what it is inspected for, as it was.
+constexpr const char* kDefaultMapStorage =
+    "rms:quantised,background:quantised,islands:lossless,model:lossless,residual:plain";
 
 po::options_description extract_options() {
   const BackgroundOptions bg{};
@@ -121,6 +128,12 @@ po::options_description extract_options() {
       ("output.maps", po::value<bool>()->default_value(true), "write the images NAME.rms_map.fits, NAME.background_map.fits and NAME.island_map.fits (island labels)")
       ("output.model", po::value<bool>()->default_value(true), "write the image NAME.model_map.fits (sum of the fitted components)")
       ("output.residual", po::value<bool>()->default_value(true), "write the image NAME.residual_map.fits (image - model)")
+      ("output.map_storage", po::value<std::string>()->default_value(kDefaultMapStorage),
+       "how each map is stored, comma-separated MAP:HOW with MAP one of rms, background, islands, model, residual and "
+       "HOW one of plain (uncompressed float32/int32), lossless (FITS tile compression, every bit kept), quantised "
+       "(tile compression of values rounded to output.quantise_step; rms, background and residual only)")
+      ("output.quantise_step", po::value<double>()->default_value(0.004),
+       "step of the quantised maps, as a fraction of the smallest rms in the rms map (a value read back is within half a step)")
       ("output.report", po::value<bool>()->default_value(false), "also write the run report NAME.report.html at the end (skerry report)");
   return d;
 }
@@ -157,8 +170,66 @@ std::string file_stem(const std::string& path) {
   return n;
 }
 
+/// How each output map is stored; a Quantised step is set at write time from the
+/// rms map (step_fraction x its smallest value).
+struct MapPolicy {
+  MapStorage rms, background, islands, model, residual;
+  double step_fraction = 0.004;
+};
+
+MapPolicy parse_map_policy(const std::string& text, double step_fraction) {
+  MapPolicy p;
+  p.step_fraction = step_fraction;
+  if (!(step_fraction > 0.0 && step_fraction <= 1.0))
+    throw UsageError("output.quantise_step = " + std::to_string(step_fraction) +
+                     ": must be > 0 and <= 1 (a fraction of the smallest rms)");
+  for (const auto& item : split(text, ',')) {
+    if (item.empty()) continue;
+    const auto colon = item.find(':');
+    const std::string map = item.substr(0, colon), how = colon == std::string::npos ? "" : item.substr(colon + 1);
+    MapStorage* target = map == "rms"          ? &p.rms
+                         : map == "background" ? &p.background
+                         : map == "islands"    ? &p.islands
+                         : map == "model"      ? &p.model
+                         : map == "residual"   ? &p.residual
+                                               : nullptr;
+    if (!target)
+      throw UsageError("output.map_storage: unknown map '" + map + "' in '" + item +
+                       "' (rms, background, islands, model, residual)");
+    if (how == "plain") target->kind = MapStorage::Kind::Plain;
+    else if (how == "lossless") target->kind = MapStorage::Kind::Lossless;
+    else if (how == "quantised" && (target == &p.islands || target == &p.model))
+      throw UsageError("output.map_storage: '" + item + "': the " + map + " map is stored plain or lossless");
+    else if (how == "quantised") target->kind = MapStorage::Kind::Quantised;
+    else
+      throw UsageError("output.map_storage: '" + item + "' needs MAP:HOW with HOW one of plain, lossless, quantised");
+  }
+  return p;
+}
+
+/// The smallest positive finite value of the rms map [Jy/beam], the reference of
+/// the quantisation step; 0 when there is none (then nothing is quantised).
+double smallest_rms(const ImageF& rms) {
+  double m = std::numeric_limits<double>::infinity();
+  for (Eigen::Index i = 0; i < rms.size(); ++i) {
+    const double v = rms.data()[i];
+    if (v > 0.0 && v < m) m = v;
+  }
+  return std::isfinite(m) ? m : 0.0;
+}
+
+/// The storage of one map with its step in Jy/beam; a quantised map whose rms
+/// reference is missing is stored lossless instead.
+MapStorage with_step(MapStorage s, double step_fraction, double rms_min) {
+  if (s.kind != MapStorage::Kind::Quantised) return s;
+  if (!(rms_min > 0.0)) return {MapStorage::Kind::Lossless, 0.0};
+  s.step = step_fraction * rms_min;
+  return s;
+}
+
 /// The command's settings: what to read, the job's configuration, what to write.
 struct Config : ExtractSettings {
+  MapPolicy maps;
   std::string image, out_dir, name;
   bool fmt_csv = false, fmt_fits = false, fmt_vot = false;
   bool write_maps = true, write_model = true, write_residual = true, report = false;
@@ -313,6 +384,7 @@ void read_output_config(const OptionReader& o, Config& c) {
     else if (f == "vot") c.fmt_vot = true;
     else if (!f.empty()) throw UsageError("output.formats: unknown format '" + f + "' (csv, fits, vot)");
   }
+  c.maps = parse_map_policy(o.S("output.map_storage"), o.D("output.quantise_step"));
   c.write_maps = o.B("output.maps");
   c.write_model = o.B("output.model");
   c.write_residual = o.B("output.residual");
@@ -375,7 +447,8 @@ Provenance table_meta(const Config& cfg, const ParsedOptions& parsed, const SkyI
 
 /// Writes the model and residual images (on two threads) and the tables.
 void write_results(const Config& cfg, const SkyImage& sky, const ExtractResult& r, const Provenance& meta,
-                   const std::vector<std::pair<std::string, std::string>>& cards, StagedOutputs& stage) {
+                   const std::vector<std::pair<std::string, std::string>>& cards, StagedOutputs& stage,
+                   double rms_min) {
   // The image writes are disk-bound (O_DIRECT, see write_fits_image) and the
   // tables CPU-bound, so they overlap. Output paths are taken here, in a fixed
   // order, so that the run record lists the files in the same order whatever
@@ -386,15 +459,17 @@ void write_results(const Config& cfg, const SkyImage& sky, const ExtractResult& 
   std::future<void> model_write, residual_write;
   if (cfg.write_model) {
     const std::string model_path = stage.path(N + ".model_map.fits");
-    model_write = std::async(std::launch::async, [&model, &sky, &cards, model_path] {
-      write_fits_image(model_path, model, sky, "JY/BEAM", cards);
+    const MapStorage how = with_step(cfg.maps.model, cfg.maps.step_fraction, rms_min);
+    model_write = std::async(std::launch::async, [&model, &sky, &cards, model_path, how] {
+      write_fits_image(model_path, model, sky, "JY/BEAM", cards, how);
     });
   }
   if (cfg.write_residual) {
     const std::string residual_path = stage.path(N + ".residual_map.fits");
-    residual_write = std::async(std::launch::async, [&model, &sky, &cards, residual_path] {
+    const MapStorage how = with_step(cfg.maps.residual, cfg.maps.step_fraction, rms_min);
+    residual_write = std::async(std::launch::async, [&model, &sky, &cards, residual_path, how] {
       const ImageF residual = sky.pixels - model;  // residual = image - model (background kept)
-      write_fits_image(residual_path, residual, sky, "JY/BEAM", cards);
+      write_fits_image(residual_path, residual, sky, "JY/BEAM", cards, how);
     });
   }
   const double freq = sky.freq_hz;
@@ -475,19 +550,32 @@ int run_extract(const std::vector<std::string>& args) {
   const std::vector<std::pair<std::string, std::string>> cards = {
       {"ORIGIN", fits_string(std::string("skerry ") + SKERRY_VERSION + " (" + SKERRY_GIT_REVISION + ")")}};
   std::optional<StagedOutputs> stage;
-  std::future<void> map_writes;
+  std::future<void> map_writes, label_writes;
   std::optional<Progress> progress;
   ExtractHooks hooks;
   hooks.stage = [&](const std::string& name, double s) { record.add_stage(name, s); };
+  // The quantisation step's reference (smallest rms) is taken from the rms map once
+  // it is final; read by write_results after map_writes is joined.
+  double rms_min = 0.0;
   hooks.maps_final = [&](const NoiseMaps& maps, std::shared_ptr<const LabelsI32> labels) {
     stage.emplace(cfg.out_dir, cfg.name, "extract");
-    if (!cfg.write_maps) return;
+    if (!cfg.write_maps) {
+      if (cfg.write_model || cfg.write_residual) rms_min = smallest_rms(maps.rms_image());
+      return;
+    }
     const std::string rms_path = stage->path(N + ".rms_map.fits"), bg_path = stage->path(N + ".background_map.fits"),
                       labels_path = stage->path(N + ".island_map.fits");
-    map_writes = std::async(std::launch::async, [maps, labels, &sky, &cards, rms_path, bg_path, labels_path]() mutable {
-      write_fits_image(rms_path, maps.rms_image(), sky, "JY/BEAM", cards);
-      write_fits_image(bg_path, maps.background_image(), sky, "JY/BEAM", cards);
-      write_fits_labels(labels_path, *labels, sky, cards);
+    // Two writers: the rms and background maps (quantised: CPU-bound compression)
+    // and the labels, so that compression does not hold up the other map.
+    map_writes = std::async(std::launch::async, [maps, &sky, &cards, &cfg, &rms_min, rms_path, bg_path] {
+      const ImageF rms = maps.rms_image();
+      rms_min = smallest_rms(rms);
+      write_fits_image(rms_path, rms, sky, "JY/BEAM", cards, with_step(cfg.maps.rms, cfg.maps.step_fraction, rms_min));
+      write_fits_image(bg_path, maps.background_image(), sky, "JY/BEAM", cards,
+                       with_step(cfg.maps.background, cfg.maps.step_fraction, rms_min));
+    });
+    label_writes = std::async(std::launch::async, [labels, &sky, &cards, &cfg, labels_path]() mutable {
+      write_fits_labels(labels_path, *labels, sky, cards, cfg.maps.islands);
       labels.reset();  // the label map is not kept after its write
     });
   };
@@ -504,10 +592,11 @@ int run_extract(const std::vector<std::string>& args) {
   {
     StageTimer t_wait(record, "write_maps_wait");  // what the map writer still needed after the fit
     if (map_writes.valid()) map_writes.get();       // rethrows the writer's error, if any
+    if (label_writes.valid()) label_writes.get();
   }
   StageTimer t_write(record, "write");
   const std::string image_sha256 = record.add_input("image", cfg.image, image_sha.get());
-  write_results(cfg, sky, result, table_meta(cfg, parsed, sky, result, image_sha256), cards, *stage);
+  write_results(cfg, sky, result, table_meta(cfg, parsed, sky, result, image_sha256), cards, *stage, rms_min);
   t_write.stop();
   record_counts(record, cfg, sky, result);
   for (const auto& f : stage->files()) record.add_output(stage->final_path(f));

@@ -93,6 +93,18 @@ SkyImage make_sky_image(const GridSpec& grid, ImageF pixels, const std::string& 
 /// to 0.01 pixel), or a value exceeds 1.001. Values <= 0 become NaN.
 ImageF read_primary_beam(const std::string& path, const SkyImage& like);
 
+/// How an output image is stored. Plain: an uncompressed primary image. Lossless
+/// and Quantised: FITS tiled image compression (FITS Standard 4.0 sec. 10,
+/// REF-FITS-06), readable by every FITS reader that follows the standard:
+/// Lossless keeps every bit (Rice for int32, GZIP for float32); Quantised stores
+/// float32 values on a grid of `step` (in the image's units: Jy/beam for the
+/// maps), so that a value read back is within step / 2 of the value written.
+struct MapStorage {
+  enum class Kind { Plain, Lossless, Quantised };
+  Kind kind = Kind::Plain;
+  double step = 0.0;  ///< Quantised only: > 0, image units
+};
+
 /// Write a 2-D image with `like`'s WCS (atomically: temp file, then rename).
 /// float32 (labels: int32, BUNIT omitted); cards of like.wcs_header except the
 /// structural ones (SIMPLE, BITPIX, NAXIS*, EXTEND, BSCALE, BZERO, BLANK, BUNIT);
@@ -102,8 +114,10 @@ ImageF read_primary_beam(const std::string& path, const SkyImage& like);
 /// value is already FITS-formatted (e.g. "'text'" or "1.5").
 void write_fits_image(const std::string& path, const ImageF& pixels, const SkyImage& like,
                       const std::string& bunit = "JY/BEAM",
-                      const std::vector<std::pair<std::string, std::string>>& extra_cards = {});
+                      const std::vector<std::pair<std::string, std::string>>& extra_cards = {},
+                      const MapStorage& storage = {});
 void write_fits_labels(const std::string& path, const LabelsI32& labels, const SkyImage& like,
-                       const std::vector<std::pair<std::string, std::string>>& extra_cards = {});
+                       const std::vector<std::pair<std::string, std::string>>& extra_cards = {},
+                       const MapStorage& storage = {});
 
 }  // namespace skerry

@@ -561,13 +561,14 @@ TEST(BadInputTable, CatalogueLargerThanMemory) {
 // ---- output ------------------------------------------------------------------------
 
 // Disk full: the child may write at most 20 kB per file (RLIMIT_FSIZE, SIGXFSZ
-// ignored so writes fail with EFBIG as on a full file system). The 36 kB rms map
-// cannot be written: exit 4, one line naming an output, nothing left behind.
+// ignored so writes fail with EFBIG as on a full file system). The 36 kB rms map,
+// stored plain, cannot be written: exit 4, one line naming an output, nothing
+// left behind.
 TEST(BadInputTable, DiskFullOnOutput) {
   TempDir d;
   ImageSpec s;
   write_image(d / "ok.fits", s);
-  const Outcome r = extract(d / "ok.fits", d / "out", {}, 20000);
+  const Outcome r = extract(d / "ok.fits", d / "out", {"--output.map_storage", "rms:plain"}, 20000);
   expect_refused(r, skerry::kExitOutput, "ok.rms_map.fits", "write failed", d / "out");
 }
 

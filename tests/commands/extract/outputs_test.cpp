@@ -4,8 +4,10 @@
 // and the documented configuration file equal to the built-in defaults.
 #include <gtest/gtest.h>
 
+#include <cstring>
 #include <nlohmann/json.hpp>
 
+#include "app/errors.h"
 #include "extract_helpers.h"
 
 namespace skerry::test {
@@ -79,9 +81,17 @@ from astropy.io import fits
 for kind in ("components", "islands", "sources"):
     with fits.open(f"{d}/field.{kind}.fits") as h:
         if len(h) < 2 or not isinstance(h[1], fits.BinTableHDU): fail(f"{kind}.fits is not a table")
-for m in ("rms_map", "background_map", "island_map", "model_map", "residual_map"):
+# The maps as stored by default (README, "Output maps"): FITS tile compression for
+# the rms, background, island and model maps (astropy's CompImageHDU, an extension
+# after an empty primary HDU), a plain primary image for the residual.
+stored = {"rms_map": "compressed", "background_map": "compressed", "island_map": "compressed",
+          "model_map": "compressed", "residual_map": "plain"}
+for m, how in stored.items():
     with fits.open(f"{d}/field.{m}.fits") as h:
-        if h[0].data is None or h[0].data.ndim != 2: fail(f"{m}.fits is not an image")
+        hdu = h[1] if how == "compressed" else h[0]
+        if how == "compressed" and not isinstance(hdu, fits.CompImageHDU): fail(f"{m}.fits is not tile-compressed")
+        if hdu.data is None or hdu.data.ndim != 2: fail(f"{m}.fits is not an image")
+        if hdu.header.get("CTYPE1", "")[:4] != "RA--": fail(f"{m}.fits has no celestial WCS")
 for kind in ("components", "sources"):
     if "info_bits" not in Table.read(f"{d}/field.{kind}.csv", format="ascii.csv").colnames:
         fail(f"{kind}: no info_bits column")
@@ -231,6 +241,142 @@ TEST(Outputs, IdenticalForAnyThreadCount) {
           << f << " differs with " << th << " threads";
     }
   }
+}
+
+// Map storage (README, "Output maps"; FITS Standard 4.0 sec. 10 tiled image
+// compression, REF-FITS-06): the default storage against every map stored plain.
+// The catalogues are the same bytes; lossless maps read back bit for bit; the
+// quantised rms and background maps within half the documented step (the
+// smallest rms x output.quantise_step); and the maps take less room.
+TEST(Outputs, MapStorageKeepsTheCataloguesAndTheDocumentedPrecision) {
+  TempDir tmp("storage");
+  const std::string img = write_field(tmp, 14);
+  const std::string all_plain = "rms:plain,background:plain,islands:plain,model:plain,residual:plain";
+  RunResult r = run_skerry({"extract", img, "--out", tmp / "plain", "--output.map_storage", all_plain}, tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  r = run_skerry({"extract", img, "--out", tmp / "packed"}, tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  // CSV tables: the same bytes. (FITS and VOTable tables carry the resolved
+  // configuration, which names the storage; their columns are compared below.)
+  for (const char* kind : {"components", "islands", "sources"}) {
+    const std::string f = std::string("field.") + kind + ".csv";
+    EXPECT_TRUE(slurp(tmp / ("plain/" + f)) == slurp(tmp / ("packed/" + f))) << f;
+  }
+  // The maps and the other tables, read by an independent reader (astropy): raw
+  // values compared bit for bit (lossless) or against half the documented step
+  // (quantised: output.quantise_step's default 0.004 x the smallest rms).
+  const std::string script = tmp / "maps.py";
+  std::ofstream(script) << R"PY(
+import sys
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+a, b = sys.argv[1], sys.argv[2]
+ok = True
+def fail(msg):
+    global ok
+    ok = False
+    print("FAIL", msg)
+def image(path):
+    with fits.open(path) as h:
+        hdu = [x for x in h if x.data is not None][0]
+        return np.asarray(hdu.data).astype(hdu.data.dtype.newbyteorder("=")), isinstance(hdu, fits.CompImageHDU)
+rms, _ = image(f"{a}/field.rms_map.fits")
+half_step = 0.5 * 0.004 * np.nanmin(rms[rms > 0])
+plain_bytes = packed_bytes = 0
+import os
+for m, how in (("rms_map", "quantised"), ("background_map", "quantised"), ("island_map", "lossless"),
+               ("model_map", "lossless"), ("residual_map", "plain")):
+    x, xc = image(f"{a}/field.{m}.fits")
+    y, yc = image(f"{b}/field.{m}.fits")
+    plain_bytes += os.path.getsize(f"{a}/field.{m}.fits")
+    packed_bytes += os.path.getsize(f"{b}/field.{m}.fits")
+    if xc: fail(f"{m}: the all-plain run wrote a compressed map")
+    if yc != (how != "plain"): fail(f"{m}: compressed {yc}, expected {how}")
+    if x.shape != y.shape: fail(f"{m}: shapes differ"); continue
+    if how != "quantised":
+        if not np.array_equal(x.view(np.uint32), y.view(np.uint32)): fail(f"{m}: bits differ")
+        continue
+    fin = np.isfinite(x)
+    if not np.array_equal(fin, np.isfinite(y)): fail(f"{m}: blank pixels differ")
+    worst = np.max(np.abs(x[fin].astype(float) - y[fin].astype(float)))
+    # float32 rounding of the restored value: one ulp of the largest value.
+    tol = half_step + np.spacing(np.float32(np.max(np.abs(x[fin]))))
+    if not (worst <= tol): fail(f"{m}: worst difference {worst} > half a step {half_step}")
+    if not (worst > 0): fail(f"{m}: not quantised at all")
+if not (packed_bytes < 0.5 * plain_bytes): fail(f"maps take {packed_bytes} bytes, plain {plain_bytes}")
+for kind in ("components", "islands", "sources"):
+    for ext, fmt in ((".fits", None), (".vot", "votable")):
+        t1 = Table.read(f"{a}/field.{kind}{ext}", format=fmt) if fmt else Table.read(f"{a}/field.{kind}{ext}")
+        t2 = Table.read(f"{b}/field.{kind}{ext}", format=fmt) if fmt else Table.read(f"{b}/field.{kind}{ext}")
+        if t1.colnames != t2.colnames or len(t1) != len(t2): fail(f"{kind}{ext}: shape differs"); continue
+        for c in t1.colnames:
+            u, v = np.asarray(t1[c]), np.asarray(t2[c])
+            same = np.array_equal(u, v, equal_nan=True) if u.dtype.kind == "f" else np.array_equal(u, v)
+            if not same: fail(f"{kind}{ext}: column {c} differs")
+print("OK" if ok else "FAILED")
+sys.exit(0 if ok else 1)
+)PY";
+  const RunResult py = run_args({python3(), script, tmp / "plain", tmp / "packed"}, tmp.path());
+  EXPECT_EQ(py.code, 0) << py.out << py.err;
+  EXPECT_NE(py.out.find("OK"), std::string::npos) << py.out << py.err;
+}
+
+// The maps as written are inputs again (--noise.rms_map, --noise.background_map):
+// read back lossless they give the very catalogue; read back quantised, the same
+// sources with flux densities within a small fraction of their errors.
+TEST(Outputs, StoredMapsReadBackAsNoiseMaps) {
+  TempDir tmp("readback");
+  const std::string img = write_field(tmp, 15);
+  const std::string lossless = "rms:lossless,background:lossless";
+  RunResult r = run_skerry({"extract", img, "--out", tmp / "a", "--output.map_storage", lossless}, tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  r = run_skerry({"extract", img, "--out", tmp / "q"}, tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  auto rerun = [&](const std::string& from, const std::string& out) {
+    const RunResult rr = run_skerry({"extract", img, "--out", tmp / out, "--noise.rms_map",
+                                     tmp / (from + "/field.rms_map.fits"), "--noise.background_map",
+                                     tmp / (from + "/field.background_map.fits")},
+                                    tmp.path());
+    EXPECT_EQ(rr.code, 0) << rr.err;
+    return read_table(tmp / (out + "/field.components.csv"));
+  };
+  const Table first = read_table(tmp / "a/field.components.csv");
+  const Table again = rerun("a", "a2");
+  const Table quant = rerun("q", "q2");
+  ASSERT_GT(first.rows(), 50u);
+  ASSERT_EQ(again.rows(), first.rows());
+  for (const char* c : {"ra_deg", "dec_deg", "s_peak_jy_per_beam", "s_int_jy", "s_int_err_jy"})
+    for (std::size_t i = 0; i < first.rows(); ++i)
+      EXPECT_EQ(again.at(c).f64[i], first.at(c).f64[i]) << c << " row " << i;
+  // Quantised: the same sources; a pixel within half a step of the island
+  // threshold can join or leave an island, which moves that island's fit by a
+  // fraction of its error; the bulk does not move.
+  ASSERT_EQ(quant.rows(), first.rows());
+  std::size_t moved = 0;
+  for (std::size_t i = 0; i < first.rows(); ++i) {
+    const double err = first.at("s_int_err_jy").f64[i];
+    const double d = std::fabs(quant.at("s_int_jy").f64[i] - first.at("s_int_jy").f64[i]);
+    EXPECT_LT(d, 0.25 * err) << "row " << i;
+    EXPECT_NEAR(quant.at("s_int_err_jy").f64[i], err, 0.05 * err) << "row " << i;
+    if (d > 0.02 * err) ++moved;
+  }
+  EXPECT_LE(moved, first.rows() / 20) << "more than 5 % of the flux densities moved by over 2 % of their error";
+}
+
+TEST(Outputs, MapStorageOptionErrorsNameTheOption) {
+  TempDir tmp("storage_opts");
+  const std::string img = write_field(tmp, 16);
+  for (const char* bad : {"islands:quantised", "model:quantised", "noise:plain", "rms:zip", "rms"}) {
+    const RunResult r = run_skerry({"extract", img, "--out", tmp / "o", "--output.map_storage", bad}, tmp.path());
+    EXPECT_EQ(r.code, kExitUsage) << bad;
+    EXPECT_NE(r.err.find("output.map_storage"), std::string::npos) << r.err;
+    EXPECT_EQ(std::count(r.err.begin(), r.err.end(), '\n'), 1) << r.err;
+  }
+  const RunResult r = run_skerry({"extract", img, "--out", tmp / "o", "--output.quantise_step", "0"}, tmp.path());
+  EXPECT_EQ(r.code, kExitUsage);
+  EXPECT_NE(r.err.find("output.quantise_step"), std::string::npos) << r.err;
+  EXPECT_FALSE(fs::exists(tmp / "o")) << "nothing written on a usage error";
 }
 
 // configs/extract.ini documents every option with its default: running with it

@@ -193,7 +193,9 @@ TEST(SurveyFaults, UnknownStageKeyFailsBeforeAnyWork) {
 // a message naming the file; a survey names the tiles that failed.
 TEST(SurveyFaults, FileSizeLimitGivesExitFour) {
   const std::string d = fresh_dir("f-fsize");
-  const std::string cfg = make_survey(d);
+  // The tiles' rms maps stored plain (in the [output] section make_survey opens):
+  // larger than the limit, where the default compressed maps would fit under it.
+  const std::string cfg = make_survey(d, "map_storage = rms:plain\n");
   auto r = run_skerry_limited({"extract", d + "/tiles/tile_00.fits", "--out", d + "/x"}, 64 * 1024);
   EXPECT_EQ(r.code, 4) << r.err;
   EXPECT_EQ(lines(r.err), 1u) << r.err;

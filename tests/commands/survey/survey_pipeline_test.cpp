@@ -378,7 +378,9 @@ TEST(SurveyPipeline, MergedRowsComeFromTheLowestNoiseTile) {
              "from astropy.io import fits\nfrom astropy.wcs import WCS\n"
              "pos = np.loadtxt(sys.argv[2], ndmin=2)\n"
              "for f in sorted(glob.glob(sys.argv[1] + '/tile_*/*.rms*.fits')):\n"
-             "    h = fits.getheader(f)\n    d = fits.getdata(f).squeeze()\n"
+             // The first HDU with data: tile-compressed maps are an extension.
+             "    hdu = [x for x in fits.open(f) if x.data is not None][0]\n"
+             "    h = hdu.header\n    d = hdu.data.squeeze()\n"
              "    x, y = WCS(h).celestial.wcs_world2pix(pos[:, 0], pos[:, 1], 0)\n"
              "    xi, yi = np.rint(x).astype(int), np.rint(y).astype(int)\n"
              "    ok = (xi >= 0) & (yi >= 0) & (xi < d.shape[1]) & (yi < d.shape[0])\n"
