@@ -27,7 +27,9 @@
 #include <cstdio>
 #include <cstdlib>
 #include <cstring>
+#include <map>
 #include <mutex>
+#include <regex>
 #include <stdexcept>
 #include <vector>
 
@@ -326,6 +328,53 @@ Rotation galactic_rotation() {
   return out;
 }
 
+/// Keywords whose values skerry reads from an image header: the WCS families of
+/// FITS WCS Papers I-II (REF-FITS-04), the frame, the unit and the beam.
+bool keyword_read_by_skerry(const std::string& key) {
+  static const std::regex families(
+      "(CTYPE|CUNIT|CRVAL|CRPIX|CDELT|CROTA)[0-9]+[A-Z]?|(CD|PC|PV|PS)[0-9]+_[0-9]+[A-Z]?|"
+      "(LONPOLE|LATPOLE|EQUINOX|RADESYS|WCSAXES)[A-Z]?|EPOCH|RADECSYS|BUNIT|BMAJ|BMIN|BPA|RESTFRQ|RESTFREQ|NAXIS[0-9]*");
+  return std::regex_match(key, families);
+}
+
+/// Keywords whose value must be a finite number (the numeric WCS keywords).
+bool keyword_is_wcs_number(const std::string& key) {
+  static const std::regex numbers("(CRVAL|CRPIX|CDELT|CROTA)[0-9]+[A-Z]?|(CD|PC)[0-9]+_[0-9]+[A-Z]?|"
+                                  "(LONPOLE|LATPOLE)[A-Z]?");
+  return std::regex_match(key, numbers);
+}
+
+/// The value field of a "KEYWORD= value / comment" card, trimmed (a string value
+/// keeps its quotes; a '/' inside quotes is part of the string).
+std::string card_value(std::string_view card) {
+  std::string_view v = card.substr(10);
+  std::size_t end = v.size();
+  bool in_string = false;
+  for (std::size_t i = 0; i < v.size(); ++i) {
+    if (v[i] == '\'') in_string = !in_string;
+    else if (v[i] == '/' && !in_string) {
+      end = i;
+      break;
+    }
+  }
+  return trim(std::string(v.substr(0, end)));
+}
+
+/// A FITS integer or real value (REF-FITS-02): digits with an optional sign,
+/// decimal point and exponent introduced by E or D; NaN and Inf are not FITS
+/// numbers.
+bool is_finite_fits_number(std::string v) {
+  for (char& c : v)
+    if (c == 'D' || c == 'd') c = 'E';
+  if (v.empty() || std::any_of(v.begin(), v.end(), [](char c) {
+        return !(std::isdigit(static_cast<unsigned char>(c)) || c == '+' || c == '-' || c == '.' || c == 'E' || c == 'e');
+      }))
+    return false;
+  char* end = nullptr;
+  const double x = std::strtod(v.c_str(), &end);
+  return end == v.c_str() + v.size() && std::isfinite(x);
+}
+
 }  // namespace
 
 std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
@@ -390,6 +439,29 @@ std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
                                       ") has a string value without its closing quote (FITS Standard 4.0 sec. 4.2.1.1)");
       }
     }
+  }
+  // Values skerry reads must be unambiguous and, for the numeric WCS keywords,
+  // numbers: a keyword repeated with another value (the FITS Standard allows a
+  // non-commentary keyword once per header, REF-FITS-02; readers disagree on
+  // which copy wins) and a WCS value that is not a finite number
+  // (WCSLIB skips such a card and the default 0 would be used) are refused, the
+  // card named. Repeats of keywords skerry does not read are left alone.
+  std::map<std::string, std::pair<std::size_t, std::string>> seen;
+  for (std::size_t c = 0; c < header_cards.size(); c += 80) {
+    const std::string_view card(header_cards.data() + c, 80);
+    if (card.substr(8, 2) != "= ") continue;
+    const std::string key = upper(trim(std::string(card.substr(0, 8))));
+    if (!keyword_read_by_skerry(key)) continue;
+    const std::size_t n = c / 80 + 1;
+    const std::string value = card_value(card);
+    if (keyword_is_wcs_number(key) && !is_finite_fits_number(value))
+      throw std::invalid_argument("header card " + std::to_string(n) + " (" + key + " = " + value +
+                                  ") is not a finite number");
+    const auto [it, fresh] = seen.emplace(key, std::make_pair(n, value));
+    if (!fresh && it->second.second != value)
+      throw std::invalid_argument("keyword " + key + " appears twice with different values (card " +
+                                  std::to_string(it->second.first) + ": " + it->second.second + ", card " +
+                                  std::to_string(n) + ": " + value + "); a keyword may appear once per header");
   }
   text.push_back('\0');
   const int nkeyrec = static_cast<int>(header_cards.size() / 80);

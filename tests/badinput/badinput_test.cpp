@@ -202,15 +202,18 @@ void write_image(const fs::path& path, const ImageSpec& spec, std::vector<double
 }
 
 /// Replace the value of a header card in the raw bytes of a FITS file.
-void patch_card(const fs::path& path, const std::string& key, const std::string& value) {
+/// Replaces the card of `key` by "KEY = value", KEY = `new_key` (default: key).
+void patch_card(const fs::path& path, const std::string& key, const std::string& value, std::string new_key = "") {
   std::fstream io(path, std::ios::in | std::ios::out | std::ios::binary);
   std::string head(2880 * 4, ' ');
   io.read(head.data(), static_cast<std::streamsize>(head.size()));
   std::string k = key;
   k.resize(8, ' ');
+  if (new_key.empty()) new_key = key;
+  new_key.resize(8, ' ');
   for (std::size_t at = 0; at + 80 <= head.size(); at += 80) {
     if (head.compare(at, 8, k) == 0) {
-      std::string card = k + "= " + std::string(20 - std::min<std::size_t>(20, value.size()), ' ') + value;
+      std::string card = new_key + "= " + std::string(20 - std::min<std::size_t>(20, value.size()), ' ') + value;
       card.resize(80, ' ');
       io.clear();
       io.seekp(static_cast<std::streamoff>(at));
@@ -297,6 +300,29 @@ TEST(BadInputTable, HeaderStringWithoutClosingQuote) {
   patch_card(d / "quote.fits", "CTYPE2", "'DEC--SIN");
   const Outcome r = extract(d / "quote.fits", d / "out");
   expect_refused(r, skerry::kExitBadInput, arg(d / "quote.fits"), "(CTYPE2) has a string value without its closing quote",
+                 d / "out");
+}
+
+// A WCS value that is not a FITS number: WCSLIB would skip the card and use 0
+// (every position 150 degrees off); refused, naming the card (REF-FITS-02).
+TEST(BadInputTable, HeaderWcsValueNotANumber) {
+  TempDir d;
+  ImageSpec s;
+  write_image(d / "nan.fits", s);
+  patch_card(d / "nan.fits", "CRVAL1", "NaN");
+  const Outcome r = extract(d / "nan.fits", d / "out");
+  expect_refused(r, skerry::kExitBadInput, arg(d / "nan.fits"), "(CRVAL1 = NaN) is not a finite number", d / "out");
+}
+
+// A keyword skerry reads, given twice with different values (readers disagree
+// on which wins: positions 0.5 degrees apart); refused, naming both cards.
+TEST(BadInputTable, HeaderKeywordRepeatedWithAnotherValue) {
+  TempDir d;
+  ImageSpec s;
+  write_image(d / "twice.fits", s);
+  patch_card(d / "twice.fits", "FREQ", "201.75", "CRVAL1");
+  const Outcome r = extract(d / "twice.fits", d / "out");
+  expect_refused(r, skerry::kExitBadInput, arg(d / "twice.fits"), "keyword CRVAL1 appears twice with different values",
                  d / "out");
 }
 

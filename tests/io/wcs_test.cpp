@@ -559,6 +559,44 @@ TEST(WcsFrames, Fk4AndUnknownFramesRefused) {
 
 // ---- Errors -----------------------------------------------------------------------
 
+// A WCS value that is not a FITS number, and a keyword skerry reads given twice
+// with different values, are refused with the card named (REF-FITS-02: no NaN
+// among header numbers; a keyword once per header). Before, WCSLIB skipped the
+// NaN card (CRVAL1 taken as 0: positions 150 degrees off) and the last of two
+// CRVAL1 cards won where astropy takes the first.
+TEST(WcsErrors, NonFiniteAndRepeatedKeywords) {
+  const std::vector<std::pair<std::string, std::string>> base = {
+      {"NAXIS", "2"}, {"NAXIS1", "100"}, {"NAXIS2", "100"}, {"CTYPE1", "'RA---SIN'"}, {"CTYPE2", "'DEC--SIN'"},
+      {"CRVAL1", "201.25"}, {"CRVAL2", "-38.6"}, {"CRPIX1", "50.5"}, {"CRPIX2", "50.5"},
+      {"CDELT1", "-4.1666666666666669E-4"}, {"CDELT2", "4.1666666666666669D-4"}};
+  EXPECT_NO_THROW(wcs_from_header(header(base)));
+  auto refused = [&](std::vector<std::pair<std::string, std::string>> kv, const std::string& what) {
+    try {
+      wcs_from_header(header(kv));
+      ADD_FAILURE() << "no error for: " << what;
+    } catch (const std::invalid_argument& e) {
+      EXPECT_NE(std::string(e.what()).find(what), std::string::npos) << e.what();
+    }
+  };
+  for (const char* bad : {"NaN", "Inf", "-inf", "'201.25'", "1.0.0", ""}) {
+    auto kv = base;
+    kv[5].second = bad;
+    refused(kv, "(CRVAL1 = " + std::string(bad) + ") is not a finite number");
+  }
+  auto pc = base;
+  pc.push_back({"PC1_2", "nan"});
+  refused(pc, "(PC1_2 = nan) is not a finite number");
+  auto twice = base;
+  twice.push_back({"CRVAL1", "201.75"});
+  refused(twice, "keyword CRVAL1 appears twice with different values (card 6: 201.25, card 12: 201.75)");
+  // The same value twice, and a repeated keyword skerry does not read: accepted.
+  auto same = base;
+  same.push_back({"CRVAL1", "201.25"});
+  same.push_back({"OBJECT", "'a'"});
+  same.push_back({"OBJECT", "'b'"});
+  EXPECT_NO_THROW(wcs_from_header(header(same)));
+}
+
 TEST(WcsErrors, NoCelestialAxes) {
   auto expect_throw = [](const std::string& h, const std::string& what) {
     try {
