@@ -18,7 +18,8 @@ void usage(std::ostream& os) {
   auto cmds = skerry::command_registry();
   std::sort(cmds.begin(), cmds.end(), [](auto& a, auto& b) { return a.name < b.name; });
   os << "skerry " << SKERRY_VERSION << ": radio continuum images to source catalogues\n\n"
-     << "usage: skerry <sub-command> [options]     (skerry <sub-command> --help for its options)\n\n"
+     << "usage: skerry <sub-command> [options]     (skerry <sub-command> --help, or skerry help <sub-command>,\n"
+     << "                                            for its options; skerry --version or -V for the version)\n\n"
      << "sub-commands:\n";
   for (const auto& c : cmds) {
     os << "  " << c.name << std::string(c.name.size() < 14 ? 14 - c.name.size() : 1, ' ') << c.summary
@@ -37,11 +38,13 @@ int main(int argc, char** argv) {
   // naming the file. Inherited by the child processes of `skerry survey`.
   std::signal(SIGXFSZ, SIG_IGN);
   std::vector<std::string> args(argv + 1, argv + argc);
+  // `skerry help CMD` is `skerry CMD --help`.
+  if (args.size() == 2 && args[0] == "help") args = {args[1], "--help"};
   if (args.empty() || args[0] == "--help" || args[0] == "-h" || args[0] == "help") {
     usage(std::cout);
     return args.empty() ? skerry::kExitUsage : skerry::kExitOk;
   }
-  if (args[0] == "--version") {
+  if (args[0] == "--version" || args[0] == "-V") {
     std::cout << "skerry " << SKERRY_VERSION << " (" << SKERRY_GIT_REVISION << ")\n";
     return 0;
   }

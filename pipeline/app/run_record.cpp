@@ -210,6 +210,17 @@ std::string RunRecord::add_input(const std::string& role, const std::string& pat
 }
 
 void RunRecord::add_output(const std::string& path) { outputs_.push_back(path); }
+
+std::vector<std::string> outputs_listed_in(const std::string& run_record_path) {
+  std::vector<std::string> out;
+  std::ifstream in(run_record_path);
+  if (!in) return out;
+  const nlohmann::json j = nlohmann::json::parse(in, nullptr, /*allow_exceptions=*/false);
+  if (!j.is_object() || !j.contains("outputs") || !j["outputs"].is_array()) return out;
+  for (const auto& o : j["outputs"])
+    if (o.is_string()) out.push_back(o.get<std::string>());
+  return out;
+}
 void RunRecord::set_count(const std::string& key, std::int64_t value) { counts_[key] = value; }
 void RunRecord::set_value(const std::string& key, const std::string& value) { values_[key] = value; }
 void RunRecord::add_stage(const std::string& name, double seconds) { stages_.emplace_back(name, seconds); }

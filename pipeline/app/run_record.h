@@ -54,6 +54,11 @@ class RunRecord {
   std::chrono::steady_clock::time_point t0_;
 };
 
+/// The output files an earlier run record lists ("outputs"), or none when the
+/// file is missing or not a run record (a damaged record is ignored, not an
+/// error: it only decides what an earlier run may have left behind).
+std::vector<std::string> outputs_listed_in(const std::string& run_record_path);
+
 /// Measures one stage: adds it to the record when stop() is called or on destruction.
 class StageTimer {
  public:

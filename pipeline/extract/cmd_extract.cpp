@@ -21,6 +21,7 @@
 // previous outputs (if any) untouched and no partial file behind. Every check of
 // the inputs and options happens before the first output is written.
 #include <algorithm>
+#include <charconv>
 #include <chrono>
 #include <cmath>
 #include <cstdio>
@@ -83,7 +84,7 @@ po::options_description extract_options() {
       ("noise.window_beams", po::value<double>()->default_value(bg.box_beams), "side of the window over which each background/rms statistic is taken [beams]")
       ("noise.window_pixels", po::value<int>()->default_value(0), "window side [pixels]; overrides noise.window_beams when > 0")
       ("noise.grid_spacing_beams", po::value<double>()->default_value(bg.step_beams), "spacing of the grid of window centres [beams]; 0 = the window side (windows tile the image)")
-      ("noise.clip_sigma", po::value<double>()->default_value(bg.clip_sigma), "sigma-clipping level k (>= 1.5)")
+      ("noise.clip_sigma", po::value<double>()->default_value(bg.clip_sigma), "sigma-clipping level k (>= 2: iterated clipping collapses below about 1.8)")
       ("noise.second_pass", po::value<bool>()->default_value(true), "re-estimate the maps with the first pass's islands masked")
       ("noise.mask_margin_beams", po::value<double>()->default_value(1.0), "margin grown around islands for the second pass [beams]")
       ("noise.rms_map", po::value<std::string>()->default_value(""), "user rms map (FITS, same grid, Jy/beam) instead of an estimate")
@@ -242,11 +243,12 @@ struct OptionReader {
   double D(const char* k) const { return vm[k].as<double>(); }
   bool B(const char* k) const { return vm[k].as<bool>(); }
   int I(const char* k) const { return vm[k].as<int>(); }
+  /// A value in a message: the shortest text that reads back as the same double
+  /// (1.7, not 1.7000000000000002).
   static std::string txt(double v) {
-    std::ostringstream o;
-    o.precision(17);
-    o << v;
-    return o.str();
+    char buf[32];
+    const auto r = std::to_chars(buf, buf + sizeof buf, v);
+    return std::string(buf, r.ptr);
   }
 };
 
@@ -287,7 +289,8 @@ void read_noise_config(const OptionReader& o, ExtractSettings& c) {
   require(bg.box_beams > 0.0, "noise.window_beams", o.txt(bg.box_beams), "noise.window_beams > 0");
   require(bg.box_pixels >= 0, "noise.window_pixels", std::to_string(bg.box_pixels), "noise.window_pixels >= 0");
   require(bg.step_beams >= 0.0, "noise.grid_spacing_beams", o.txt(bg.step_beams), "noise.grid_spacing_beams >= 0");
-  require(bg.clip_sigma >= 1.5, "noise.clip_sigma", o.txt(bg.clip_sigma), "noise.clip_sigma >= 1.5");
+  require(bg.clip_sigma >= 2.0 && std::isfinite(bg.clip_sigma), "noise.clip_sigma", o.txt(bg.clip_sigma),
+          "noise.clip_sigma >= 2 (iterated clipping collapses below about 1.8)");
   c.job.second_pass = o.B("noise.second_pass");
   c.job.mask_margin_beams = o.D("noise.mask_margin_beams");
   require(c.job.mask_margin_beams >= 0.0, "noise.mask_margin_beams", o.txt(c.job.mask_margin_beams),
@@ -603,7 +606,10 @@ int run_extract(const std::vector<std::string>& args) {
   const std::string run_name = N + ".run.json";
   record.add_output(stage->final_path(run_name));
   record.write(stage->path(run_name));
-  stage->commit();
+  // An earlier run of the same NAME in this folder is replaced as a whole: its
+  // files that this run does not write are removed after the commit (README,
+  // "What skerry extract writes").
+  stage->commit(outputs_listed_in(stage->final_path(run_name)));
 
   const double secs = std::chrono::duration<double>(std::chrono::steady_clock::now() - t_start).count();
   char line[512];

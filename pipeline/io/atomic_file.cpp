@@ -1,8 +1,10 @@
 #include "io/atomic_file.h"
 
 #include <fcntl.h>
+#include <signal.h>
 #include <unistd.h>
 
+#include <algorithm>
 #include <atomic>
 #include <cerrno>
 #include <cstring>
@@ -91,7 +93,24 @@ StagedOutputs::StagedOutputs(const std::string& out_dir, const std::string& name
   std::error_code ec;
   fs::create_directories(final_, ec);
   if (ec) throw OutputError(out_dir, "cannot create the output folder: " + ec.message());
-  dir_ = final_ / ("." + name + "." + tag + "-" + std::to_string(::getpid()) + ".partial");
+  // A staging folder of the same NAME and TAG left by a process that no longer
+  // exists (killed, machine restarted) is removed; one of a live process (a
+  // concurrent run) is left alone.
+  const std::string prefix = "." + name + "." + tag + "-";
+  for (const auto& e : fs::directory_iterator(final_, ec)) {
+    const std::string n = e.path().filename().string();
+    if (n.size() <= prefix.size() + 8 || n.compare(0, prefix.size(), prefix) != 0 || !n.ends_with(".partial")) continue;
+    const std::string pid_text = n.substr(prefix.size(), n.size() - prefix.size() - 8);
+    if (pid_text.empty() || pid_text.find_first_not_of("0123456789") != std::string::npos || pid_text.size() > 9)
+      continue;
+    const pid_t pid = static_cast<pid_t>(std::stol(pid_text));
+    if (pid == ::getpid() || (::kill(pid, 0) != 0 && errno == ESRCH)) {
+      std::error_code rm;
+      fs::remove_all(e.path(), rm);
+    }
+  }
+  ec.clear();
+  dir_ = final_ / (prefix + std::to_string(::getpid()) + ".partial");
   fs::remove_all(dir_, ec);
   fs::create_directories(dir_, ec);
   if (ec) throw OutputError(dir_.string(), "cannot create a staging folder: " + ec.message());
@@ -109,11 +128,24 @@ std::string StagedOutputs::path(const std::string& file_name) {
 
 std::string StagedOutputs::final_path(const std::string& file_name) const { return (final_ / file_name).string(); }
 
-void StagedOutputs::commit() {
+void StagedOutputs::commit(const std::vector<std::string>& previous_outputs) {
   for (const auto& f : files_) {
     std::error_code ec;
     fs::rename(dir_ / f, final_ / f, ec);
     if (ec) throw OutputError((final_ / f).string(), "cannot move into place: " + ec.message());
+  }
+  // Once the new outputs are in place: an earlier run's files that this run did
+  // not write are removed, so that the folder never mixes two runs (only plain
+  // file names of this folder are considered).
+  for (const auto& p : previous_outputs) {
+    const fs::path old(p);
+    if (old.parent_path().lexically_normal() != final_.lexically_normal() &&
+        fs::weakly_canonical(old.parent_path()) != fs::weakly_canonical(final_))
+      continue;
+    const std::string n = old.filename().string();
+    if (n.empty() || std::find(files_.begin(), files_.end(), n) != files_.end()) continue;
+    std::error_code ec;
+    fs::remove(final_ / n, ec);
   }
   fsync_path(final_.string(), true);
 }

@@ -38,6 +38,8 @@ class AtomicOutput {
 /// folder (one rename each, then an fsync of the folder). The destructor removes
 /// the hidden folder and whatever is still in it, so a failed run leaves the
 /// previous outputs untouched and no partial file behind.
+/// A staging folder of the same NAME and TAG whose process no longer exists is
+/// removed when the next one is created.
 class StagedOutputs {
  public:
   /// Creates `out_dir` (if needed) and the hidden folder; throws OutputError.
@@ -52,7 +54,10 @@ class StagedOutputs {
   /// The recorded file names, in the order path() was called.
   const std::vector<std::string>& files() const { return files_; }
   /// Moves every recorded file into place; throws OutputError naming the file.
-  void commit();
+  /// Then removes the files of `previous_outputs` (an earlier run's list, e.g.
+  /// from its run record) that lie in the output folder and this run did not
+  /// write: the folder holds one run's outputs, never a mix.
+  void commit(const std::vector<std::string>& previous_outputs = {});
 
  private:
   std::filesystem::path final_, dir_;

@@ -260,6 +260,19 @@ TEST_F(Vocabulary, EachHelpDescribesAnOptionOnce) {
 }
 
 // The checks themselves catch the spellings this project used to have.
+// The entry points a user tries first (common practice of command-line tools):
+// `skerry help CMD` shows CMD's options, -V the version as --version does.
+TEST(CommandLine, HelpCommandAndShortVersion) {
+  for (const char* c : {"extract", "bands", "match", "survey", "report"}) {
+    const std::string a = run_stdout(std::string("help ") + c), b = run_stdout(std::string(c) + " --help");
+    EXPECT_FALSE(a.empty()) << c;
+    EXPECT_EQ(a, b) << c;
+  }
+  const std::string v = run_stdout("-V");
+  EXPECT_EQ(v.rfind("skerry ", 0), 0u) << v;
+  EXPECT_EQ(v, run_stdout("--version"));
+}
+
 TEST(VocabularyRules, CatchTheOldSpellings) {
   EXPECT_EQ(singular_form("bands.freqs_mhz"), singular_form("bands.freq_mhz"));
   EXPECT_NE(singular_form("noise.second_pass"), singular_form("noise.second_pas"));

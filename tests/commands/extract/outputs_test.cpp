@@ -4,6 +4,10 @@
 // and the documented configuration file equal to the built-in defaults.
 #include <gtest/gtest.h>
 
+#include <sys/wait.h>
+#include <unistd.h>
+
+#include <algorithm>
 #include <cstring>
 #include <nlohmann/json.hpp>
 
@@ -377,6 +381,40 @@ TEST(Outputs, MapStorageOptionErrorsNameTheOption) {
   EXPECT_EQ(r.code, kExitUsage);
   EXPECT_NE(r.err.find("output.quantise_step"), std::string::npos) << r.err;
   EXPECT_FALSE(fs::exists(tmp / "o")) << "nothing written on a usage error";
+}
+
+// A second run into the same folder replaces the first as a whole (README, "What
+// skerry extract writes"): the first run's files that the second does not write
+// (here the FITS/VOTable tables and the residual) are gone, a file that no run
+// wrote is kept, and a staging folder left by a killed run (its process gone) is
+// removed while one of a live process stays.
+TEST(Outputs, ASecondRunNeverLeavesTheFirstRunsFilesBeside) {
+  TempDir tmp("rerun");
+  const std::string img = write_field(tmp, 17);
+  const std::string out = tmp / "out";
+  RunResult r = run_skerry({"extract", img, "--out", out}, tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  ASSERT_TRUE(fs::exists(out + "/field.components.vot"));
+  std::ofstream(out + "/notes.txt") << "mine\n";
+  const pid_t child = fork();
+  if (child == 0) _exit(0);
+  ASSERT_GT(child, 0);
+  waitpid(child, nullptr, 0);  // a PID that no longer exists
+  const std::string dead = out + "/.field.extract-" + std::to_string(child) + ".partial";
+  const std::string live = out + "/.field.extract-" + std::to_string(getppid()) + ".partial";
+  fs::create_directories(dead);
+  std::ofstream(dead + "/field.model_map.fits") << "half-written";
+  fs::create_directories(live);
+  r = run_skerry({"extract", img, "--out", out, "--output.formats", "csv", "--output.residual", "false"}, tmp.path());
+  ASSERT_EQ(r.code, 0) << r.err;
+  const std::vector<std::string> expected = {
+      ".field.extract-" + std::to_string(getppid()) + ".partial", "field.background_map.fits",
+      "field.components.csv", "field.island_map.fits", "field.islands.csv", "field.model_map.fits",
+      "field.rms_map.fits", "field.run.json", "field.sources.csv", "notes.txt"};
+  std::vector<std::string> have;
+  for (const auto& e : fs::directory_iterator(out)) have.push_back(e.path().filename().string());
+  std::sort(have.begin(), have.end());
+  EXPECT_EQ(have, expected);
 }
 
 // configs/extract.ini documents every option with its default: running with it
