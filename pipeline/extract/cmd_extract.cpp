@@ -571,9 +571,13 @@ int run_extract(const std::vector<std::string>& args) {
     // Two writers: the rms and background maps (quantised: CPU-bound compression)
     // and the labels, so that compression does not hold up the other map.
     map_writes = std::async(std::launch::async, [maps, &sky, &cards, &cfg, &rms_min, rms_path, bg_path] {
-      const ImageF rms = maps.rms_image();
-      rms_min = smallest_rms(rms);
-      write_fits_image(rms_path, rms, sky, "JY/BEAM", cards, with_step(cfg.maps.rms, cfg.maps.step_fraction, rms_min));
+      {
+        // One full-resolution map at a time: the rms image is gone before the
+        // background image is made (each is as large as the input image).
+        const ImageF rms = maps.rms_image();
+        rms_min = smallest_rms(rms);
+        write_fits_image(rms_path, rms, sky, "JY/BEAM", cards, with_step(cfg.maps.rms, cfg.maps.step_fraction, rms_min));
+      }
       write_fits_image(bg_path, maps.background_image(), sky, "JY/BEAM", cards,
                        with_step(cfg.maps.background, cfg.maps.step_fraction, rms_min));
     });
