@@ -614,6 +614,13 @@ int run_extract(const std::vector<std::string>& args) {
   // files that this run does not write are removed after the commit (README,
   // "What skerry extract writes").
   stage->commit(outputs_listed_in(stage->final_path(run_name)));
+  {
+    // The replaced run's report page (written by `skerry report`, so not in the
+    // run record) describes outputs that are gone; output.report or `skerry
+    // report` writes the new run's page.
+    std::error_code ec;
+    fs::remove(stage->final_path(N + ".report.html"), ec);
+  }
 
   const double secs = std::chrono::duration<double>(std::chrono::steady_clock::now() - t_start).count();
   char line[512];

@@ -139,9 +139,11 @@ void StagedOutputs::commit(const std::vector<std::string>& previous_outputs) {
   // file names of this folder are considered).
   for (const auto& p : previous_outputs) {
     const fs::path old(p);
-    if (old.parent_path().lexically_normal() != final_.lexically_normal() &&
-        fs::weakly_canonical(old.parent_path()) != fs::weakly_canonical(final_))
-      continue;
+    if (old.parent_path().lexically_normal() != final_.lexically_normal()) {
+      std::error_code e1, e2;
+      const fs::path a = fs::weakly_canonical(old.parent_path(), e1), b = fs::weakly_canonical(final_, e2);
+      if (e1 || e2 || a != b) continue;
+    }
     const std::string n = old.filename().string();
     if (n.empty() || std::find(files_.begin(), files_.end(), n) != files_.end()) continue;
     std::error_code ec;

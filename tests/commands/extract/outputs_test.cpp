@@ -385,8 +385,8 @@ TEST(Outputs, MapStorageOptionErrorsNameTheOption) {
 
 // A second run into the same folder replaces the first as a whole (README, "What
 // skerry extract writes"): the first run's files that the second does not write
-// (here the FITS/VOTable tables and the residual) are gone, a file that no run
-// wrote is kept, and a staging folder left by a killed run (its process gone) is
+// (here the FITS/VOTable tables and the residual) and the first run's report
+// page are gone, a file that no run wrote is kept, and a staging folder left by a killed run (its process gone) is
 // removed while one of a live process stays.
 TEST(Outputs, ASecondRunNeverLeavesTheFirstRunsFilesBeside) {
   TempDir tmp("rerun");
@@ -396,6 +396,7 @@ TEST(Outputs, ASecondRunNeverLeavesTheFirstRunsFilesBeside) {
   ASSERT_EQ(r.code, 0) << r.err;
   ASSERT_TRUE(fs::exists(out + "/field.components.vot"));
   std::ofstream(out + "/notes.txt") << "mine\n";
+  std::ofstream(out + "/field.report.html") << "the first run's page\n";  // as `skerry report` would leave it
   const pid_t child = fork();
   if (child == 0) _exit(0);
   ASSERT_GT(child, 0);
