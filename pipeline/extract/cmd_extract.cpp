@@ -104,6 +104,10 @@ po::options_description extract_options() {
       ("fit.fixed_shape", po::value<bool>()->default_value(fit.fix_shape_to_beam), "fit amplitude and position only, shape fixed to the beam")
       ("fit.region_margin_beam_sigma", po::value<double>()->default_value(fit.fit_margin_beam_sigma), "fit region = the island's pixels plus every pixel outside all islands (finite, positive rms) within this many beam sigmas (Mahalanobis distance with the beam covariance) of an island pixel; 0 = island pixels only")
       ("fit.information_criterion", po::value<bool>()->default_value(fit.use_information_criterion), "compare k and k-1 components by the information criterion; false = keep all maxima")
+      ("fit.residual_search", po::value<bool>()->default_value(fit.residual_search), "after the fit of the island's peaks, add a component at a significant residual or split an elongated component, kept on the likelihood-ratio statistic (blends closer than a beam, extended emission)")
+      ("fit.residual_snr", po::value<double>()->default_value(fit.residual_snr), "a whitened residual (data - model)/rms of at least this proposes an added component")
+      ("fit.split_min_excess", po::value<double>()->default_value(fit.split_min_excess), "a component whose variance along its major axis exceeds the beam's by more than this fraction is proposed for a split")
+      ("fit.add_min_lr", po::value<double>()->default_value(fit.add_min_lr), "smallest likelihood-ratio statistic 2 (chi2_k - chi2_k+1) / beam area [pix] that keeps a proposed component")
       ("fit.max_iterations", po::value<int>()->default_value(fit.lm.max_iterations), "Levenberg-Marquardt step limit per fit")
       ("fit.condon_errors", po::value<bool>()->default_value(sky.use_condon_errors), "report Condon (1997) expected errors instead of the fit's corrected covariance")
       // [errors]
@@ -337,6 +341,13 @@ void read_detect_fit_config(const OptionReader& o, ExtractSettings& c) {
   require(fit.fit_margin_beam_sigma >= 0.0 && fit.fit_margin_beam_sigma <= 10.0, "fit.region_margin_beam_sigma",
           o.txt(fit.fit_margin_beam_sigma), "0 <= fit.region_margin_beam_sigma <= 10");
   fit.use_information_criterion = o.B("fit.information_criterion");
+  fit.residual_search = o.B("fit.residual_search");
+  fit.residual_snr = o.D("fit.residual_snr");
+  require(fit.residual_snr > 0.0, "fit.residual_snr", o.txt(fit.residual_snr), "fit.residual_snr > 0");
+  fit.split_min_excess = o.D("fit.split_min_excess");
+  require(fit.split_min_excess >= 0.0, "fit.split_min_excess", o.txt(fit.split_min_excess), "fit.split_min_excess >= 0");
+  fit.add_min_lr = o.D("fit.add_min_lr");
+  require(fit.add_min_lr >= 0.0, "fit.add_min_lr", o.txt(fit.add_min_lr), "fit.add_min_lr >= 0");
   fit.lm.max_iterations = o.I("fit.max_iterations");
   require(fit.lm.max_iterations >= 1, "fit.max_iterations", std::to_string(fit.lm.max_iterations), "fit.max_iterations >= 1");
 

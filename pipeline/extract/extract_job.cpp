@@ -252,6 +252,7 @@ std::uint32_t info_bits_from_fit(const PixelComponent& c) {
   std::uint32_t b = 0;
   if (c.fit_flags & kFitShapeFixed) b |= kInfoFixedShape;
   if (c.fit_flags & kFitReducedComponents) b |= kInfoFewerComponents;
+  if (c.fit_flags & kFitAddedFromResidual) b |= kInfoResidualComponents;
   return b;
 }
 
@@ -270,7 +271,7 @@ CatalogueComponent measure_component(const SkyImage& sky, const ExtractInputs& i
   r.y_pix = pc.y;
   std::uint32_t flags = flags_from_fit(pc);
   std::uint32_t info = info_bits_from_fit(pc);
-  if (f.n_maxima > cfg.fit.max_components) flags |= kFlagComponentCap;
+  if (f.n_maxima > cfg.fit.max_components || f.residual_at_cap) flags |= kFlagComponentCap;
   const long px = std::clamp(std::lround(pc.x), 0L, nx - 1), py = std::clamp(std::lround(pc.y), 0L, ny - 1);
   const bool pos_ok = std::isfinite(pc.x) && std::isfinite(pc.y);
   double pbv = NAN;
@@ -383,7 +384,7 @@ std::vector<IslandRecord> island_records(const SkyImage& sky, const ExtractConfi
     if (is.touches_blank) f |= kFlagNearBlank;
     if (island_is_diffuse(ci, cfg.grouping)) f |= kFlagDiffuse;
     for (const auto& pc : fits[k].components) f |= flags_from_fit(pc) & kFlagFitFailed;
-    if (fits[k].n_maxima > cfg.fit.max_components) f |= kFlagComponentCap;
+    if (fits[k].n_maxima > cfg.fit.max_components || fits[k].residual_at_cap) f |= kFlagComponentCap;
     r.flags = f;
     ci.flags = f;
   }

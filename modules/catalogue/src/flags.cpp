@@ -21,7 +21,7 @@ const std::vector<FlagInfo>& flag_table() {
        "Gaussian fit did not converge (values: best parameters found) or failed (values: island moments)"},
       {kFlagBelowPbCut, "below_pb_cut", "primary-beam response at the centre below image.pb_cut"},
       {kFlagComponentCap, "component_cap",
-       "the island had more candidate peaks than fit.max_components"},
+       "the island had more candidate peaks than fit.max_components, or a significant residual (fit.residual_snr) remained with fit.max_components fitted"},
       {kFlagAtBound, "at_bound",
        "a fitted parameter ended at its bound (size floor or centre at the island edge)"},
       {kFlagBadRms, "bad_rms",
@@ -41,6 +41,8 @@ const std::vector<FlagInfo>& info_bit_table() {
       {kInfoFewerComponents, "fewer_components",
        "the island's peaks were fitted with fewer components (more were not justified by the data)"},
       {kInfoMultiIsland, "multi_island", "source only: the source joins components of several islands"},
+      {kInfoResidualComponents, "residual_components",
+       "the island's fit gained components from its residual (a blend split or structure added; fit.residual_search)"},
   };
   return t;
 }

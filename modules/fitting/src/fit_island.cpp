@@ -68,6 +68,7 @@ struct Region {
   std::vector<double> x, y;     // image coordinates (0-based)
   std::vector<double> d, w;     // data [Jy/beam], 1 / rms
   std::vector<int> index_of;    // cutout linear index -> region index or -1
+  std::vector<char> in_island;  // 1 for island pixels, 0 for the fit margin
   int n() const { return static_cast<int>(x.size()); }
 };
 
@@ -210,6 +211,11 @@ std::vector<Peak> find_peaks(const IslandCutout& isl, const std::vector<int>& is
   return peaks;
 }
 
+// Starting values of one component (A [Jy/beam], x, y [pix], sa, sb [pix], t [rad]).
+struct Init {
+  double A = 0.0, x = 0.0, y = 0.0, sa = 0.0, sb = 0.0, t = 0.0;
+};
+
 struct TrialFit {
   bool usable = false;
   LmResult lm;
@@ -233,11 +239,16 @@ class IslandFitter {
  private:
   bool prepare();
   TrialFit fit(const std::vector<Peak>& peaks, int k, bool fixed, bool moment_start);
+  TrialFit fit_from(const std::vector<Init>& init, bool fixed, const LmOptions& lm_opt);
+  std::vector<Init> params_of(const TrialFit& tf) const;
+  bool refine(TrialFit& best, int cap, int& added);
+  double lr_statistic(const TrialFit& simpler, const TrialFit& richer) const;
   void unpack(const TrialFit& tf, IslandFit& out);
   PixelComponent moments_component();
   void covariances(const Eigen::MatrixXd& Jw, const BoolVec& fixed, Eigen::MatrixXd& cov,
                    Eigen::MatrixXd& cov_white, bool& ok);
   double rms_at(double x, double y) const;
+  int nearest_pixel(double x, double y) const;
   const CorrTable& corr_table() {
     make_corr_table(isl_.beam_cov_pix, opt_.correlation_cutoff_sigma, corr_cache());
     return corr_cache();
@@ -255,6 +266,19 @@ class IslandFitter {
   Eigen::Matrix2d moment_cov_ = Eigen::Matrix2d::Zero();
   double mx_ = 0.0, my_ = 0.0, mpeak_ = 0.0;
 };
+
+int IslandFitter::nearest_pixel(double x, double y) const {
+  int best = 0;
+  double bd = INFINITY;
+  for (int i = 0; i < reg_.n(); ++i) {
+    const double d2 = (reg_.x[i] - x) * (reg_.x[i] - x) + (reg_.y[i] - y) * (reg_.y[i] - y);
+    if (d2 < bd) {
+      bd = d2;
+      best = i;
+    }
+  }
+  return best;
+}
 
 double IslandFitter::rms_at(double x, double y) const {
   const int nx = static_cast<int>(isl_.rms.cols()), ny = static_cast<int>(isl_.rms.rows());
@@ -349,6 +373,7 @@ bool IslandFitter::prepare() {
       reg_.x.push_back(cx + isl_.x_origin);
       reg_.y.push_back(cy + isl_.y_origin);
       reg_.d.push_back(isl_.data(cy, cx));
+      reg_.in_island.push_back(use[cy * nx + cx] == 1 ? 1 : 0);
       reg_.w.push_back(1.0 / static_cast<double>(isl_.rms(cy, cx)));
     }
   rms_floor_ = INFINITY;
@@ -392,7 +417,35 @@ bool IslandFitter::prepare() {
 }
 
 TrialFit IslandFitter::fit(const std::vector<Peak>& peaks, int k, bool fixed, bool moment_start) {
+  const double smax = std::max(bx1_ - bx0_, by1_ - by0_) + 2.0 * beam_.sa;
+  std::vector<Init> init(k);
+  for (int c = 0; c < k; ++c) {
+    const Peak& pk = peaks[c];
+    Init& in = init[c];
+    in.A = std::max(pk.value, rms_floor_);
+    in.x = pk.cx + isl_.x_origin;
+    in.y = pk.cy + isl_.y_origin;
+    Shape sh = beam_;
+    if (moment_start && k == 1) {
+      in.x = std::clamp(mx_, bx0_, bx1_);
+      in.y = std::clamp(my_, by0_, by1_);
+      const Shape ms = shape_of(moment_cov_);
+      if (ms.sa > beam_.sa || ms.sb > beam_.sb) {
+        sh.sa = std::clamp(ms.sa, beam_.sb, smax);
+        sh.sb = std::clamp(ms.sb, beam_.sb, smax);
+        sh.t = ms.t;
+      }
+    }
+    in.sa = sh.sa;
+    in.sb = sh.sb;
+    in.t = sh.t;
+  }
+  return fit_from(init, fixed, opt_.lm);
+}
+
+TrialFit IslandFitter::fit_from(const std::vector<Init>& init, bool fixed, const LmOptions& lm_opt) {
   TrialFit tf;
+  const int k = static_cast<int>(init.size());
   tf.k = k;
   tf.fixed_shape = fixed;
   const int npc = fixed ? 3 : 6;
@@ -403,25 +456,14 @@ TrialFit IslandFitter::fit(const std::vector<Peak>& peaks, int k, bool fixed, bo
   const double smin = opt_.min_size_beam_fraction * beam_.sb;
   const double smax = std::max(bx1_ - bx0_, by1_ - by0_) + 2.0 * beam_.sa;
   for (int c = 0; c < k; ++c) {
-    const Peak& pk = peaks[c];
-    double A = std::max(pk.value, rms_floor_), x = pk.cx + isl_.x_origin, y = pk.cy + isl_.y_origin;
-    Shape sh = beam_;
-    if (moment_start && k == 1) {
-      x = std::clamp(mx_, bx0_, bx1_);
-      y = std::clamp(my_, by0_, by1_);
-      const Shape ms = shape_of(moment_cov_);
-      if (ms.sa > beam_.sa || ms.sb > beam_.sb) {
-        sh.sa = std::clamp(ms.sa, beam_.sb, smax);
-        sh.sb = std::clamp(ms.sb, beam_.sb, smax);
-        sh.t = ms.t;
-      }
-    }
-    p0.segment(npc * c, 3) << A, x, y;
+    const Init& in = init[c];
+    p0.segment(npc * c, 3) << std::max(in.A, rms_floor_), std::clamp(in.x, bx0_, bx1_),
+        std::clamp(in.y, by0_, by1_);
     lo.segment(npc * c, 3) << 0.0, bx0_, by0_;
     hi.segment(npc * c, 3) << INFINITY, bx1_, by1_;
     if (!fixed) {
-      p0.segment(npc * c + 3, 3) << std::clamp(sh.sa, smin, smax), std::clamp(sh.sb, smin, smax),
-          sh.t;
+      p0.segment(npc * c + 3, 3) << std::clamp(in.sa, smin, smax), std::clamp(in.sb, smin, smax),
+          in.t;
       lo.segment(npc * c + 3, 3) << smin, smin, -INFINITY;
       hi.segment(npc * c + 3, 3) << smax, smax, INFINITY;
     }
@@ -451,7 +493,7 @@ TrialFit IslandFitter::fit(const std::vector<Peak>& peaks, int k, bool fixed, bo
     }
     return true;
   };
-  LevenbergMarquardt lm(opt_.lm);
+  LevenbergMarquardt lm(lm_opt);
   lm.set_bounds(lo, hi);
   tf.lm = lm.solve(f, p0, m);
   const LmStatus st = tf.lm.status;
@@ -466,6 +508,136 @@ TrialFit IslandFitter::fit(const std::vector<Peak>& peaks, int k, bool fixed, bo
   const double neff = std::max(static_cast<double>(m) / beam_area_pix_, 1.0);
   tf.bic = tf.lm.chi2 / std::max(beam_area_pix_, 1.0) + n * std::log(std::max(neff, 1.0 + 1e-9));
   return tf;
+}
+
+std::vector<Init> IslandFitter::params_of(const TrialFit& tf) const {
+  const int npc = tf.fixed_shape ? 3 : 6;
+  std::vector<Init> out(tf.k);
+  for (int c = 0; c < tf.k; ++c) {
+    const double* q = tf.lm.params.data() + npc * c;
+    out[c] = tf.fixed_shape ? Init{q[0], q[1], q[2], beam_.sa, beam_.sb, beam_.t}
+                            : Init{q[0], q[1], q[2], q[3], q[4], q[5]};
+  }
+  return out;
+}
+
+// Likelihood-ratio statistic of a richer fit against a simpler one,
+//   Lambda = 2 (chi2_simpler - chi2_richer) / Omega_beam_pix,
+// with chi2 the whitened (pixel-independent) sums. In noise whose correlation
+// is the beam, rho(d) = exp(-d^T C_beam^-1 d / 2), a beam-shaped change of peak
+// a sigma adds a^2 Omega_beam / 2 to the whitened chi2 (the integral of g^2 is
+// pi sqrt(det C_beam) = Omega_beam / 2) and a^2 to the generalised chi2
+// r^T Sigma^-1 r (the image is its own matched filter in such noise: the
+// optimal signal-to-noise of a beam-shaped source is its peak over the rms)
+// [derived, docs/CONVENTIONS.md "Noise"]. Lambda is therefore the
+// generalised-chi2 likelihood ratio for changes on the scale of the beam, and
+// about twice it for broad changes, which makes broad additions easier to keep.
+double IslandFitter::lr_statistic(const TrialFit& simpler, const TrialFit& richer) const {
+  return 2.0 * (simpler.lm.chi2 - richer.lm.chi2) / std::max(beam_area_pix_, 1.0);
+}
+
+// Residual-driven decomposition (see fit_island in skerry/fitting.h): from the
+// fit `best`, propose (a) a beam-shaped component at the most significant
+// positive whitened residual of the island and (b) the split of the component
+// that is most elongated beyond the beam into two beam-wide components along
+// its major axis; refit each proposal from the current parameters, keep the
+// better one when its likelihood-ratio statistic against `best` reaches
+// FitOptions::add_min_lr, and repeat until no proposal passes or `cap`
+// components are reached. Deterministic: proposals and fits depend on the
+// island only. Returns true when significant residual structure remains at
+// the cap.
+
+bool IslandFitter::refine(TrialFit& best, int cap, int& added) {
+  const int m = reg_.n();
+  auto worst_residual = [&](const TrialFit& tf, int& at) {
+    double rmax = -INFINITY;
+    at = -1;
+    for (int i = 0; i < m; ++i)
+      if (reg_.in_island[i] && tf.lm.residuals(i) > rmax) {
+        rmax = tf.lm.residuals(i);
+        at = i;
+      }
+    return rmax;
+  };
+  const Eigen::Matrix2d& B = isl_.beam_cov_pix;
+  LmOptions screen_lm = opt_.lm;
+  screen_lm.max_iterations = std::min(opt_.lm.max_iterations, 30);
+  screen_lm.step_rel_tol = std::max(opt_.lm.step_rel_tol, 1e-4);
+  screen_lm.chi2_rel_tol = std::max(opt_.lm.chi2_rel_tol, 1e-4);
+  screen_lm.gradient_tol = std::max(opt_.lm.gradient_tol, 1e-5);
+  // A proposal is kept only when it lowers chi2 by add_min_lr Omega_beam / 2,
+  // which needs at least that much chi2 now.
+  const double need_chi2 = 0.5 * opt_.add_min_lr * beam_area_pix_;
+  while (best.k < cap && best.lm.chi2 >= need_chi2) {
+    const std::vector<Init> base = params_of(best);
+    std::vector<std::vector<Init>> proposals;
+    int at = -1;
+    const double rmax = worst_residual(best, at);
+    if (at >= 0 && rmax >= opt_.residual_snr) {
+      std::vector<Init> p = base;
+      p.push_back({rmax / reg_.w[at], reg_.x[at], reg_.y[at], beam_.sa, beam_.sb, beam_.t});
+      proposals.push_back(std::move(p));
+    }
+    if (!best.fixed_shape) {
+      // Excess variance along each component's major axis over the beam's
+      // variance in that direction, u^T C_beam u, as a fraction e of the latter,
+      // less the same excess across the axis: two point sources side by side
+      // widen a component along the line joining them only, a source resolved
+      // in both directions is no pair. A point source's fitted e scatters by
+      // about 2 sqrt(2) / SNR (twice the fractional error of the size,
+      // sqrt(2) / SNR for a beam-sized component: Condon 1997, REF-CONDON-02),
+      // so only an e beyond twice that is proposed.
+      int split = -1;
+      double best_ratio = 0.0;
+      for (int c = 0; c < best.k; ++c) {
+        const Init& q = base[c];
+        const double sa = std::max(q.sa, q.sb), sb = std::min(q.sa, q.sb);
+        const double t = q.sa >= q.sb ? q.t : q.t + 0.5 * kPi;
+        const Eigen::Vector2d u(std::cos(t), std::sin(t)), v(-std::sin(t), std::cos(t));
+        const double vb = u.dot(B * u), vm = v.dot(B * v);
+        const double ratio = (sa * sa - vb) / vb - std::max(0.0, (sb * sb - vm) / vm);
+        const double snr = q.A * reg_.w[nearest_pixel(q.x, q.y)];
+        const double need = std::max(opt_.split_min_excess, 2.0 * 2.0 * std::sqrt(2.0) / std::max(snr, 1e-9));
+        if (ratio > need && ratio - need > best_ratio) {
+          best_ratio = ratio - need;
+          split = c;
+        }
+      }
+      if (split >= 0) {
+        const Init& q = base[split];
+        const double sa = std::max(q.sa, q.sb), sb = std::min(q.sa, q.sb);
+        const double t = q.sa >= q.sb ? q.t : q.t + 0.5 * kPi;
+        const Eigen::Vector2d u(std::cos(t), std::sin(t));
+        const double vb = u.dot(B * u), half = std::sqrt(sa * sa - vb);
+        // Two components at +-half along the axis, each sqrt(vb) long: their sum
+        // keeps the component's second moment along the axis and its flux
+        // (A sa sb = 2 A' sqrt(vb) sb).
+        const double a = 0.5 * q.A * sa / std::sqrt(vb);
+        std::vector<Init> p = base;
+        p[split] = {a, q.x + half * u.x(), q.y + half * u.y(), std::sqrt(vb), sb, t};
+        p.push_back({a, q.x - half * u.x(), q.y - half * u.y(), std::sqrt(vb), sb, t});
+        proposals.push_back(std::move(p));
+      }
+    }
+    if (proposals.empty()) break;
+    // Proposals are screened with looser solver tolerances (relative chi2 and
+    // step 1e-4, at most 30 steps: a proposal's chi2 can only fall further, so
+    // the screen errs towards rejecting); one that comes within 20 % of the
+    // threshold is refitted to the full tolerances from its screened
+    // parameters and decided on that fit.
+    TrialFit chosen;
+    for (const auto& p : proposals) {
+      TrialFit tf = fit_from(p, best.fixed_shape, screen_lm);
+      if (tf.usable && (!chosen.usable || tf.lm.chi2 < chosen.lm.chi2)) chosen = std::move(tf);
+    }
+    if (!chosen.usable || !(lr_statistic(best, chosen) >= 0.8 * opt_.add_min_lr)) break;
+    chosen = fit_from(params_of(chosen), best.fixed_shape, opt_.lm);
+    if (!chosen.usable || !(lr_statistic(best, chosen) >= opt_.add_min_lr)) break;
+    best = std::move(chosen);
+    ++added;
+  }
+  int at = -1;
+  return best.k >= cap && worst_residual(best, at) >= opt_.residual_snr;
 }
 
 void IslandFitter::covariances(const Eigen::MatrixXd& Jw, const BoolVec& fixed,
@@ -657,6 +829,10 @@ IslandFit IslandFitter::run() {
     if (!best.usable || (opt_.use_information_criterion ? tf.bic < best.bic : false)) best = tf;
     if (!opt_.use_information_criterion && best.usable) break;
   }
+  if (best.usable && opt_.residual_search) {
+    const int cap = std::max(opt_.max_components, 1);
+    out.residual_at_cap = refine(best, cap, out.n_added);
+  }
   if (!best.usable) {
     out.components.push_back(moments_component());
     out.reduced_chi2 = NAN;
@@ -667,6 +843,10 @@ IslandFit IslandFitter::run() {
   unpack(best, out);
   if (best.k < out.n_maxima) {
     for (auto& c : out.components) c.fit_flags |= kFitReducedComponents;
+  }
+  for (auto& c : out.components) {
+    if (out.n_added > 0) c.fit_flags |= kFitAddedFromResidual;
+    if (out.residual_at_cap) c.fit_flags |= kFitResidualAtCap;
   }
   std::stable_sort(out.components.begin(), out.components.end(),
                    [](const PixelComponent& a, const PixelComponent& b) {

@@ -355,17 +355,25 @@ TEST(Outputs, StoredMapsReadBackAsNoiseMaps) {
       EXPECT_EQ(again.at(c).f64[i], first.at(c).f64[i]) << c << " row " << i;
   // Quantised: the same sources; a pixel within half a step of the island
   // threshold can join or leave an island, which moves that island's fit by a
-  // fraction of its error; the bulk does not move.
+  // fraction of its error; the bulk does not move. Components of islands that
+  // the residual search decomposed (info bit 16, residual_components: a faint
+  // component split off a bright one shares its pixels with it) move more, up
+  // to half their error (and their errors by a quarter), and are counted apart.
   ASSERT_EQ(quant.rows(), first.rows());
-  std::size_t moved = 0;
+  std::size_t moved = 0, plain = 0;
   for (std::size_t i = 0; i < first.rows(); ++i) {
     const double err = first.at("s_int_err_jy").f64[i];
     const double d = std::fabs(quant.at("s_int_jy").f64[i] - first.at("s_int_jy").f64[i]);
-    EXPECT_LT(d, 0.25 * err) << "row " << i;
-    EXPECT_NEAR(quant.at("s_int_err_jy").f64[i], err, 0.05 * err) << "row " << i;
+    const bool decomposed = (first.at("info_bits").i64[i] & 16) != 0;
+    EXPECT_EQ(quant.at("info_bits").i64[i] & 16, first.at("info_bits").i64[i] & 16) << "row " << i;
+    EXPECT_LT(d, (decomposed ? 0.5 : 0.25) * err) << "row " << i;
+    EXPECT_NEAR(quant.at("s_int_err_jy").f64[i], err, (decomposed ? 0.25 : 0.05) * err) << "row " << i;
+    if (decomposed) continue;
+    ++plain;
     if (d > 0.02 * err) ++moved;
   }
-  EXPECT_LE(moved, first.rows() / 20) << "more than 5 % of the flux densities moved by over 2 % of their error";
+  ASSERT_GT(plain, first.rows() / 2);
+  EXPECT_LE(moved, plain / 20) << "more than 5 % of the flux densities moved by over 2 % of their error";
 }
 
 TEST(Outputs, MapStorageOptionErrorsNameTheOption) {

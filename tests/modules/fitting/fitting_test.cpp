@@ -429,6 +429,7 @@ TEST(FitIsland, ExtendedNonGaussianIsland) {
   }
   FitOptions opt;
   opt.max_components = 4;
+  opt.residual_search = false;
   const IslandCutout cut = fittest::make_cutout(img, 1e-4, 0, 0, 80, 80, 3.0, bp);
   const auto fit = skerry::fit_island(cut, opt);
   ASSERT_GE(fit.components.size(), 1u);
@@ -445,6 +446,13 @@ TEST(FitIsland, ExtendedNonGaussianIsland) {
   // island's residual rms exceeds the noise), which is what a structure class
   // "extended, poorly fitted" can be judged from.
   EXPECT_GT(fit.residual_rms, 1.5e-4);
+  // The residual search adds components where that residual is significant,
+  // up to the cap, and lowers it.
+  opt.residual_search = true;
+  const auto searched = skerry::fit_island(cut, opt);
+  EXPECT_EQ(searched.components.size(), 4u);
+  EXPECT_GT(searched.n_added, 0);
+  EXPECT_LT(searched.residual_rms, fit.residual_rms);
 }
 
 }  // namespace

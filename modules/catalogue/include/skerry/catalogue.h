@@ -67,7 +67,7 @@ inline constexpr std::uint32_t kFlagNearBlank = 1u << 1;       ///< a blank (NaN
 inline constexpr std::uint32_t kFlagNearBright = 1u << 2;      ///< a component bright_ratio times brighter (peak) lies within bright_radius_beams: possible artefact
 inline constexpr std::uint32_t kFlagFitFailed = 1u << 3;       ///< fit did not converge (best parameters kept) or failed (moment-based values)
 inline constexpr std::uint32_t kFlagBelowPbCut = 1u << 4;      ///< primary-beam response at the centre below the settable cut
-inline constexpr std::uint32_t kFlagComponentCap = 1u << 5;    ///< the island had more candidate peaks than the component cap
+inline constexpr std::uint32_t kFlagComponentCap = 1u << 5;    ///< the island had more candidate peaks than the component cap, or significant residual remained at the cap
 inline constexpr std::uint32_t kFlagAtBound = 1u << 6;         ///< a fitted parameter ended at its bound (size floor, centre at the island edge)
 inline constexpr std::uint32_t kFlagBadRms = 1u << 7;          ///< local rms not positive or not finite at the centre; SNR and errors undefined (NaN)
 inline constexpr std::uint32_t kFlagDiffuse = 1u << 8;         ///< island/source: residual rms exceeds diffuse_residual_ratio x local rms
@@ -77,6 +77,7 @@ inline constexpr std::uint32_t kInfoUnresolved = 1u << 0;       ///< not resolve
 inline constexpr std::uint32_t kInfoFixedShape = 1u << 1;       ///< shape held at the beam (fixed-beam mode); sizes are the beam's
 inline constexpr std::uint32_t kInfoFewerComponents = 1u << 2;  ///< the island's peaks were fitted with fewer components (the larger model was not justified)
 inline constexpr std::uint32_t kInfoMultiIsland = 1u << 3;      ///< source only: the source joins components of several islands
+inline constexpr std::uint32_t kInfoResidualComponents = 1u << 4;///< the island's residual search added or split components
 
 struct FlagInfo {
   std::uint32_t bit;
