@@ -346,6 +346,103 @@ UnitReading read_unit(const std::string& bunit) {
   return {};
 }
 
+/// A per-plane restoring beam from a beam table: a binary-table extension
+/// EXTNAME = 'BEAMS' with columns BMAJ, BMIN (FWHM), BPA (east of north), CHAN
+/// and POL (0-based plane indices along the spectral and the Stokes axis), the
+/// angles in the units of TUNITn (arcsec when absent for BMAJ/BMIN, deg for BPA;
+/// REF-FITS-08). Returns the row for (chan, pol) as (BMAJ, BMIN, BPA) in degrees,
+/// nullopt when the file has no such table. The current HDU is `image_hdu` again
+/// on return. A table without the columns or without a row for the plane is an
+/// InputError.
+struct TableBeam {
+  double bmaj_deg = 0.0, bmin_deg = 0.0, bpa_deg = 0.0;
+  long row = 0;  ///< 1-based
+};
+std::optional<TableBeam> beam_from_table(fitsfile* f, const std::string& path, int image_hdu, long chan, long pol) {
+  int status = 0;
+  char name[] = "BEAMS";
+  if (fits_movnam_hdu(f, BINARY_TBL, name, 0, &status)) {
+    fits_clear_errmsg();
+    status = 0;
+    int type = 0;
+    fits_movabs_hdu(f, image_hdu, &type, &status);
+    if (status) throw InputError(path, "cannot return to the image HDU: " + cfitsio_text(status));
+    return std::nullopt;
+  }
+  struct Back {  // back to the image HDU however this function ends
+    fitsfile* f;
+    int hdu;
+    ~Back() {
+      int st = 0, type = 0;
+      fits_movabs_hdu(f, hdu, &type, &st);
+      fits_clear_errmsg();
+    }
+  } back{f, image_hdu};
+  auto column = [&](const char* col) {
+    int num = 0, st = 0;
+    char templ[16];
+    std::snprintf(templ, sizeof templ, "%s", col);
+    if (fits_get_colnum(f, CASEINSEN, templ, &num, &st)) {
+      fits_clear_errmsg();
+      throw InputError(path, std::string("beam table BEAMS has no column ") + col);
+    }
+    return num;
+  };
+  const int c_maj = column("BMAJ"), c_min = column("BMIN"), c_pa = column("BPA"), c_chan = column("CHAN"),
+            c_pol = column("POL");
+  auto to_deg = [&](int col, const char* what, double dflt) {
+    char key[16];
+    std::snprintf(key, sizeof key, "TUNIT%d", col);
+    char value[FLEN_VALUE] = {0};
+    int st = 0;
+    if (fits_read_key(f, TSTRING, key, value, nullptr, &st)) {
+      fits_clear_errmsg();
+      return dflt;
+    }
+    const std::string u = lower(trim(value));
+    if (u == "arcsec" || u == "\"") return 1.0 / 3600.0;
+    if (u == "arcmin" || u == "'") return 1.0 / 60.0;
+    if (u == "deg" || u == "degree" || u == "degrees") return 1.0;
+    if (u == "rad") return 180.0 / kPi;
+    throw InputError(path, std::string("beam table BEAMS: ") + key + " '" + trim(value) + "' of " + what +
+                               " is not arcsec, arcmin, deg or rad");
+  };
+  const double k_maj = to_deg(c_maj, "BMAJ", 1.0 / 3600.0), k_min = to_deg(c_min, "BMIN", 1.0 / 3600.0),
+               k_pa = to_deg(c_pa, "BPA", 1.0);
+  long nrows = 0;
+  if (fits_get_num_rows(f, &nrows, &status))
+    throw InputError(path, "cannot read the beam table BEAMS: " + cfitsio_text(status));
+  if (nrows < 0 || nrows > 10000000) throw InputError(path, "beam table BEAMS has an impossible row count");
+  std::vector<double> maj(static_cast<std::size_t>(nrows)), min(maj.size()), pa(maj.size());
+  std::vector<long> ch(maj.size()), po(maj.size());
+  if (nrows > 0) {
+    double dnull = std::numeric_limits<double>::quiet_NaN();
+    long lnull = -1;
+    int anynul = 0;
+    fits_read_col(f, TDOUBLE, c_maj, 1, 1, nrows, &dnull, maj.data(), &anynul, &status);
+    fits_read_col(f, TDOUBLE, c_min, 1, 1, nrows, &dnull, min.data(), &anynul, &status);
+    fits_read_col(f, TDOUBLE, c_pa, 1, 1, nrows, &dnull, pa.data(), &anynul, &status);
+    fits_read_col(f, TLONG, c_chan, 1, 1, nrows, &lnull, ch.data(), &anynul, &status);
+    fits_read_col(f, TLONG, c_pol, 1, 1, nrows, &lnull, po.data(), &anynul, &status);
+    if (status) throw InputError(path, "cannot read the beam table BEAMS: " + cfitsio_text(status));
+  }
+  std::optional<TableBeam> found;
+  for (std::size_t r = 0; r < maj.size(); ++r) {
+    if (ch[r] != chan || po[r] != pol) continue;
+    if (found)
+      throw InputError(path, "beam table BEAMS has two rows (" + std::to_string(found->row) + " and " +
+                                 std::to_string(r + 1) + ") for CHAN " + std::to_string(chan) + ", POL " +
+                                 std::to_string(pol));
+    if (!std::isfinite(maj[r]) || !std::isfinite(min[r]) || !std::isfinite(pa[r]))
+      throw InputError(path, "beam table BEAMS row " + std::to_string(r + 1) + " holds a value that is not a number");
+    found = TableBeam{maj[r] * k_maj, min[r] * k_min, pa[r] * k_pa, static_cast<long>(r + 1)};
+  }
+  if (!found)
+    throw InputError(path, "beam table BEAMS has no row for the plane measured (CHAN " + std::to_string(chan) +
+                               ", POL " + std::to_string(pol) + ")");
+  return found;
+}
+
 /// Every card of the current HDU, 80 characters each (HISTORY and COMMENT included).
 std::string all_cards(fitsfile* f, const std::string& path) {
   int status = 0, nkeys = 0;
@@ -628,7 +725,8 @@ SkyImage read_sky_image(const std::string& path, const ImageReadOptions& opt) {
                                "' is not Jy/beam, K or Jy/pixel (the units skerry converts; " + accept_hint + ")");
   }
 
-  // Restoring beam: the override; else BMAJ/BMIN/BPA; else AIPS-style HISTORY cards.
+  // Restoring beam: the override; else the plane's row of a beam table; else
+  // BMAJ/BMIN/BPA; else AIPS-style HISTORY cards.
   if (opt.beam_override) {
     if (!opt.beam_override->valid())
       throw UsageError("the beam override is not a valid beam (need maj >= min > 0)");
@@ -640,7 +738,22 @@ SkyImage read_sky_image(const std::string& path, const ImageReadOptions& opt) {
     std::optional<double> bmaj = bmaj_key, bmin = bmin_key, bpa;
     std::string what = "beam BMAJ = ";  // how messages name the values
     std::string origin = "keywords";
-    if (bmaj && bmin) {
+    // The plane along the spectral and the Stokes axis, for a beam table.
+    long chan = 0, pol = 0;
+    for (int k = 2; k < naxis; ++k) {
+      const auto ctype = key_string(f, path, ("CTYPE" + std::to_string(k + 1)).c_str());
+      if (!ctype) continue;
+      if (upper(*ctype).rfind("STOKES", 0) == 0) pol = plane_at[k];
+      else chan = plane_at[k];
+    }
+    const auto table = beam_from_table(f, path, hdu_num, chan, pol);
+    if (table) {
+      bmaj = table->bmaj_deg;
+      bmin = table->bmin_deg;
+      bpa = table->bpa_deg;
+      what = "beam table BEAMS row " + std::to_string(table->row) + ": beam BMAJ = ";
+      origin = "beam_table";
+    } else if (bmaj && bmin) {
       bpa = key_double(f, path, "BPA");
     } else if (const auto h = beam_from_history(all_cards(f, path))) {
       bmaj = h->bmaj;

@@ -20,10 +20,12 @@
 ///    (n = 3 or 4, at the chosen plane, CUNITn Hz/kHz/MHz/GHz; also when NAXIS = 2
 ///    and only the keywords are present); the keyword FREQ [Hz] (what
 ///    header_for_grid writes); RESTFRQ / RESTFREQ [Hz].
-///  - Beam: the override when given; else BMAJ/BMIN [deg, FWHM] and BPA [deg east
-///    of north] (BPA may be missing only for a circular beam); else the last
-///    AIPS-style HISTORY card of a CLEAN giving "BMAJ= ... BMIN= ... BPA= ..."
-///    [deg] (REF-FITS-07). SkyImage::beam_origin says which. BMIN > BMAJ is
+///  - Beam: the override when given; else the row of a beam table (binary-table
+///    extension EXTNAME = 'BEAMS', columns BMAJ, BMIN, BPA, CHAN, POL; REF-FITS-08)
+///    for the plane read; else BMAJ/BMIN [deg, FWHM] and BPA [deg east of north]
+///    (BPA may be missing only for a circular beam); else the last AIPS-style
+///    HISTORY card of a CLEAN giving "BMAJ= ... BMIN= ... BPA= ..." [deg]
+///    (REF-FITS-07). SkyImage::beam_origin says which. BMIN > BMAJ is
 ///    read as the same ellipse with the axes swapped (PA + 90). Missing, zero or
 ///    negative beam keywords: InputError when require_beam.
 ///  - BLANK (integer data) and NaN both become NaN; BSCALE/BZERO are applied by
@@ -87,8 +89,9 @@ struct SkyImage {
   std::string bunit;                      ///< as found in the header
   double bunit_scale = 1.0;               ///< factor applied to the stored values to give Jy/beam
   std::string bunit_rule;                 ///< the conversion applied, in words, with its factor
-  /// Where the beam came from: "option" (the override), "keywords" (BMAJ/BMIN/BPA),
-  /// "history" (a CLEAN HISTORY card), "" (no beam).
+  /// Where the beam came from: "option" (the override), "beam_table" (the BEAMS
+  /// table's row for the plane), "keywords" (BMAJ/BMIN/BPA), "history" (a CLEAN
+  /// HISTORY card), "" (no beam).
   std::string beam_origin;
   std::string frame;                      ///< "ICRS", "FK5", "GALACTIC", ... of the image axes
   std::string object;                     ///< OBJECT keyword or the file's stem

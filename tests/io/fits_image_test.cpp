@@ -10,6 +10,7 @@
 #include <sys/wait.h>
 #include <unistd.h>
 
+#include <array>
 #include <cmath>
 #include <cstdint>
 #include <cstring>
@@ -641,6 +642,98 @@ TEST(FitsRead, FrequencySources) {
   s.cards = with(s.cards, {"CTYPE3  = 'FREQ'", "CRVAL3  = 1.25", "CUNIT3  = 'm/s'"});
   write_fits(bad, s);
   expect_message(read_error(bad), bad, "CUNIT3 'm/s' of the FREQ axis");
+}
+
+/// Appends a binary table EXTNAME = 'BEAMS' with columns BMAJ, BMIN, BPA (float64,
+/// units as given), CHAN, POL (int32) to `path`.
+void append_beam_table(const std::string& path, const std::vector<std::array<double, 5>>& rows,
+                       const char* size_unit = "arcsec", bool with_pol = true) {
+  fitsfile* f = nullptr;
+  int st = 0;
+  fits_open_file(&f, path.c_str(), READWRITE, &st);
+  std::vector<std::string> names{"BMAJ", "BMIN", "BPA", "CHAN", "POL"}, forms{"1D", "1D", "1D", "1J", "1J"},
+      units{size_unit, size_unit, "deg", "", ""};
+  if (!with_pol) names.pop_back(), forms.pop_back(), units.pop_back();
+  std::vector<char*> n, fo, un;
+  for (auto& x : names) n.push_back(x.data());
+  for (auto& x : forms) fo.push_back(x.data());
+  for (auto& x : units) un.push_back(x.data());
+  char extname[] = "BEAMS";
+  fits_create_tbl(f, BINARY_TBL, 0, static_cast<int>(n.size()), n.data(), fo.data(), un.data(), extname, &st);
+  for (std::size_t r = 0; r < rows.size(); ++r) {
+    const LONGLONG row = static_cast<LONGLONG>(r + 1);
+    for (int c = 0; c < 3; ++c) {
+      double v = rows[r][static_cast<std::size_t>(c)];
+      fits_write_col(f, TDOUBLE, c + 1, row, 1, 1, &v, &st);
+    }
+    for (int c = 3; c < static_cast<int>(n.size()); ++c) {
+      int v = static_cast<int>(rows[r][static_cast<std::size_t>(c)]);
+      fits_write_col(f, TINT, c + 1, row, 1, 1, &v, &st);
+    }
+  }
+  fits_close_file(f, &st);
+  ASSERT_EQ(st, 0) << "beam table of " << path;
+}
+
+TEST(FitsRead, PerPlaneBeamFromBeamTable) {
+  // A beam table (REF-FITS-08): BMAJ, BMIN [arcsec], BPA [deg], CHAN, POL (0-based
+  // planes along the spectral and the Stokes axis); the row of the plane measured.
+  ScratchDir dir;
+  const std::vector<std::string> axes = {"CTYPE3  = 'FREQ'", "CRVAL3  = 888.0", "CDELT3  = 16.0", "CRPIX3  = 1",
+                                         "CUNIT3  = 'MHz'",  "CTYPE4  = 'STOKES'", "CRVAL4  = 1", "CDELT4  = 1",
+                                         "CRPIX4  = 1"};
+  const std::vector<std::array<double, 5>> rows = {
+      {12.0, 10.0, 15.0, 0, 0}, {11.0, 9.0, -20.0, 1, 0}, {10.0, 8.0, 25.0, 2, 0}};
+  auto make = [&](const std::string& name, bool keywords, const std::vector<std::array<double, 5>>& r,
+                  const char* unit = "arcsec") {
+    const std::string p = dir.file(name);
+    FitsSpec s = cube({6, 4, 3, 1}, axes);
+    if (!keywords) s.cards = without(without(without(s.cards, "BMAJ"), "BMIN"), "BPA");
+    write_fits(p, s);
+    append_beam_table(p, r, unit);
+    return p;
+  };
+  const std::string t = make("table.fits", false, rows);
+  ImageReadOptions o;
+  o.plane = {1};
+  SkyImage im = read_sky_image(t, o);
+  EXPECT_DOUBLE_EQ(im.beam.maj_arcsec, 11.0);
+  EXPECT_DOUBLE_EQ(im.beam.min_arcsec, 9.0);
+  EXPECT_DOUBLE_EQ(im.beam.pa_deg, 160.0);  // -20 = 160 (mod 180)
+  EXPECT_EQ(im.beam_origin, "beam_table");
+  EXPECT_DOUBLE_EQ(im.freq_hz, 904e6);
+  EXPECT_FLOAT_EQ(im.pixels(1, 1), 1007.0f);  // the pixels of the same plane
+  o.plane = {2};
+  im = read_sky_image(t, o);
+  EXPECT_DOUBLE_EQ(im.beam.maj_arcsec, 10.0);
+  EXPECT_DOUBLE_EQ(im.beam.pa_deg, 25.0);
+
+  // The table's beam of the plane comes before the keywords' single beam.
+  const std::string both = make("both.fits", true, rows);
+  o.plane = {0};
+  im = read_sky_image(both, o);
+  EXPECT_DOUBLE_EQ(im.beam.maj_arcsec, 12.0);
+  EXPECT_EQ(im.beam_origin, "beam_table");
+  // Sizes in degrees (TUNIT).
+  const std::string deg = make("deg.fits", false, {{0.003, 0.002, 40.0, 0, 0}, {0.003, 0.002, 40.0, 1, 0},
+                                                   {0.003, 0.002, 40.0, 2, 0}}, "deg");
+  im = read_sky_image(deg, o);
+  EXPECT_NEAR(im.beam.maj_arcsec, 10.8, 1e-9);
+  EXPECT_NEAR(im.beam.min_arcsec, 7.2, 1e-9);
+
+  // No row for the plane, two rows for it, an unknown unit: refused, naming the table.
+  const std::string gap = make("gap.fits", false, {rows[0], rows[2]});
+  o.plane = {1};
+  expect_message(read_error(gap, o), gap, "beam table BEAMS has no row for the plane measured (CHAN 1, POL 0)");
+  const std::string twice = make("twice.fits", false, {rows[0], rows[1], rows[1]});
+  expect_message(read_error(twice, o), twice, "beam table BEAMS has two rows (2 and 3) for CHAN 1, POL 0");
+  const std::string unit = make("unit.fits", false, rows, "furlong");
+  expect_message(read_error(unit, o), unit, "TUNIT1 'furlong' of BMAJ is not arcsec, arcmin, deg or rad");
+  const std::string nopol = dir.file("nopol.fits");
+  FitsSpec s = cube({6, 4, 3, 1}, axes);
+  write_fits(nopol, s);
+  append_beam_table(nopol, rows, "arcsec", false);
+  expect_message(read_error(nopol, o), nopol, "beam table BEAMS has no column POL");
 }
 
 // ---- Bad files -----------------------------------------------------------------------
