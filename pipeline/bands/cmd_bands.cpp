@@ -99,7 +99,7 @@ po::options_description bands_options() {
       // [bands]
       ("bands.freq_mhz", po::value<std::string>()->default_value(""), "observing frequencies [MHz], comma-separated per band; empty or 0 entries = from the header")
       ("bands.flux_scale_frac", po::value<std::string>()->default_value("0.03"), "fractional flux-scale uncertainty: one value, or one per band (comma-separated)")
-      ("bands.accept_bunit", po::value<bool>()->default_value(false), "accept any BUNIT and treat the values as Jy/beam")
+      ("bands.accept_bunit", po::value<bool>()->default_value(false), "accept a BUNIT skerry does not convert (Jy/beam, K and Jy/pixel are converted) and take the values as Jy/beam, no conversion")
       // [detect]
       ("detect.mode", po::value<std::string>()->default_value("band"), "band = detect in one band (detect.band); combined = detect on the matched signal-to-noise image of all bands at the common resolution")
       ("detect.band", po::value<int>()->default_value(0), "detect.mode band: 1-based band whose `skerry extract` catalogue gives the components; 0 = the band with the smallest beam")
@@ -385,6 +385,9 @@ int run_bands(const std::vector<std::string>& args) {
   for (std::size_t b = 0; b < nb; ++b) {
     ImageReadOptions ro;
     ro.accept_any_bunit = vm["bands.accept_bunit"].as<bool>();
+    ro.accept_bunit_option = "bands.accept_bunit";
+    ro.beam_option = "";
+    ro.freq_option = "bands.freq_mhz";
     if (freq_override[b] > 0.0) ro.freq_hz_override = freq_override[b];
     ro.require_beam = true;  // a band without a beam cannot be modelled: InputError naming the file
     bands.push_back(read_sky_image(paths[b], ro));
@@ -553,6 +556,9 @@ int run_bands(const std::vector<std::string>& args) {
       det_image = paths[det_band - 1];
       if (freq_override[det_band - 1] > 0.0) det_read.freq_hz_override = freq_override[det_band - 1] / 1e6 * 1e6;
       det_read.accept_any_bunit = vm["bands.accept_bunit"].as<bool>();
+      det_read.accept_bunit_option = "bands.accept_bunit";
+      det_read.beam_option = "";
+      det_read.freq_option = "bands.freq_mhz";
     }
     if (det_read.freq_hz_override)
       settings.push_back({"cfg_image_freq_mhz", fits_real(*det_read.freq_hz_override / 1e6)});

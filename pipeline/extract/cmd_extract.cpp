@@ -75,9 +75,9 @@ po::options_description extract_options() {
       // [image]
       ("image.hdu", po::value<std::string>()->default_value(""), "HDU: number (1 = primary) or EXTNAME; empty = first image HDU")
       ("image.plane", po::value<std::string>()->default_value(""), "0-based plane per non-degenerate extra axis, comma-separated (e.g. 2,0)")
-      ("image.beam_arcsec", po::value<std::string>()->default_value(""), "restoring beam 'maj,min,pa' [arcsec, arcsec, deg east of north]; replaces BMAJ/BMIN/BPA")
+      ("image.beam_arcsec", po::value<std::string>()->default_value(""), "restoring beam 'maj,min,pa' [arcsec, arcsec, deg east of north]; replaces BMAJ/BMIN/BPA and CLEAN HISTORY cards")
       ("image.freq_mhz", po::value<double>()->default_value(0.0), "observing frequency [MHz]; 0 = from the header")
-      ("image.accept_bunit", po::value<bool>()->default_value(false), "accept any BUNIT and treat the values as Jy/beam")
+      ("image.accept_bunit", po::value<bool>()->default_value(false), "accept a BUNIT skerry does not convert (Jy/beam, K and Jy/pixel are converted) and take the values as Jy/beam, no conversion")
       ("image.primary_beam", po::value<std::string>()->default_value(""), "primary-beam image on the same grid (values in (0, 1]); enables corrected flux densities")
       ("image.pb_cut", po::value<double>()->default_value(0.2), "components where the primary beam is below this get the below_pb_cut flag")
       // [noise]
@@ -436,6 +436,10 @@ ImageF read_map(const std::string& path, const SkyImage& like, const char* what)
   o.accept_any_bunit = true;
   o.require_beam = false;
   o.allow_all_blank = true;
+  // A map on the image's grid in K or Jy/pixel is converted with the image's own
+  // beam and frequency, as the image is.
+  if (like.beam.valid()) o.beam_override = like.beam;
+  if (std::isfinite(like.freq_hz)) o.freq_hz_override = like.freq_hz;
   SkyImage m = read_sky_image(path, o);
   if (m.pixels.rows() != like.pixels.rows() || m.pixels.cols() != like.pixels.cols())
     throw InputError(path, std::string(what) + " is " + std::to_string(m.pixels.cols()) + " x " +
@@ -522,6 +526,11 @@ void record_counts(RunRecord& record, const Config& cfg, const SkyImage& sky, co
   record.set_count("image_height", sky.pixels.rows());
   record.set_value("peak_snr_used", std::to_string(r.peak_snr_used));
   record.set_value("output_folder", cfg.out_dir);
+  // How the image's values and beam were read (README, "Image units and beams").
+  record.set_value("image_bunit", sky.bunit);
+  record.set_value("image_bunit_conversion", sky.bunit_rule);
+  record.set_value("image_bunit_scale", fits_real(sky.bunit_scale));
+  record.set_value("beam_origin", sky.beam_origin);
 }
 
 // ---- The command ----------------------------------------------------------------------

@@ -246,34 +246,262 @@ std::string file_stem(const std::string& path) {
   return n;
 }
 
-/// Interpretation of BUNIT: factor to Jy/beam, or nullopt when not a Jy/beam unit.
-/// The "Jy" and "beam" parts are compared without regard to letter case; the SI
-/// prefix is case-sensitive (m = milli, u or micro sign = micro; "MJY" is refused
-/// as ambiguous with mega).
-std::optional<double> jy_per_beam_scale(const std::string& bunit) {
-  std::string s;
-  for (char c : bunit)
-    if (c != ' ') s += c;
-  double scale = 1.0;
-  std::string rest;
-  const std::string low = lower(s);
-  if (low.rfind("jy", 0) == 0) {
-    rest = low.substr(2);
-  } else if (s.size() > 2 && s[0] == 'm' && low.compare(1, 2, "jy") == 0) {
-    scale = 1e-3;
-    rest = low.substr(3);
-  } else if (s.size() > 2 && s[0] == 'u' && low.compare(1, 2, "jy") == 0) {
-    scale = 1e-6;
-    rest = low.substr(3);
-  } else if (s.rfind("\xc2\xb5", 0) == 0 && low.compare(2, 2, "jy") == 0) {  // micro sign
-    scale = 1e-6;
-    rest = low.substr(4);
-  } else {
+/// Physical constants of the brightness-temperature conversion (REF-UNIT-04): the
+/// Boltzmann constant [J/K] and the speed of light [m/s], both exact in the SI
+/// since 2019 (BIPM SI Brochure, 9th ed.); 1 Jy = 1e-26 W m^-2 Hz^-1 (REF-UNIT-01).
+constexpr double kBoltzmann = 1.380649e-23;
+constexpr double kSpeedOfLight = 299792458.0;
+constexpr double kJanskyPerSi = 1e26;
+
+/// What a BUNIT string means to the reader.
+enum class UnitKind { Unknown, JyPerBeam, JyPerPixel, Kelvin };
+struct UnitReading {
+  UnitKind kind = UnitKind::Unknown;
+  double prefix = 1.0;  ///< SI prefix of the flux-density or temperature unit
+};
+
+/// Interpretation of BUNIT (FITS Standard 4.0 sec. 4.3 unit strings, IVOA VOUnits;
+/// REF-UNIT-05): a product of factors separated by '.', '*' or spaces, with at
+/// most one '/' (what follows it is divided), each factor a unit name with an
+/// optional exponent ("beam-1", "beam^-1", "beam**-1"). Recognised: Jy with the
+/// prefixes m and u (or the micro sign) per beam ("beam" or "bm"), Jy per pixel
+/// ("pixel" or "pix"), and K (also mK, uK). "Jy" and "beam"/"pixel" are compared
+/// without regard to letter case (legacy headers write "JY/BEAM"); the prefix and
+/// "K" are case-sensitive ("MJY/BEAM" would be mega: refused as ambiguous).
+UnitReading read_unit(const std::string& bunit) {
+  // Split into (name, exponent) factors.
+  std::vector<std::pair<std::string, int>> factors;
+  bool seen_division = false, divide_next = false;
+  std::size_t i = 0;
+  const std::string& s = bunit;
+  auto is_sep = [](char c) { return c == ' ' || c == '.' || c == '*'; };
+  while (i < s.size()) {
+    if (is_sep(s[i]) && !(s[i] == '*' && i + 1 < s.size() && s[i + 1] == '*')) {
+      ++i;
+      continue;
+    }
+    if (s[i] == '/') {
+      if (seen_division) return {};  // one division only
+      seen_division = divide_next = true;
+      ++i;
+      continue;
+    }
+    std::string name;
+    while (i < s.size() && (std::isalpha(static_cast<unsigned char>(s[i])) ||
+                            static_cast<unsigned char>(s[i]) >= 0x80))
+      name += s[i++];
+    if (name.empty()) return {};
+    // Exponent: "^", "**" or nothing, then an optional sign and digits.
+    if (i < s.size() && s[i] == '^') ++i;
+    else if (i + 1 < s.size() && s[i] == '*' && s[i + 1] == '*') i += 2;
+    int sign = 1, exponent = 1;
+    if (i < s.size() && (s[i] == '-' || s[i] == '+')) sign = s[i++] == '-' ? -1 : 1;
+    if (i < s.size() && std::isdigit(static_cast<unsigned char>(s[i]))) {
+      exponent = 0;
+      while (i < s.size() && std::isdigit(static_cast<unsigned char>(s[i])) && exponent < 100)
+        exponent = exponent * 10 + (s[i++] - '0');
+    } else if (sign < 0) {
+      return {};  // a sign without digits
+    }
+    exponent *= sign;
+    if (divide_next) exponent = -exponent;  // '/' divides the factor after it
+    divide_next = false;
+    factors.emplace_back(name, exponent);
+  }
+  int jy = 0, beam = 0, pixel = 0, kelvin = 0;
+  double prefix = 1.0;
+  for (const auto& [name, e] : factors) {
+    const std::string low = lower(name);
+    auto take_prefix = [&](const std::string& base) {
+      // "" / "m" / "u" / micro sign (UTF-8 C2 B5) before a base unit.
+      if (name.size() == base.size()) return 1.0;
+      const std::string p = name.substr(0, name.size() - base.size());
+      if (p == "m") return 1e-3;
+      if (p == "u" || p == "\xc2\xb5") return 1e-6;
+      return 0.0;
+    };
+    if (low.size() >= 2 && low.compare(low.size() - 2, 2, "jy") == 0) {
+      const double f = take_prefix("jy");
+      if (f == 0.0 || jy != 0) return {};
+      jy = e;
+      prefix = f;
+    } else if (low == "beam" || low == "bm") {
+      if (beam != 0) return {};
+      beam = e;
+    } else if (low == "pixel" || low == "pix") {
+      if (pixel != 0) return {};
+      pixel = e;
+    } else if (name.back() == 'K') {
+      const double f = take_prefix("K");
+      if (f == 0.0 || kelvin != 0) return {};
+      kelvin = e;
+      prefix = f;
+    } else {
+      return {};
+    }
+  }
+  if (jy == 1 && beam == -1 && pixel == 0 && kelvin == 0) return {UnitKind::JyPerBeam, prefix};
+  if (jy == 1 && pixel == -1 && beam == 0 && kelvin == 0) return {UnitKind::JyPerPixel, prefix};
+  if (kelvin == 1 && jy == 0 && beam == 0 && pixel == 0) return {UnitKind::Kelvin, prefix};
+  return {};
+}
+
+/// A per-plane restoring beam from a beam table: a binary-table extension
+/// EXTNAME = 'BEAMS' with columns BMAJ, BMIN (FWHM), BPA (east of north), CHAN
+/// and POL (0-based plane indices along the spectral and the Stokes axis), the
+/// angles in the units of TUNITn (arcsec when absent for BMAJ/BMIN, deg for BPA;
+/// REF-FITS-08). Returns the row for (chan, pol) as (BMAJ, BMIN, BPA) in degrees,
+/// nullopt when the file has no such table. The current HDU is `image_hdu` again
+/// on return. A table without the columns or without a row for the plane is an
+/// InputError.
+struct TableBeam {
+  double bmaj_deg = 0.0, bmin_deg = 0.0, bpa_deg = 0.0;
+  long row = 0;  ///< 1-based
+};
+std::optional<TableBeam> beam_from_table(fitsfile* f, const std::string& path, int image_hdu, long chan, long pol) {
+  int status = 0;
+  char name[] = "BEAMS";
+  if (fits_movnam_hdu(f, BINARY_TBL, name, 0, &status)) {
+    fits_clear_errmsg();
+    status = 0;
+    int type = 0;
+    fits_movabs_hdu(f, image_hdu, &type, &status);
+    if (status) throw InputError(path, "cannot return to the image HDU: " + cfitsio_text(status));
     return std::nullopt;
   }
-  for (const char* ok : {"/beam", "/bm", "beam-1", ".beam-1", "beam^-1", ".beam^-1", "/beam1"})
-    if (rest == ok) return scale;
-  return std::nullopt;
+  struct Back {  // back to the image HDU however this function ends
+    fitsfile* f;
+    int hdu;
+    ~Back() {
+      int st = 0, type = 0;
+      fits_movabs_hdu(f, hdu, &type, &st);
+      fits_clear_errmsg();
+    }
+  } back{f, image_hdu};
+  auto column = [&](const char* col) {
+    int num = 0, st = 0;
+    char templ[16];
+    std::snprintf(templ, sizeof templ, "%s", col);
+    if (fits_get_colnum(f, CASEINSEN, templ, &num, &st)) {
+      fits_clear_errmsg();
+      throw InputError(path, std::string("beam table BEAMS has no column ") + col);
+    }
+    return num;
+  };
+  const int c_maj = column("BMAJ"), c_min = column("BMIN"), c_pa = column("BPA"), c_chan = column("CHAN"),
+            c_pol = column("POL");
+  auto to_deg = [&](int col, const char* what, double dflt) {
+    char key[16];
+    std::snprintf(key, sizeof key, "TUNIT%d", col);
+    char value[FLEN_VALUE] = {0};
+    int st = 0;
+    if (fits_read_key(f, TSTRING, key, value, nullptr, &st)) {
+      fits_clear_errmsg();
+      return dflt;
+    }
+    const std::string u = lower(trim(value));
+    if (u == "arcsec" || u == "\"") return 1.0 / 3600.0;
+    if (u == "arcmin" || u == "'") return 1.0 / 60.0;
+    if (u == "deg" || u == "degree" || u == "degrees") return 1.0;
+    if (u == "rad") return 180.0 / kPi;
+    throw InputError(path, std::string("beam table BEAMS: ") + key + " '" + trim(value) + "' of " + what +
+                               " is not arcsec, arcmin, deg or rad");
+  };
+  const double k_maj = to_deg(c_maj, "BMAJ", 1.0 / 3600.0), k_min = to_deg(c_min, "BMIN", 1.0 / 3600.0),
+               k_pa = to_deg(c_pa, "BPA", 1.0);
+  long nrows = 0;
+  if (fits_get_num_rows(f, &nrows, &status))
+    throw InputError(path, "cannot read the beam table BEAMS: " + cfitsio_text(status));
+  if (nrows < 0 || nrows > 10000000) throw InputError(path, "beam table BEAMS has an impossible row count");
+  std::vector<double> maj(static_cast<std::size_t>(nrows)), min(maj.size()), pa(maj.size());
+  std::vector<long> ch(maj.size()), po(maj.size());
+  if (nrows > 0) {
+    double dnull = std::numeric_limits<double>::quiet_NaN();
+    long lnull = -1;
+    int anynul = 0;
+    fits_read_col(f, TDOUBLE, c_maj, 1, 1, nrows, &dnull, maj.data(), &anynul, &status);
+    fits_read_col(f, TDOUBLE, c_min, 1, 1, nrows, &dnull, min.data(), &anynul, &status);
+    fits_read_col(f, TDOUBLE, c_pa, 1, 1, nrows, &dnull, pa.data(), &anynul, &status);
+    fits_read_col(f, TLONG, c_chan, 1, 1, nrows, &lnull, ch.data(), &anynul, &status);
+    fits_read_col(f, TLONG, c_pol, 1, 1, nrows, &lnull, po.data(), &anynul, &status);
+    if (status) throw InputError(path, "cannot read the beam table BEAMS: " + cfitsio_text(status));
+  }
+  std::optional<TableBeam> found;
+  for (std::size_t r = 0; r < maj.size(); ++r) {
+    if (ch[r] != chan || po[r] != pol) continue;
+    if (found)
+      throw InputError(path, "beam table BEAMS has two rows (" + std::to_string(found->row) + " and " +
+                                 std::to_string(r + 1) + ") for CHAN " + std::to_string(chan) + ", POL " +
+                                 std::to_string(pol));
+    if (!std::isfinite(maj[r]) || !std::isfinite(min[r]) || !std::isfinite(pa[r]))
+      throw InputError(path, "beam table BEAMS row " + std::to_string(r + 1) + " holds a value that is not a number");
+    found = TableBeam{maj[r] * k_maj, min[r] * k_min, pa[r] * k_pa, static_cast<long>(r + 1)};
+  }
+  if (!found)
+    throw InputError(path, "beam table BEAMS has no row for the plane measured (CHAN " + std::to_string(chan) +
+                               ", POL " + std::to_string(pol) + ")");
+  return found;
+}
+
+/// Every card of the current HDU, 80 characters each (HISTORY and COMMENT included).
+std::string all_cards(fitsfile* f, const std::string& path) {
+  int status = 0, nkeys = 0;
+  if (fits_get_hdrspace(f, &nkeys, nullptr, &status))
+    throw InputError(path, "cannot read the header: " + cfitsio_text(status));
+  std::string out;
+  out.reserve(static_cast<std::size_t>(nkeys) * 80);
+  char card[FLEN_CARD];
+  for (int k = 1; k <= nkeys; ++k) {
+    if (fits_read_record(f, k, card, &status))
+      throw InputError(path, "cannot read header card " + std::to_string(k) + ": " + cfitsio_text(status));
+    std::string c(card);
+    c.resize(80, ' ');
+    out += c;
+  }
+  return out;
+}
+
+/// The restoring beam from AIPS-style HISTORY cards ("HISTORY AIPS   CLEAN BMAJ=
+/// 1.3889E-03 BMIN=  1.3889E-03 BPA=   0.00", degrees; REF-FITS-07): the last card
+/// that names CLEAN and gives BMAJ= and BMIN= (later CLEAN runs append theirs).
+/// Returns (BMAJ, BMIN, BPA or nullopt, card number) of that card.
+struct HistoryBeam {
+  double bmaj = 0.0, bmin = 0.0;
+  std::optional<double> bpa;
+  int card = 0;  ///< 1-based card number in the header
+};
+std::optional<HistoryBeam> beam_from_history(const std::string& header) {
+  std::optional<HistoryBeam> found;
+  auto number_after = [](std::string_view text, std::string_view tag) -> std::optional<double> {
+    const auto at = text.find(tag);
+    if (at == std::string_view::npos) return std::nullopt;
+    std::string v(text.substr(at + tag.size()));
+    std::size_t k = 0;
+    while (k < v.size() && v[k] == ' ') ++k;
+    std::size_t e = k;
+    while (e < v.size() && v[e] != ' ') ++e;
+    std::string num = v.substr(k, e - k);
+    for (char& c : num)
+      if (c == 'D' || c == 'd') c = 'E';  // FORTRAN double-precision exponent
+    double out = 0.0;
+    const auto r = std::from_chars(num.data(), num.data() + num.size(), out);
+    if (num.empty() || r.ec != std::errc() || r.ptr != num.data() + num.size() || !std::isfinite(out))
+      return std::nullopt;
+    return out;
+  };
+  for (std::size_t c = 0; c + 80 <= header.size(); c += 80) {
+    const std::string_view card(header.data() + c, 80);
+    if (card.substr(0, 8) != "HISTORY ") continue;
+    const std::string_view text = card.substr(8);
+    const auto clean = text.find("CLEAN");
+    if (clean == std::string_view::npos) continue;
+    const std::string_view rest = text.substr(clean);
+    const auto bmaj = number_after(rest, "BMAJ=");
+    const auto bmin = number_after(rest, "BMIN=");
+    if (!bmaj || !bmin) continue;
+    found = HistoryBeam{*bmaj, *bmin, number_after(rest, "BPA="), static_cast<int>(c / 80) + 1};
+  }
+  return found;
 }
 
 constexpr const char* kStructural[] = {"SIMPLE", "BITPIX", "NAXIS", "EXTEND", "BSCALE", "BZERO",
@@ -483,33 +711,61 @@ SkyImage read_sky_image(const std::string& path, const ImageReadOptions& opt) {
     throw InputError(path, e.what());
   }
 
-  // BUNIT.
+  // BUNIT: read here, converted once the beam and the frequency are known.
   const auto bunit = key_string(f, path, "BUNIT");
   out.bunit = bunit.value_or("");
-  const auto scale = bunit ? jy_per_beam_scale(*bunit) : std::nullopt;
-  if (scale) {
-    out.bunit_scale = *scale;
-  } else if (!opt.accept_any_bunit) {
+  const UnitReading unit = bunit ? read_unit(*bunit) : UnitReading{};
+  const std::string accept_hint =
+      opt.accept_bunit_option.empty() ? std::string("an override takes the values as Jy/beam without conversion")
+                                      : opt.accept_bunit_option + " = true takes the values as Jy/beam without conversion";
+  if (unit.kind == UnitKind::Unknown && !opt.accept_any_bunit) {
     if (!bunit || bunit->empty())
-      throw InputError(path, "has no BUNIT (expected Jy/beam; an override accepts any unit)");
+      throw InputError(path, "has no BUNIT (expected Jy/beam, K or Jy/pixel; " + accept_hint + ")");
     throw InputError(path, "BUNIT '" + *bunit +
-                               "' is not Jy/beam (accepted: Jy/beam, mJy/beam, uJy/beam; an "
-                               "override accepts any unit)");
+                               "' is not Jy/beam, K or Jy/pixel (the units skerry converts; " + accept_hint + ")");
   }
 
-  // Restoring beam.
+  // Restoring beam: the override; else the plane's row of a beam table; else
+  // BMAJ/BMIN/BPA; else AIPS-style HISTORY cards.
   if (opt.beam_override) {
     if (!opt.beam_override->valid())
       throw UsageError("the beam override is not a valid beam (need maj >= min > 0)");
     out.beam = *opt.beam_override;
+    out.beam_origin = "option";
   } else {
-    const auto bmaj = key_double(f, path, "BMAJ");
-    const auto bmin = key_double(f, path, "BMIN");
-    const auto bpa = key_double(f, path, "BPA");
+    const auto bmaj_key = key_double(f, path, "BMAJ");
+    const auto bmin_key = key_double(f, path, "BMIN");
+    std::optional<double> bmaj = bmaj_key, bmin = bmin_key, bpa;
+    std::string what = "beam BMAJ = ";  // how messages name the values
+    std::string origin = "keywords";
+    // The plane along the spectral and the Stokes axis, for a beam table.
+    long chan = 0, pol = 0;
+    for (int k = 2; k < naxis; ++k) {
+      const auto ctype = key_string(f, path, ("CTYPE" + std::to_string(k + 1)).c_str());
+      if (!ctype) continue;
+      if (upper(*ctype).rfind("STOKES", 0) == 0) pol = plane_at[k];
+      else chan = plane_at[k];
+    }
+    const auto table = beam_from_table(f, path, hdu_num, chan, pol);
+    if (table) {
+      bmaj = table->bmaj_deg;
+      bmin = table->bmin_deg;
+      bpa = table->bpa_deg;
+      what = "beam table BEAMS row " + std::to_string(table->row) + ": beam BMAJ = ";
+      origin = "beam_table";
+    } else if (bmaj && bmin) {
+      bpa = key_double(f, path, "BPA");
+    } else if (const auto h = beam_from_history(all_cards(f, path))) {
+      bmaj = h->bmaj;
+      bmin = h->bmin;
+      bpa = h->bpa;
+      what = "HISTORY card " + std::to_string(h->card) + ": beam BMAJ = ";
+      origin = "history";
+    }
     if (bmaj && bmin) {
       if (!(*bmaj > 0.0 && *bmin > 0.0)) {
         if (opt.require_beam)
-          throw InputError(path, "beam BMAJ = " + fits_real(*bmaj) + ", BMIN = " + fits_real(*bmin) +
+          throw InputError(path, what + fits_real(*bmaj) + ", BMIN = " + fits_real(*bmin) +
                                      " deg is not positive (give the beam explicitly)");
       } else {
         double maj = *bmaj, min = *bmin, pa = 0.0;
@@ -517,7 +773,9 @@ SkyImage read_sky_image(const std::string& path, const ImageReadOptions& opt) {
           pa = *bpa;
         } else if (std::abs(maj - min) > 1e-9 * maj) {
           if (opt.require_beam)
-            throw InputError(path, "has BMAJ and BMIN but no BPA for an elliptical beam");
+            throw InputError(path, origin == "history"
+                                       ? what.substr(0, what.find(':')) + " gives BMAJ and BMIN but no BPA for an elliptical beam"
+                                       : std::string("has BMAJ and BMIN but no BPA for an elliptical beam"));
           maj = min = 0.0;
         }
         if (min > maj) {  // same ellipse, axes named the other way round
@@ -527,10 +785,11 @@ SkyImage read_sky_image(const std::string& path, const ImageReadOptions& opt) {
         pa = std::fmod(pa, 180.0);
         if (pa < 0.0) pa += 180.0;
         out.beam = Beam{maj * kDegToArcsec, min * kDegToArcsec, pa};
+        if (out.beam.valid()) out.beam_origin = origin;
       }
     } else if (opt.require_beam) {
       throw InputError(path, std::string("has no restoring beam (") + (bmaj ? "BMIN" : "BMAJ") +
-                                 " missing; give the beam explicitly)");
+                                 " missing, and no HISTORY card of a CLEAN gives BMAJ= and BMIN=; give the beam explicitly)");
     }
   }
 
@@ -571,6 +830,69 @@ SkyImage read_sky_image(const std::string& path, const ImageReadOptions& opt) {
       }
     }
   }
+  // Conversion of the values to Jy/beam (REF-UNIT-05).
+  const std::string beam_hint = opt.beam_option.empty() ? std::string() : "; give " + opt.beam_option;
+  const std::string freq_hint = opt.freq_option.empty() ? std::string() : "; give " + opt.freq_option;
+  switch (unit.kind) {
+    case UnitKind::JyPerBeam:
+      out.bunit_scale = unit.prefix;
+      out.bunit_rule = unit.prefix == 1.0 ? "Jy/beam: as stored" : "Jy/beam with an SI prefix: x " + fits_real(unit.prefix);
+      break;
+    case UnitKind::Kelvin: {
+      // Rayleigh-Jeans brightness temperature (REF-UNIT-04): S [Jy/beam] =
+      // 2 k_B nu^2 T Omega_beam / c^2 x 1e26, Omega_beam = pi theta_maj theta_min /
+      // (4 ln 2) [sr] (REF-GAUSS-03); k_B [J/K], nu [Hz], c [m/s], T [K].
+      const bool have_beam = out.beam.valid(), have_freq = std::isfinite(out.freq_hz);
+      if (!have_beam || !have_freq) {
+        if (opt.accept_any_bunit) {
+          out.bunit_rule = "not converted (" + std::string(have_beam ? "no frequency" : "no beam") +
+                           "): taken as Jy/beam by the override";
+          break;
+        }
+        throw InputError(path, "BUNIT '" + out.bunit + "' (brightness temperature) needs the restoring beam and the "
+                               "observing frequency to become Jy/beam, but the image has no " +
+                               (have_beam ? "observing frequency (FREQ axis, FREQ or RESTFRQ keyword)" + freq_hint
+                                          : "restoring beam (BMAJ/BMIN or a CLEAN HISTORY card)" + beam_hint));
+      }
+      const double omega_sr = kGaussAreaFactor * out.beam.maj_arcsec * kArcsecToRad * out.beam.min_arcsec * kArcsecToRad;
+      const double per_kelvin = 2.0 * kBoltzmann * out.freq_hz * out.freq_hz * omega_sr /
+                                (kSpeedOfLight * kSpeedOfLight) * kJanskyPerSi;
+      out.bunit_scale = unit.prefix * per_kelvin;
+      out.bunit_rule = "K to Jy/beam (Rayleigh-Jeans, REF-UNIT-04): 2 k nu^2 Omega_beam / c^2 x 1e26 with nu = " +
+                       fits_real(out.freq_hz) + " Hz, Omega_beam = " + fits_real(omega_sr) + " sr" +
+                       (unit.prefix == 1.0 ? std::string() : ", prefix x " + fits_real(unit.prefix)) +
+                       ": x " + fits_real(out.bunit_scale);
+      break;
+    }
+    case UnitKind::JyPerPixel: {
+      // Jy/pixel to Jy/beam: x Omega_beam / Omega_pixel, the beam area in pixels at
+      // the image centre (REF-UNIT-06, REF-GAUSS-03).
+      const auto g = local_geometry(*out.wcs, 0.5 * static_cast<double>(nx - 1), 0.5 * static_cast<double>(ny - 1));
+      if (!out.beam.valid() || !g || !(g->pixel_area_arcsec2 > 0.0)) {
+        if (opt.accept_any_bunit) {
+          out.bunit_rule = std::string("not converted (") + (out.beam.valid() ? "no pixel area" : "no beam") +
+                           "): taken as Jy/beam by the override";
+          break;
+        }
+        if (!out.beam.valid())
+          throw InputError(path, "BUNIT '" + out.bunit + "' needs the restoring beam to become Jy/beam, but the image "
+                                 "has none (BMAJ/BMIN or a CLEAN HISTORY card)" + beam_hint);
+        throw InputError(path, "BUNIT '" + out.bunit + "' needs the pixel area at the image centre to become Jy/beam, "
+                               "but the centre has no sky position");
+      }
+      const double beam_pixels = kGaussAreaFactor * out.beam.maj_arcsec * out.beam.min_arcsec / g->pixel_area_arcsec2;
+      out.bunit_scale = unit.prefix * beam_pixels;
+      out.bunit_rule = "Jy/pixel to Jy/beam (REF-UNIT-06): x Omega_beam / Omega_pixel = " + fits_real(beam_pixels) +
+                       " pixels per beam at the image centre" +
+                       (unit.prefix == 1.0 ? std::string() : ", prefix x " + fits_real(unit.prefix)) +
+                       ": x " + fits_real(out.bunit_scale);
+      break;
+    }
+    case UnitKind::Unknown:
+      out.bunit_rule = "not converted: BUNIT '" + out.bunit + "' taken as Jy/beam by the override";
+      break;
+  }
+
   out.object = key_string(f, path, "OBJECT").value_or("");
   if (out.object.empty()) out.object = file_stem(path);
 

@@ -4,16 +4,28 @@
 /// pixels of the modules is wcs.cpp.
 ///
 /// Reader decisions (documented for users):
-///  - BUNIT: "Jy/beam" in any letter case (also "Jy/bm", "Jy beam-1", "Jy.beam-1")
-///    is taken as is; "mJy/beam" and "uJy/beam" are scaled to Jy/beam (the factor
-///    is recorded in SkyImage::bunit_scale); anything else, or no BUNIT, is an
-///    InputError unless accept_any_bunit is set.
+///  - BUNIT (FITS Standard 4.0 sec. 4.3 unit strings; REF-UNIT-05): "Jy/beam" in
+///    any letter case and product form ("Jy/bm", "Jy beam-1", "beam-1 Jy",
+///    "Jy.beam-1") is taken as is; with the prefix m or u it is scaled to Jy/beam.
+///    "K" (brightness temperature; also mK, uK) is converted with the Rayleigh-Jeans
+///    relation (REF-UNIT-04), which needs the beam and the frequency; "Jy/pixel"
+///    ("Jy/pix", "Jy pixel-1") is multiplied by the beam area in pixels at the
+///    image centre (REF-UNIT-06), which needs the beam. The factor is
+///    SkyImage::bunit_scale (already applied to the pixels) and the rule
+///    SkyImage::bunit_rule. Any other unit, no BUNIT, or K / Jy/pixel without
+///    what the conversion needs: InputError naming the option that overrides it,
+///    unless accept_any_bunit is set (the values are then taken as Jy/beam, not
+///    converted).
 ///  - Frequency, first found: the override; a spectral axis CTYPEn = 'FREQ...'
 ///    (n = 3 or 4, at the chosen plane, CUNITn Hz/kHz/MHz/GHz; also when NAXIS = 2
 ///    and only the keywords are present); the keyword FREQ [Hz] (what
 ///    header_for_grid writes); RESTFRQ / RESTFREQ [Hz].
-///  - Beam: the override when given; else BMAJ/BMIN [deg, FWHM] and BPA [deg east
-///    of north] (BPA may be missing only for a circular beam). BMIN > BMAJ is
+///  - Beam: the override when given; else the row of a beam table (binary-table
+///    extension EXTNAME = 'BEAMS', columns BMAJ, BMIN, BPA, CHAN, POL; REF-FITS-08)
+///    for the plane read; else BMAJ/BMIN [deg, FWHM] and BPA [deg east of north]
+///    (BPA may be missing only for a circular beam); else the last AIPS-style
+///    HISTORY card of a CLEAN giving "BMAJ= ... BMIN= ... BPA= ..." [deg]
+///    (REF-FITS-07). SkyImage::beam_origin says which. BMIN > BMAJ is
 ///    read as the same ellipse with the axes swapped (PA + 90). Missing, zero or
 ///    negative beam keywords: InputError when require_beam.
 ///  - BLANK (integer data) and NaN both become NaN; BSCALE/BZERO are applied by
@@ -54,8 +66,14 @@ struct ImageReadOptions {
   /// 0-based index along each non-celestial axis of more than one plane, in axis
   /// order (e.g. {frequency plane, Stokes plane}); required where not degenerate.
   std::vector<long> plane;
-  /// Accept this BUNIT instead of Jy/beam (the values are then taken as Jy/beam).
+  /// Accept a BUNIT the reader does not convert (the values are then taken as
+  /// Jy/beam, not converted).
   bool accept_any_bunit = false;
+  /// Option names that messages point to (empty: not named): the BUNIT override,
+  /// the beam and the frequency options of the command that reads the image.
+  std::string accept_bunit_option = "image.accept_bunit";
+  std::string beam_option = "image.beam_arcsec";
+  std::string freq_option = "image.freq_mhz";
   std::optional<Beam> beam_override;        ///< used when the header lacks BMAJ/BMIN/BPA (or to replace them)
   std::optional<double> freq_hz_override;   ///< observing frequency [Hz]
   bool require_beam = true;                 ///< missing beam is an error (InputError)
@@ -70,6 +88,11 @@ struct SkyImage {
   double freq_hz = std::numeric_limits<double>::quiet_NaN();  ///< NaN when unknown
   std::string bunit;                      ///< as found in the header
   double bunit_scale = 1.0;               ///< factor applied to the stored values to give Jy/beam
+  std::string bunit_rule;                 ///< the conversion applied, in words, with its factor
+  /// Where the beam came from: "option" (the override), "beam_table" (the BEAMS
+  /// table's row for the plane), "keywords" (BMAJ/BMIN/BPA), "history" (a CLEAN
+  /// HISTORY card), "" (no beam).
+  std::string beam_origin;
   std::string frame;                      ///< "ICRS", "FK5", "GALACTIC", ... of the image axes
   std::string object;                     ///< OBJECT keyword or the file's stem
   /// The header cards (80-char records, no END) of a 2-D image with this image's

@@ -93,7 +93,8 @@ void write_tile_noise(const std::string& dir) {
     std::size_t e = b;
     while (e < cv.size() && cv[e].first == cv[b].first) ++e;
     // Median (the lower middle value for an even count; values are sorted).
-    med.push_back(static_cast<double>(cv[b + (e - b - 1) / 2].second) * rms.bunit_scale);
+    // read_sky_image has already converted the values to Jy/beam (bunit_scale).
+    med.push_back(static_cast<double>(cv[b + (e - b - 1) / 2].second));
     cells.push_back(cv[b].first);
     b = e;
   }

@@ -20,6 +20,7 @@
 #include <cstdint>
 #include <filesystem>
 #include <fstream>
+#include <iterator>
 #include <limits>
 #include <map>
 #include <random>
@@ -455,13 +456,56 @@ TEST(BadInputTable, NonCelestialAxes) {
   expect_refused(r, skerry::kExitBadInput, arg(d / "linear.fits"), "celestial", d / "out");
 }
 
+// BUNIT units: FITS Standard 4.0 sec. 4.3 (REF-UNIT-05). MJy/sr is a unit skerry
+// does not convert; the option takes it as Jy/beam.
 TEST(BadInputTable, WrongBunit) {
   TempDir d;
   ImageSpec s;
+  s.str_keys["BUNIT"] = "MJy/sr";
+  write_image(d / "sr.fits", s);
+  const Outcome r = extract(d / "sr.fits", d / "out");
+  expect_refused(r, skerry::kExitBadInput, arg(d / "sr.fits"), "BUNIT 'MJy/sr' is not Jy/beam, K or Jy/pixel", d / "out");
+  EXPECT_NE(r.err.find("image.accept_bunit = true"), std::string::npos) << r.err;
+}
+
+// K needs the frequency for the Rayleigh-Jeans conversion (REF-UNIT-04).
+TEST(BadInputTable, KelvinWithoutFrequency) {
+  TempDir d;
+  ImageSpec s;
   s.str_keys["BUNIT"] = "K";
+  s.num_keys.erase("FREQ");
   write_image(d / "kelvin.fits", s);
   const Outcome r = extract(d / "kelvin.fits", d / "out");
-  expect_refused(r, skerry::kExitBadInput, arg(d / "kelvin.fits"), "BUNIT", d / "out");
+  expect_refused(r, skerry::kExitBadInput, arg(d / "kelvin.fits"), "has no observing frequency", d / "out");
+  EXPECT_NE(r.err.find("give image.freq_mhz"), std::string::npos) << r.err;
+}
+
+// The beam only in AIPS-style HISTORY cards (REF-FITS-07): read from the last
+// CLEAN card; the source is measured.
+TEST(BadInputTable, BeamOnlyInHistoryCards) {
+  TempDir d;
+  ImageSpec s;
+  s.num_keys.erase("BMAJ");
+  s.num_keys.erase("BMIN");
+  s.num_keys.erase("BPA");
+  const fs::path img = d / "history.fits";
+  write_image(img, s);
+  {
+    fitsfile* f = nullptr;
+    int status = 0;
+    fits_open_file(&f, img.c_str(), READWRITE, &status);
+    fits_write_history(f, "AIPS   CLEAN BMAJ=  3.3333E-03 BMIN=  3.3333E-03 BPA=   0.00", &status);
+    fits_write_history(f, "AIPS   CLEAN BMAJ=  1.6667E-03 BMIN=  1.6667E-03 BPA=   0.00", &status);
+    fits_close_file(f, &status);
+    check_fits(status, "history cards");
+  }
+  const Outcome r = extract(img, d / "out");
+  ASSERT_EQ(r.code, 0) << r.err;
+  const Table t = skerry::read_table(arg(d / "out/history.components.csv"));
+  EXPECT_GE(find_component(t, 47.3, 48.6), 0);
+  std::ifstream rec(d / "out/history.run.json");
+  const std::string json((std::istreambuf_iterator<char>(rec)), std::istreambuf_iterator<char>());
+  EXPECT_NE(json.find("\"beam_origin\": \"history\""), std::string::npos);
 }
 
 // A source of 10^5 sigma dominating the noise boxes: 4 beams across (12

@@ -10,6 +10,7 @@
 #include <sys/wait.h>
 #include <unistd.h>
 
+#include <array>
 #include <cmath>
 #include <cstdint>
 #include <cstring>
@@ -351,15 +352,23 @@ TEST(FitsRead, OneByNImage) {
 // ---- Units, beam, frequency ------------------------------------------------------------
 
 TEST(FitsRead, BunitCases) {
+  // Unit strings: FITS Standard 4.0 sec. 4.3 (products with '.', '*' or spaces,
+  // one '/', exponents written after the unit, "beam-1"), REF-UNIT-05; SI prefixes
+  // m = 1e-3, u = 1e-6 (REF-UNIT-05).
   ScratchDir dir;
   struct C {
     const char* bunit;  // nullptr: no BUNIT card
     double scale;       // 0: refused
   };
-  const C cases[] = {{"Jy/beam", 1}, {"JY/BEAM", 1}, {"jy/beam", 1}, {"Jy/Beam", 1},
-                     {"Jy/bm", 1},   {"Jy beam-1", 1}, {"mJy/beam", 1e-3}, {"uJy/beam", 1e-6},
-                     {"K", 0},       {"Jy/pixel", 0}, {"MJy/sr", 0},     {"MJY/BEAM", 0},
-                     {"", 0},        {nullptr, 0}};
+  const C cases[] = {{"Jy/beam", 1},       {"JY/BEAM", 1},        {"jy/beam", 1},         {"Jy/Beam", 1},
+                     {"Jy/bm", 1},         {"Jy beam-1", 1},      {"beam-1 Jy", 1},       {"Jy.beam-1", 1},
+                     {"Jy beam^-1", 1},    {"Jy*beam**-1", 1},    {"JY BEAM-1", 1},       {"mJy/beam", 1e-3},
+                     {"uJy/beam", 1e-6},   {"mJy beam-1", 1e-3},  {"beam-1 mJy", 1e-3},   {"uJy beam-1", 1e-6},
+                     {"beam-1 uJy", 1e-6},
+                     {"MJy/sr", 0},        {"MJY/BEAM", 0},       {"MJy beam-1", 0},      {"Jy", 0},
+                     {"beam-1", 0},        {"Jy beam", 0},        {"Jy/beam-1", 0},       {"Jy/beam/pixel", 0},
+                     {"Jy beam-1 beam-1", 0}, {"kJy/beam", 0},    {"W/m2", 0},            {"k", 0},
+                     {"", 0},              {nullptr, 0}};
   int k = 0;
   for (const C& c : cases) {
     const std::string p = dir.file("bunit" + std::to_string(k++) + ".fits");
@@ -367,21 +376,189 @@ TEST(FitsRead, BunitCases) {
     s.cards = without(s.cards, "BUNIT");
     if (c.bunit) s.cards.push_back(std::string("BUNIT   = '") + c.bunit + "'");
     write_fits(p, s);
+    const std::string shown = c.bunit ? c.bunit : "(none)";
     if (c.scale > 0) {
       const SkyImage im = read_sky_image(p);
       EXPECT_EQ(im.bunit, c.bunit);
-      EXPECT_EQ(im.bunit_scale, c.scale) << c.bunit;
-      EXPECT_FLOAT_EQ(im.pixels(2, 3), static_cast<float>(2.03 * c.scale)) << c.bunit;
+      EXPECT_EQ(im.bunit_scale, c.scale) << shown;
+      EXPECT_FLOAT_EQ(im.pixels(2, 3), static_cast<float>(2.03 * c.scale)) << shown;
+      EXPECT_NE(im.bunit_rule.find("Jy/beam"), std::string::npos) << im.bunit_rule;
     } else {
       const std::string m = read_error(p);
-      expect_message(m, p, (c.bunit && *c.bunit) ? "is not Jy/beam" : "has no BUNIT");
+      expect_message(m, p, (c.bunit && *c.bunit) ? "is not Jy/beam, K or Jy/pixel" : "has no BUNIT");
+      EXPECT_NE(m.find("image.accept_bunit = true takes the values as Jy/beam without conversion"), std::string::npos)
+          << m;
       ImageReadOptions o;
       o.accept_any_bunit = true;
       const SkyImage im = read_sky_image(p, o);
-      EXPECT_EQ(im.bunit_scale, 1.0);
+      EXPECT_EQ(im.bunit_scale, 1.0) << shown;
       EXPECT_FLOAT_EQ(im.pixels(2, 3), 2.03f);
+      EXPECT_EQ(im.bunit_rule.rfind("not converted", 0), 0u) << im.bunit_rule;
     }
   }
+  // The option named in the message is the reading command's own.
+  const std::string p = dir.file("bunit_bands.fits");
+  FitsSpec s = float_image(4, 3);
+  s.cards = with(without(s.cards, "BUNIT"), {"BUNIT   = 'MJy/sr'"});
+  write_fits(p, s);
+  ImageReadOptions o;
+  o.accept_bunit_option = "bands.accept_bunit";
+  expect_message(read_error(p, o), p, "bands.accept_bunit = true");
+}
+
+TEST(FitsRead, BrightnessTemperatureToJyPerBeam) {
+  // K -> Jy/beam by the Rayleigh-Jeans relation S = 2 k nu^2 T Omega_beam / c^2
+  // (REF-UNIT-04; Wilson, Rohlfs & Huettemeister, Tools of Radio Astronomy), with
+  // Omega_beam = pi maj min / (4 ln 2) (REF-GAUSS-03). Expected factors computed
+  // with astropy.units brightness_temperature (astropy 5.2.1, REF-UNIT-04):
+  // beam 7.2" x 5.4" (BMAJ 0.002, BMIN 0.0015 deg), 1.4 GHz: 1 K = 6.235457939103803e-05 Jy/beam.
+  ScratchDir dir;
+  const double per_kelvin = 6.235457939103803e-05;
+  auto image = [&](const std::string& name, const std::string& bunit, const std::vector<std::string>& extra,
+                   bool beam = true) {
+    const std::string p = dir.file(name);
+    FitsSpec s = float_image(4, 3);
+    s.cards = with(without(s.cards, "BUNIT"), {"BUNIT   = '" + bunit + "'"});
+    if (!beam) s.cards = without(without(without(s.cards, "BMAJ"), "BMIN"), "BPA");
+    s.cards = with(s.cards, extra);
+    write_fits(p, s);
+    return p;
+  };
+  const std::string k = image("k.fits", "K", {"FREQ    = 1.4E9"});
+  SkyImage im = read_sky_image(k);
+  EXPECT_NEAR(im.bunit_scale, per_kelvin, 1e-12 * per_kelvin);
+  EXPECT_FLOAT_EQ(im.pixels(2, 3), static_cast<float>(2.03 * per_kelvin));
+  EXPECT_FLOAT_EQ(im.pixels(0, 1), static_cast<float>(0.01 * per_kelvin));
+  EXPECT_NE(im.bunit_rule.find("Rayleigh-Jeans"), std::string::npos) << im.bunit_rule;
+  EXPECT_EQ(im.bunit, "K");
+  // mK: 1e-3 of it (SI prefix).
+  im = read_sky_image(image("mk.fits", "mK", {"FREQ    = 1.4E9"}));
+  EXPECT_NEAR(im.bunit_scale, 6.235457939103803e-08, 1e-12 * 6.235457939103803e-08);
+  // The frequency from a spectral axis of the chosen plane (FITS WCS Paper I,
+  // REF-FITS-04): CRVAL3 1.4 GHz at plane 0.
+  im = read_sky_image(image("k_axis.fits", "K", {"CTYPE3  = 'FREQ'", "CRVAL3  = 1.4E9", "CRPIX3  = 1.0",
+                                                 "CDELT3  = 1.0E6", "CUNIT3  = 'Hz'"}));
+  EXPECT_NEAR(im.bunit_scale, per_kelvin, 1e-12 * per_kelvin);
+
+  // Missing frequency or beam: refused, naming what is missing and the option.
+  const std::string nofreq = image("k_nofreq.fits", "K", {});
+  std::string m = read_error(nofreq);
+  expect_message(m, nofreq, "has no observing frequency");
+  EXPECT_NE(m.find("give image.freq_mhz"), std::string::npos) << m;
+  const std::string nobeam = image("k_nobeam.fits", "K", {"FREQ    = 1.4E9"}, false);
+  ImageReadOptions lax;
+  lax.require_beam = false;
+  m = read_error(nobeam, lax);
+  expect_message(m, nobeam, "has no restoring beam (BMAJ/BMIN or a CLEAN HISTORY card); give image.beam_arcsec");
+  // The options give what the header lacks.
+  ImageReadOptions o;
+  o.freq_hz_override = 1.4e9;
+  EXPECT_NEAR(read_sky_image(nofreq, o).bunit_scale, per_kelvin, 1e-12 * per_kelvin);
+  o = {};
+  o.beam_override = Beam{7.2, 5.4, 30.0};
+  EXPECT_NEAR(read_sky_image(nobeam, o).bunit_scale, per_kelvin, 1e-12 * per_kelvin);
+  // The BUNIT override takes an unconvertible K image as it is.
+  o = {};
+  o.accept_any_bunit = true;
+  im = read_sky_image(nofreq, o);
+  EXPECT_EQ(im.bunit_scale, 1.0);
+  EXPECT_FLOAT_EQ(im.pixels(2, 3), 2.03f);
+  EXPECT_EQ(im.bunit_rule.rfind("not converted (no frequency)", 0), 0u) << im.bunit_rule;
+}
+
+TEST(FitsRead, JyPerPixelToJyPerBeam) {
+  // Jy/pixel -> Jy/beam: x Omega_beam / Omega_pixel (REF-UNIT-06). Beam 7.2" x 5.4",
+  // pixels 1.8" (CDELT 0.0005 deg): pi 7.2 5.4 / (4 ln 2) / 1.8^2 = 13.597080425481582
+  // (computed with astropy.units, REF-GAUSS-03). The SIN pixel area a few pixels from
+  // the reference point differs from CDELT^2 by ~1e-9 (Calabretta & Greisen 2002,
+  // REF-FITS-04), and the area is taken by half-pixel differences: rel 1e-7.
+  ScratchDir dir;
+  const double beam_pixels = 13.597080425481582;
+  for (const char* unit : {"Jy/pixel", "JY/PIXEL", "Jy/pix", "Jy pixel-1", "mJy/pixel"}) {
+    const std::string p = dir.file(std::string("pix") + (unit[0] == 'm' ? "m" : "") + ".fits");
+    FitsSpec s = float_image(4, 3);
+    s.cards = with(without(s.cards, "BUNIT"), {std::string("BUNIT   = '") + unit + "'"});
+    write_fits(p, s);
+    const SkyImage im = read_sky_image(p);
+    const double want = beam_pixels * (unit[0] == 'm' ? 1e-3 : 1.0);
+    EXPECT_NEAR(im.bunit_scale, want, 1e-7 * want) << unit;
+    EXPECT_NEAR(im.pixels(2, 3), 2.03 * want, 1e-6 * 2.03 * want) << unit;
+    EXPECT_NE(im.bunit_rule.find("pixels per beam"), std::string::npos) << im.bunit_rule;
+  }
+  const std::string nobeam = dir.file("pix_nobeam.fits");
+  FitsSpec s = float_image(4, 3);
+  s.cards = with(without(without(without(without(s.cards, "BUNIT"), "BMAJ"), "BMIN"), "BPA"),
+                 {"BUNIT   = 'Jy/pixel'"});
+  write_fits(nobeam, s);
+  ImageReadOptions lax;
+  lax.require_beam = false;
+  expect_message(read_error(nobeam, lax), nobeam, "needs the restoring beam to become Jy/beam");
+}
+
+TEST(FitsRead, BeamFromHistoryCards) {
+  // AIPS-style HISTORY cards (REF-FITS-07), as VLA archive images carry them:
+  // values in degrees; the last CLEAN card wins. 1.3889E-03 deg = 5.00004 arcsec.
+  ScratchDir dir;
+  const auto base = without(without(without(sky_cards(), "BMAJ"), "BMIN"), "BPA");
+  const std::vector<std::string> history = {
+      "HISTORY AIPS   IMAGR  BMAJ    =    0.00000E+00    / FWHM major axis of restoring beam",
+      "HISTORY AIPS   CLEAN BMAJ=  2.0000E-03 BMIN=  1.5000E-03 BPA=  30.00",
+      "HISTORY AIPS   CLEAN NITER=     1000 PRODUCT=1   / NORMAL",
+      "HISTORY AIPS   CLEAN BMAJ=  1.3889E-03 BMIN=  1.3889E-03 BPA=   0.00",
+      "HISTORY AIPS   IMNAME='3C286   ' IMCLASS='ICL001' IMSEQ=   1"};
+  auto file = [&](const std::string& name, const std::vector<std::string>& cards) {
+    const std::string p = dir.file(name);
+    FitsSpec s = float_image(4, 3);
+    s.cards = cards;
+    write_fits(p, s);
+    return p;
+  };
+  const std::string h = file("history.fits", with(base, history));
+  SkyImage im = read_sky_image(h);
+  EXPECT_NEAR(im.beam.maj_arcsec, 1.3889e-3 * 3600.0, 1e-9);
+  EXPECT_NEAR(im.beam.min_arcsec, 1.3889e-3 * 3600.0, 1e-9);
+  EXPECT_EQ(im.beam.pa_deg, 0.0);
+  EXPECT_EQ(im.beam_origin, "history");
+  // The written header of derived maps carries it as keywords.
+  EXPECT_NE(im.wcs_header.find("BMAJ    = "), std::string::npos);
+
+  // Keywords come first; then the override.
+  im = read_sky_image(file("both.fits", with(sky_cards(), history)));
+  EXPECT_NEAR(im.beam.maj_arcsec, 7.2, 1e-12);
+  EXPECT_EQ(im.beam_origin, "keywords");
+  ImageReadOptions o;
+  o.beam_override = Beam{10.0, 8.0, 45.0};
+  im = read_sky_image(h, o);
+  EXPECT_EQ(im.beam.maj_arcsec, 10.0);
+  EXPECT_EQ(im.beam_origin, "option");
+
+  // An elliptical beam from one card; FORTRAN 'D' exponents.
+  im = read_sky_image(file("ellipse.fits", with(base, {"HISTORY AIPS   CLEAN BMAJ=  2.0000D-03 BMIN=  1.5000D-03 BPA= -60.00"})));
+  EXPECT_NEAR(im.beam.maj_arcsec, 7.2, 1e-9);
+  EXPECT_NEAR(im.beam.min_arcsec, 5.4, 1e-9);
+  EXPECT_NEAR(im.beam.pa_deg, 120.0, 1e-12);
+
+  // A K image whose beam is only in HISTORY: converted with that beam.
+  // astropy.units brightness_temperature (REF-UNIT-04): 5.00004" circular beam,
+  // 1.4649 GHz -> 1 K = 4.389842530683263e-05 Jy/beam.
+  auto kcards = with(without(base, "BUNIT"), {"BUNIT   = 'K'", "FREQ    = 1.4649E9"});
+  im = read_sky_image(file("k_history.fits", with(kcards, history)));
+  EXPECT_NEAR(im.bunit_scale, 4.389842530683263e-05, 1e-12 * 4.389842530683263e-05);
+  EXPECT_EQ(im.beam_origin, "history");
+
+  // A last card with a zero beam (a CLEAN without restoring beam): refused, naming the card.
+  const std::string zero = file("zero.fits", with(base, {history[1], "HISTORY AIPS   CLEAN BMAJ=  0.0000E+00 BMIN=  0.0000E+00 BPA=   0.00"}));
+  std::string m = read_error(zero);
+  expect_message(m, zero, "HISTORY card ");
+  EXPECT_NE(m.find("is not positive"), std::string::npos) << m;
+  // HISTORY cards that are not a CLEAN's beam are not a beam.
+  const std::string none = file("none.fits", with(base, {history[0], history[2]}));
+  expect_message(read_error(none), none, "no HISTORY card of a CLEAN gives BMAJ= and BMIN=");
+  ImageReadOptions lax;
+  lax.require_beam = false;
+  im = read_sky_image(none, lax);
+  EXPECT_FALSE(im.beam.valid());
+  EXPECT_EQ(im.beam_origin, "");
 }
 
 TEST(FitsRead, BeamCases) {
@@ -399,6 +576,7 @@ TEST(FitsRead, BeamCases) {
   EXPECT_NEAR(im.beam.maj_arcsec, 7.2, 1e-12);
   EXPECT_NEAR(im.beam.min_arcsec, 5.4, 1e-12);
   EXPECT_EQ(im.beam.pa_deg, 30.0);
+  EXPECT_EQ(im.beam_origin, "keywords");
 
   const std::string missing = file("missing.fits", base);
   expect_message(read_error(missing), missing, "has no restoring beam (BMAJ missing");
@@ -464,6 +642,98 @@ TEST(FitsRead, FrequencySources) {
   s.cards = with(s.cards, {"CTYPE3  = 'FREQ'", "CRVAL3  = 1.25", "CUNIT3  = 'm/s'"});
   write_fits(bad, s);
   expect_message(read_error(bad), bad, "CUNIT3 'm/s' of the FREQ axis");
+}
+
+/// Appends a binary table EXTNAME = 'BEAMS' with columns BMAJ, BMIN, BPA (float64,
+/// units as given), CHAN, POL (int32) to `path`.
+void append_beam_table(const std::string& path, const std::vector<std::array<double, 5>>& rows,
+                       const char* size_unit = "arcsec", bool with_pol = true) {
+  fitsfile* f = nullptr;
+  int st = 0;
+  fits_open_file(&f, path.c_str(), READWRITE, &st);
+  std::vector<std::string> names{"BMAJ", "BMIN", "BPA", "CHAN", "POL"}, forms{"1D", "1D", "1D", "1J", "1J"},
+      units{size_unit, size_unit, "deg", "", ""};
+  if (!with_pol) names.pop_back(), forms.pop_back(), units.pop_back();
+  std::vector<char*> n, fo, un;
+  for (auto& x : names) n.push_back(x.data());
+  for (auto& x : forms) fo.push_back(x.data());
+  for (auto& x : units) un.push_back(x.data());
+  char extname[] = "BEAMS";
+  fits_create_tbl(f, BINARY_TBL, 0, static_cast<int>(n.size()), n.data(), fo.data(), un.data(), extname, &st);
+  for (std::size_t r = 0; r < rows.size(); ++r) {
+    const LONGLONG row = static_cast<LONGLONG>(r + 1);
+    for (int c = 0; c < 3; ++c) {
+      double v = rows[r][static_cast<std::size_t>(c)];
+      fits_write_col(f, TDOUBLE, c + 1, row, 1, 1, &v, &st);
+    }
+    for (int c = 3; c < static_cast<int>(n.size()); ++c) {
+      int v = static_cast<int>(rows[r][static_cast<std::size_t>(c)]);
+      fits_write_col(f, TINT, c + 1, row, 1, 1, &v, &st);
+    }
+  }
+  fits_close_file(f, &st);
+  ASSERT_EQ(st, 0) << "beam table of " << path;
+}
+
+TEST(FitsRead, PerPlaneBeamFromBeamTable) {
+  // A beam table (REF-FITS-08): BMAJ, BMIN [arcsec], BPA [deg], CHAN, POL (0-based
+  // planes along the spectral and the Stokes axis); the row of the plane measured.
+  ScratchDir dir;
+  const std::vector<std::string> axes = {"CTYPE3  = 'FREQ'", "CRVAL3  = 888.0", "CDELT3  = 16.0", "CRPIX3  = 1",
+                                         "CUNIT3  = 'MHz'",  "CTYPE4  = 'STOKES'", "CRVAL4  = 1", "CDELT4  = 1",
+                                         "CRPIX4  = 1"};
+  const std::vector<std::array<double, 5>> rows = {
+      {12.0, 10.0, 15.0, 0, 0}, {11.0, 9.0, -20.0, 1, 0}, {10.0, 8.0, 25.0, 2, 0}};
+  auto make = [&](const std::string& name, bool keywords, const std::vector<std::array<double, 5>>& r,
+                  const char* unit = "arcsec") {
+    const std::string p = dir.file(name);
+    FitsSpec s = cube({6, 4, 3, 1}, axes);
+    if (!keywords) s.cards = without(without(without(s.cards, "BMAJ"), "BMIN"), "BPA");
+    write_fits(p, s);
+    append_beam_table(p, r, unit);
+    return p;
+  };
+  const std::string t = make("table.fits", false, rows);
+  ImageReadOptions o;
+  o.plane = {1};
+  SkyImage im = read_sky_image(t, o);
+  EXPECT_DOUBLE_EQ(im.beam.maj_arcsec, 11.0);
+  EXPECT_DOUBLE_EQ(im.beam.min_arcsec, 9.0);
+  EXPECT_DOUBLE_EQ(im.beam.pa_deg, 160.0);  // -20 = 160 (mod 180)
+  EXPECT_EQ(im.beam_origin, "beam_table");
+  EXPECT_DOUBLE_EQ(im.freq_hz, 904e6);
+  EXPECT_FLOAT_EQ(im.pixels(1, 1), 1007.0f);  // the pixels of the same plane
+  o.plane = {2};
+  im = read_sky_image(t, o);
+  EXPECT_DOUBLE_EQ(im.beam.maj_arcsec, 10.0);
+  EXPECT_DOUBLE_EQ(im.beam.pa_deg, 25.0);
+
+  // The table's beam of the plane comes before the keywords' single beam.
+  const std::string both = make("both.fits", true, rows);
+  o.plane = {0};
+  im = read_sky_image(both, o);
+  EXPECT_DOUBLE_EQ(im.beam.maj_arcsec, 12.0);
+  EXPECT_EQ(im.beam_origin, "beam_table");
+  // Sizes in degrees (TUNIT).
+  const std::string deg = make("deg.fits", false, {{0.003, 0.002, 40.0, 0, 0}, {0.003, 0.002, 40.0, 1, 0},
+                                                   {0.003, 0.002, 40.0, 2, 0}}, "deg");
+  im = read_sky_image(deg, o);
+  EXPECT_NEAR(im.beam.maj_arcsec, 10.8, 1e-9);
+  EXPECT_NEAR(im.beam.min_arcsec, 7.2, 1e-9);
+
+  // No row for the plane, two rows for it, an unknown unit: refused, naming the table.
+  const std::string gap = make("gap.fits", false, {rows[0], rows[2]});
+  o.plane = {1};
+  expect_message(read_error(gap, o), gap, "beam table BEAMS has no row for the plane measured (CHAN 1, POL 0)");
+  const std::string twice = make("twice.fits", false, {rows[0], rows[1], rows[1]});
+  expect_message(read_error(twice, o), twice, "beam table BEAMS has two rows (2 and 3) for CHAN 1, POL 0");
+  const std::string unit = make("unit.fits", false, rows, "furlong");
+  expect_message(read_error(unit, o), unit, "TUNIT1 'furlong' of BMAJ is not arcsec, arcmin, deg or rad");
+  const std::string nopol = dir.file("nopol.fits");
+  FitsSpec s = cube({6, 4, 3, 1}, axes);
+  write_fits(nopol, s);
+  append_beam_table(nopol, rows, "arcsec", false);
+  expect_message(read_error(nopol, o), nopol, "beam table BEAMS has no column POL");
 }
 
 // ---- Bad files -----------------------------------------------------------------------

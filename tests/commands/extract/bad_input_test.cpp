@@ -73,19 +73,20 @@ TEST(BadInput, AllNanImageIsNoData) {
 }
 
 // FITS Standard 4.0 (REF-FITS-02): BUNIT gives the unit of the values; a radio
-// continuum image must be Jy/beam (common practice) unless the user overrides.
+// continuum image must be Jy/beam (common practice) or a unit skerry converts to
+// it (K, Jy/pixel; REF-UNIT-05) unless the user overrides.
 TEST(BadInput, WrongBunitThenOverride) {
   TempDir tmp("bunit");
   const SkyImage im = small_image();
-  const std::string img = tmp / "kelvin.fits";
-  write_fits_image(img, im.pixels, im, "K");
+  const std::string img = tmp / "surface.fits";
+  write_fits_image(img, im.pixels, im, "MJy/sr");
   RunResult r = run_skerry({"extract", img, "--out", tmp / "out"}, tmp.path());
   EXPECT_EQ(r.code, kExitBadInput);
   EXPECT_NE(r.err.find("BUNIT"), std::string::npos) << r.err;
   expect_no_outputs(tmp / "out");
   r = run_skerry({"extract", img, "--out", tmp / "out", "--image.accept_bunit", "true"}, tmp.path());
   EXPECT_EQ(r.code, 0) << r.err;
-  EXPECT_TRUE(fs::exists(tmp / "out/kelvin.components.csv"));
+  EXPECT_TRUE(fs::exists(tmp / "out/surface.components.csv"));
 }
 
 // REF-FITS-03: BMAJ/BMIN are FWHMs in degrees; zero is a degenerate beam.
