@@ -122,6 +122,8 @@ po::options_description extract_options() {
       ("catalogue.group_max_flux_ratio", po::value<double>()->default_value(gr.link_max_flux_ratio), "... and their integrated flux densities differ by at most this factor (0 = any)")
       ("catalogue.diffuse_residual_ratio", po::value<double>()->default_value(gr.diffuse_residual_ratio), "an island is diffuse when its residual rms exceeds this x the local rms")
       ("catalogue.diffuse_min_beams", po::value<double>()->default_value(gr.diffuse_min_beams), "islands smaller than this many beams are never diffuse")
+      ("catalogue.residual_flux_snr", po::value<double>()->default_value(gr.residual_flux_snr), "a source's s_int is its apertures' pixel flux when their residual flux sum(data - model) reaches this many errors, else the components' sum")
+      ("catalogue.aperture_margin_beams", po::value<double>()->default_value(gr.aperture_margin_beams), "flux aperture of an island: the island grown by this many beam FWHMs, other islands left out")
       ("catalogue.edge_margin_beams", po::value<double>()->default_value(fl.edge_margin_beams), "near_edge flag distance [beams]")
       ("catalogue.blank_margin_beams", po::value<double>()->default_value(fl.blank_margin_beams), "near_blank flag distance [beams]")
       ("catalogue.bright_radius_beams", po::value<double>()->default_value(fl.bright_radius_beams), "near_bright flag search radius [beams]")
@@ -378,6 +380,12 @@ void read_catalogue_config(const OptionReader& o, ExtractSettings& c) {
           "catalogue.diffuse_residual_ratio > 0");
   gr.diffuse_min_beams = o.D("catalogue.diffuse_min_beams");
   require(gr.diffuse_min_beams >= 0.0, "catalogue.diffuse_min_beams", o.txt(gr.diffuse_min_beams), ">= 0");
+  gr.aperture_margin_beams = o.D("catalogue.aperture_margin_beams");
+  require(gr.aperture_margin_beams >= 0.0 && gr.aperture_margin_beams <= 10.0, "catalogue.aperture_margin_beams",
+          o.txt(gr.aperture_margin_beams), "0 <= catalogue.aperture_margin_beams <= 10");
+  gr.residual_flux_snr = o.D("catalogue.residual_flux_snr");
+  require(gr.residual_flux_snr > 0.0, "catalogue.residual_flux_snr", o.txt(gr.residual_flux_snr),
+          "catalogue.residual_flux_snr > 0");
   FlagOptions& fl = c.job.flags;
   fl.edge_margin_beams = o.D("catalogue.edge_margin_beams");
   fl.blank_margin_beams = o.D("catalogue.blank_margin_beams");

@@ -187,7 +187,72 @@ struct IslandContext {
   std::vector<Beam> beam;
   std::vector<BeamGeometry> geom;
   std::vector<double> flux_err, mean_rms;
+  /// Intensity-weighted centroid of the positive island pixels (0-based image
+  /// pixels) and their sum [Jy/beam * pixel]; the extreme pixels in 16
+  /// directions (image pixels).
+  std::vector<double> cx, cy, csum;
+  std::vector<std::vector<std::pair<int, int>>> extremes;
+  /// Flux apertures after the fit: data and model flux [Jy], data-sum error [Jy].
+  std::vector<double> ap_data, ap_model, ap_err;
 };
+
+/// Each island's flux aperture (skerry/fitting.h IslandAperture), the island
+/// grown by catalogue.aperture_margin_beams major FWHMs, measured on the data
+/// and the fitted model; the error of its data sum in correlated noise.
+void measure_apertures(const SkyImage& sky, const ExtractConfig& cfg, const IslandResult& isl,
+                       const std::vector<IslandFit>& fits, const LabelsI32& labels, const NoiseMaps& maps,
+                       IslandContext& ctx) {
+  const std::size_t n = isl.islands.size();
+  ctx.ap_data.assign(n, NAN);
+  ctx.ap_model.assign(n, NAN);
+  ctx.ap_err.assign(n, NAN);
+  oneapi::tbb::parallel_for(oneapi::tbb::blocked_range<std::size_t>(0, n, 8), [&](const auto& range) {
+    for (std::size_t k = range.begin(); k != range.end(); ++k) {
+      const BeamGeometry& g = ctx.geom[k];
+      const int margin = static_cast<int>(std::lround(cfg.grouping.aperture_margin_beams * g.beam_maj_pix));
+      const IslandAperture ap = island_aperture(sky.pixels, maps, labels, isl.islands[k], margin, fits[k].components);
+      if (ap.n_pixels == 0) continue;
+      // Pixel sums / beam area in pixels [Jy] (REF-GAUSS-04).
+      ctx.ap_data[k] = ap.data_sum / g.beam_area_pix;
+      ctx.ap_model[k] = ap.model_sum / g.beam_area_pix;
+      ctx.ap_err[k] = pixel_sum_flux_error(ap.rms, ap.mask, g.beam_cov_pix, g.beam_area_pix);
+    }
+  });
+}
+
+/// Centroid and extreme pixels of one island from its cut-out (data = image -
+/// background) and island mask.
+void island_shape(const IslandCutout& c, const MaskU8& in_island, double& cx, double& cy, double& csum,
+                  std::vector<std::pair<int, int>>& extremes) {
+  constexpr int kDirs = 16;
+  double best[kDirs];
+  extremes.assign(kDirs, {0, 0});
+  for (double& b : best) b = -INFINITY;
+  double sx = 0.0, sy = 0.0, sw = 0.0;
+  for (long y = 0; y < in_island.rows(); ++y)
+    for (long x = 0; x < in_island.cols(); ++x) {
+      if (!in_island(y, x)) continue;
+      const int ix = static_cast<int>(x) + c.x_origin, iy = static_cast<int>(y) + c.y_origin;
+      const double v = c.data(y, x);
+      if (v > 0.0) {
+        sx += v * ix;
+        sy += v * iy;
+        sw += v;
+      }
+      for (int d = 0; d < kDirs; ++d) {
+        const double a = kPi * d / (kDirs / 2);
+        const double proj = ix * std::cos(a) + iy * std::sin(a);
+        if (proj > best[d]) {
+          best[d] = proj;
+          extremes[d] = {ix, iy};
+        }
+      }
+    }
+  if (!(best[0] > -INFINITY)) extremes.clear();
+  cx = sw > 0.0 ? sx / sw : NAN;
+  cy = sw > 0.0 ? sy / sw : NAN;
+  csum = sw;
+}
 
 std::vector<IslandCutout> make_cutouts(const SkyImage& sky, const ExtractConfig& cfg, const SkyBeam& sky_beam,
                                        const Beam& beam, const BeamGeometry& centre,
@@ -199,6 +264,10 @@ std::vector<IslandCutout> make_cutouts(const SkyImage& sky, const ExtractConfig&
   ctx.beam.assign(n_isl, beam);
   ctx.flux_err.assign(n_isl, NAN);
   ctx.mean_rms.assign(n_isl, NAN);
+  ctx.cx.assign(n_isl, NAN);
+  ctx.cy.assign(n_isl, NAN);
+  ctx.csum.assign(n_isl, 0.0);
+  ctx.extremes.assign(n_isl, {});
   oneapi::tbb::parallel_for(oneapi::tbb::blocked_range<std::size_t>(0, n_isl, 8), [&](const auto& range) {
     for (std::size_t k = range.begin(); k != range.end(); ++k) {
       const Island& is = islands[k];
@@ -210,6 +279,7 @@ std::vector<IslandCutout> make_cutouts(const SkyImage& sky, const ExtractConfig&
                                   cfg.fit.fit_margin_beam_sigma, &in_island, &ctx.mean_rms[k]);
       ctx.flux_err[k] = pixel_sum_flux_error(cutouts[k].rms, in_island, ctx.geom[k].beam_cov_pix,
                                              ctx.geom[k].beam_area_pix);
+      island_shape(cutouts[k], in_island, ctx.cx[k], ctx.cy[k], ctx.csum[k], ctx.extremes[k]);
     }
   });
   return cutouts;
@@ -379,6 +449,20 @@ std::vector<IslandRecord> island_records(const SkyImage& sky, const ExtractConfi
     ci.n_beams = static_cast<double>(is.pixels) / g.beam_area_pix;
     ci.residual_rms_jy_per_beam = r.residual_rms_jy_per_beam;
     ci.mean_rms_jy_per_beam = r.mean_rms_jy_per_beam;
+    ci.aperture_data_jy = ctx.ap_data[k];
+    ci.aperture_model_jy = ctx.ap_model[k];
+    ci.aperture_err_jy = ctx.ap_err[k];
+    if (std::isfinite(ctx.cx[k]) &&
+        !sky.wcs->pix_to_sky(ctx.cx[k], ctx.cy[k], ci.centroid_ra_deg, ci.centroid_dec_deg))
+      ci.centroid_ra_deg = ci.centroid_dec_deg = NAN;
+    ci.centroid_weight_jy = ctx.csum[k] / g.beam_area_pix;
+    for (const auto& [ex, ey] : ctx.extremes[k]) {
+      double ra, dec;
+      if (sky.wcs->pix_to_sky(ex, ey, ra, dec)) ci.extent_points.emplace_back(ra, dec);
+    }
+    ci.pixel_arcsec = std::sqrt(g.local.pixel_area_arcsec2);
+    ci.peak_jy_per_beam = r.peak_jy_per_beam;
+    ci.contour_jy_per_beam = isl.grow_snr_used * r.mean_rms_jy_per_beam;
     std::uint32_t f = 0;
     if (is.touches_edge) f |= kFlagNearEdge;
     if (is.touches_blank) f |= kFlagNearBlank;
@@ -444,6 +528,7 @@ ExtractResult run_extract_job(const SkyImage& sky, const ExtractInputs& in, cons
 
   Stage t_cat(hooks, "catalogue");
   flag_components(out.components, sky.pixels, centre.local.jac_arcsec_per_pix, out.beam, cfg.flags);
+  measure_apertures(sky, cfg, isl, fits, *labels, out.maps, ctx);
   std::vector<CatalogueIsland> cat_isl;
   out.islands = island_records(sky, cfg, isl, fits, ctx, cat_isl);
   out.sources = group_sources(out.components, cat_isl, out.beam, cfg.grouping);

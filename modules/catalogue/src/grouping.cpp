@@ -64,6 +64,69 @@ bool finite_pos(const CatalogueComponent& c) {
 
 }  // namespace
 
+namespace {
+
+// Pixel flux, centroid and emission LAS of a source from its islands (rules in
+// skerry/catalogue.h). Islands without pixel sums leave the values NaN.
+void emission_measures(CatalogueSource& s,
+                       const std::unordered_map<std::int64_t, const CatalogueIsland*>& by_id,
+                       const Beam& beam, const GroupingOptions& opt) {
+  double data = 0.0, resid = 0.0, var = 0.0, wsum = 0.0, peak = -INFINITY, level = INFINITY;
+  double pix = 0.0;
+  bool sums_ok = true;
+  Eigen::Vector3d v = Eigen::Vector3d::Zero();
+  std::vector<std::pair<double, double>> pts;
+  for (std::int64_t id : s.islands) {
+    const auto it = by_id.find(id);
+    if (it == by_id.end()) {
+      sums_ok = false;
+      continue;
+    }
+    const CatalogueIsland& is = *it->second;
+    if (std::isfinite(is.aperture_data_jy) && std::isfinite(is.aperture_model_jy) &&
+        std::isfinite(is.aperture_err_jy)) {
+      data += is.aperture_data_jy;
+      resid += is.aperture_data_jy - is.aperture_model_jy;
+      var += is.aperture_err_jy * is.aperture_err_jy;
+    } else {
+      sums_ok = false;
+    }
+    if (is.centroid_weight_jy > 0.0 && std::isfinite(is.centroid_ra_deg) && std::isfinite(is.centroid_dec_deg)) {
+      v += is.centroid_weight_jy * unit_vector(is.centroid_ra_deg, is.centroid_dec_deg);
+      wsum += is.centroid_weight_jy;
+    }
+    for (const auto& p : is.extent_points) pts.push_back(p);
+    if (std::isfinite(is.peak_jy_per_beam)) peak = std::max(peak, is.peak_jy_per_beam);
+    if (std::isfinite(is.contour_jy_per_beam)) level = std::min(level, is.contour_jy_per_beam);
+    pix = std::max(pix, is.pixel_arcsec);
+  }
+  if (sums_ok && !s.islands.empty()) {
+    s.s_int_pix_jy = data;
+    s.s_int_pix_err_jy = std::sqrt(var);
+    s.s_int_from_pixels = var > 0.0 && std::abs(resid) >= opt.residual_flux_snr * std::sqrt(var);
+  }
+  if (wsum > 0.0 && v.norm() > 0.0) {
+    v.normalize();
+    s.centroid_ra_deg = std::atan2(v(1), v(0)) * kRadToDeg;
+    if (s.centroid_ra_deg < 0.0) s.centroid_ra_deg += 360.0;
+    if (s.centroid_ra_deg >= 360.0) s.centroid_ra_deg -= 360.0;
+    s.centroid_dec_deg = std::atan2(v(2), std::hypot(v(0), v(1))) * kRadToDeg;
+  }
+  if (!pts.empty() && beam.valid()) {
+    double d = 0.0;
+    for (std::size_t a = 0; a < pts.size(); ++a)
+      for (std::size_t b = a + 1; b < pts.size(); ++b)
+        d = std::max(d, separation_deg(pts[a].first, pts[a].second, pts[b].first, pts[b].second) * kDegToArcsec);
+    d += pix;
+    const double d0 = (peak > level && level > 0.0)
+                          ? beam.maj_arcsec * std::sqrt(std::log(peak / level) / std::log(2.0))
+                          : 0.0;
+    s.las_emission_arcsec = d > d0 ? std::sqrt(d * d - d0 * d0) : 0.0;
+  }
+}
+
+}  // namespace
+
 std::vector<CatalogueSource> group_sources(const std::vector<CatalogueComponent>& comps,
                                            const std::vector<CatalogueIsland>& islands,
                                            const Beam& beam, const GroupingOptions& opt) {
@@ -224,6 +287,14 @@ std::vector<CatalogueSource> group_sources(const std::vector<CatalogueComponent>
       }
     }
     s.las_arcsec = las;
+
+    s.s_int_model_jy = s.s_int_jy;
+    s.s_int_model_err_jy = s.s_int_err_jy;
+    emission_measures(s, island_by_id, beam, opt);
+    if (s.s_int_from_pixels) {
+      s.s_int_jy = s.s_int_pix_jy;
+      s.s_int_err_jy = s.s_int_pix_err_jy;
+    }
 
     if (s.islands.size() > 1) info |= kInfoMultiIsland;
     if (any_diffuse) flags |= kFlagDiffuse;

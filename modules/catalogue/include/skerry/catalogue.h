@@ -30,6 +30,23 @@
 ///  - total flux density: sum of the components' S_int; error: their errors in
 ///    quadrature (treated as independent: an approximation inside one island,
 ///    where fitted fluxes are anti-correlated, common practice).
+///  - flux densities: s_int_model = the components' sum above; s_int_pix = the
+///    sum of (image - background) over the islands' flux apertures (each island
+///    dilated by catalogue.aperture_margin_beams, other islands left out) / the
+///    beam area in pixels, its error the apertures' pixel-sum errors in
+///    correlated noise in quadrature. The residual flux R = sum over the
+///    apertures of (data - model) tests the model: s_int = s_int_pix when |R| >=
+///    residual_flux_snr x that error (the Gaussians leave flux unmodelled, or
+///    their wings claim flux the data do not have), else s_int_model.
+///  - centroid: the intensity-weighted mean of the islands' positive pixels.
+///  - las_emission: from the emission rather than the fits: D = the largest
+///    separation of the islands' extreme pixels plus one pixel (the contour at
+///    the islands' boundary, detect.grow_snr x rms), minus in quadrature the
+///    diameter a point source of the source's peak P would have at that level
+///    L, D0 = b_maj sqrt(ln(P / L) / ln 2) (b_maj the beam's major FWHM; a
+///    Gaussian falls to L at that diameter, REF-GAUSS-01): sqrt(D^2 - D0^2),
+///    0 when D <= D0. For a Gaussian source of intrinsic FWHM theta this is
+///    theta sqrt(ln(P / L) / ln 2): the intrinsic extent to the same contour.
 ///  - largest angular size (LAS): the largest of (a) each component's
 ///    deconvolved major FWHM and (b) over pairs, sep_ij + h_i + h_j with h the
 ///    half-width of the *deconvolved* FWHM ellipse projected on the line
@@ -139,6 +156,25 @@ struct CatalogueIsland {
   double residual_rms_jy_per_beam = 0.0;    ///< rms of (image - background - model) over the island
   double mean_rms_jy_per_beam = 0.0;        ///< mean local rms over the island
   std::uint32_t flags = 0;
+  /// Flux densities over the island's flux aperture (the island dilated by
+  /// about a beam, without other islands; skerry/fitting.h IslandAperture) [Jy]
+  /// (pixel sums / beam area in pixels, REF-GAUSS-04): the data (image -
+  /// background), the fitted model, and the error of the data sum in correlated
+  /// noise (docs/CONVENTIONS.md "Noise"). NaN where unknown: the source then
+  /// keeps its components' sum.
+  double aperture_data_jy = NAN;
+  double aperture_model_jy = NAN;
+  double aperture_err_jy = NAN;
+  /// Intensity-weighted centroid of the positive island pixels (ICRS [deg]) and
+  /// its weight, the sum of those pixels [Jy]; weight 0 when there is none.
+  double centroid_ra_deg = NAN, centroid_dec_deg = NAN, centroid_weight_jy = 0.0;
+  /// Extreme pixels of the island: for each of 16 directions the pixel centre
+  /// farthest along it (ICRS [deg]); the island's diameter is the largest
+  /// separation between them (within 2 % of the exact one: cos(pi/16)).
+  std::vector<std::pair<double, double>> extent_points;
+  double pixel_arcsec = 0.0;                ///< side of a pixel at the island [arcsec]
+  double peak_jy_per_beam = NAN;            ///< largest (I - B) over the island
+  double contour_jy_per_beam = NAN;         ///< the island's boundary level: grow SNR x mean rms
 };
 
 // ---- Position flags ---------------------------------------------------------
@@ -165,6 +201,14 @@ struct GroupingOptions {
   double link_max_flux_ratio = 10.0;  ///< rule 3: largest S_int ratio of linked components (0 = any)
   double diffuse_residual_ratio = 1.5;  ///< residual rms / local rms above which an island is "diffuse"
   double diffuse_min_beams = 2.0;       ///< islands smaller than this many beam areas are never "diffuse"
+  /// Total flux density rule: a source's s_int is its apertures' pixel flux
+  /// (s_int_pix) when their residual flux, sum(data - model) over the
+  /// apertures' pixels, reaches this many of its errors; otherwise the
+  /// components' sum.
+  double residual_flux_snr = 3.0;
+  /// Margin of the islands' flux apertures [beam major FWHMs] (skerry/fitting.h
+  /// IslandAperture; applied by the caller that measures the apertures).
+  double aperture_margin_beams = 1.0;
 };
 
 enum class SourceStructure { Compact, Composite, Diffuse };
@@ -179,6 +223,13 @@ struct CatalogueSource {
   double s_int_jy = 0.0, s_int_err_jy = 0.0;
   double s_peak_max_jy_per_beam = 0.0;   ///< brightest component peak
   double las_arcsec = 0.0;               ///< largest angular size (see above)
+  /// Both flux-density estimates and which one s_int_jy is (see the rule above).
+  double s_int_model_jy = 0.0, s_int_model_err_jy = 0.0;
+  double s_int_pix_jy = NAN, s_int_pix_err_jy = NAN;
+  bool s_int_from_pixels = false;
+  /// Emission-based measures from the islands' pixels (see above).
+  double centroid_ra_deg = NAN, centroid_dec_deg = NAN;
+  double las_emission_arcsec = NAN;
   SourceStructure structure = SourceStructure::Compact;
   std::uint32_t flags = 0;      ///< warnings (kFlag*)
   std::uint32_t info_bits = 0;  ///< informational bits (kInfo*)

@@ -78,6 +78,20 @@ IslandCutout cut_out_island(const ImageF& image, const NoiseMaps& maps, const La
                             double margin_beam_sigma, MaskU8* in_island = nullptr,
                             double* mean_rms = nullptr);
 
+/// Pixels of an island's flux aperture: the island dilated by a disc of
+/// `margin_pix` pixels, without pixels of other islands and without unusable
+/// pixels (image, background or rms not finite, rms <= 0). A one-beam margin
+/// takes in the emission just below the island's boundary contour that the
+/// island's pixel sum misses (common practice for aperture photometry).
+struct IslandAperture {
+  int x_origin = 0, y_origin = 0;  ///< 0-based image pixel of mask column/row 0
+  MaskU8 mask;                     ///< 1 on the aperture's pixels
+  ImageF rms;                      ///< local rms [Jy/beam], same shape
+  long n_pixels = 0;
+  double data_sum = 0.0;   ///< sum of (image - background) [Jy/beam * pixel]
+  double model_sum = 0.0;  ///< sum of the components' model [Jy/beam * pixel]
+};
+
 /// Which covariance a fit reports in PixelComponent::cov.
 enum class ErrorModel {
   kSandwich,  ///< weighted fit corrected for beam-correlated noise (default)
@@ -239,6 +253,12 @@ std::vector<IslandFit> fit_islands(const std::vector<IslandCutout>& islands,
 
 /// Model value of a component at 0-based image pixel (x, y) [Jy/beam].
 double component_value(const PixelComponent& c, double x, double y);
+
+/// The flux aperture of `island` (see IslandAperture) with its data and the
+/// model of `components` summed over it.
+IslandAperture island_aperture(const ImageF& image, const NoiseMaps& maps, const LabelsI32& labels,
+                               const Island& island, int margin_pix,
+                               const std::vector<PixelComponent>& components);
 
 /// Model image (nx x ny) of many fitted components: each component is evaluated
 /// (component_value) out to `extent_sigma` major-axis sigmas from its centre and
