@@ -8,6 +8,7 @@
 #include <Eigen/Eigenvalues>
 #include <Eigen/LU>
 #include <algorithm>
+#include <array>
 #include <chrono>
 #include <cmath>
 #include <filesystem>
@@ -225,6 +226,11 @@ void measure_apertures(const SkyImage& sky, const ExtractConfig& cfg, const Isla
 void island_shape(const IslandCutout& c, const MaskU8& in_island, double& cx, double& cy, double& csum,
                   std::vector<std::pair<int, int>>& extremes) {
   constexpr int kDirs = 16;
+  static const std::array<std::pair<double, double>, kDirs> dirs = [] {
+    std::array<std::pair<double, double>, kDirs> d;
+    for (int k = 0; k < kDirs; ++k) d[k] = {std::cos(kPi * k / (kDirs / 2)), std::sin(kPi * k / (kDirs / 2))};
+    return d;
+  }();
   double best[kDirs];
   extremes.assign(kDirs, {0, 0});
   for (double& b : best) b = -INFINITY;
@@ -240,8 +246,7 @@ void island_shape(const IslandCutout& c, const MaskU8& in_island, double& cx, do
         sw += v;
       }
       for (int d = 0; d < kDirs; ++d) {
-        const double a = kPi * d / (kDirs / 2);
-        const double proj = ix * std::cos(a) + iy * std::sin(a);
+        const double proj = ix * dirs[d].first + iy * dirs[d].second;
         if (proj > best[d]) {
           best[d] = proj;
           extremes[d] = {ix, iy};

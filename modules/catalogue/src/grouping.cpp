@@ -105,13 +105,7 @@ void emission_measures(CatalogueSource& s,
     s.s_int_pix_err_jy = std::sqrt(var);
     s.s_int_from_pixels = var > 0.0 && std::abs(resid) >= opt.residual_flux_snr * std::sqrt(var);
   }
-  if (wsum > 0.0 && v.norm() > 0.0) {
-    v.normalize();
-    s.centroid_ra_deg = std::atan2(v(1), v(0)) * kRadToDeg;
-    if (s.centroid_ra_deg < 0.0) s.centroid_ra_deg += 360.0;
-    if (s.centroid_ra_deg >= 360.0) s.centroid_ra_deg -= 360.0;
-    s.centroid_dec_deg = std::atan2(v(2), std::hypot(v(0), v(1))) * kRadToDeg;
-  }
+  if (wsum > 0.0 && v.norm() > 0.0) radec_of_vector(v, s.centroid_ra_deg, s.centroid_dec_deg);
   if (!pts.empty() && beam.valid()) {
     double d = 0.0;
     for (std::size_t a = 0; a < pts.size(); ++a)
@@ -257,11 +251,7 @@ std::vector<CatalogueSource> group_sources(const std::vector<CatalogueComponent>
     std::sort(s.islands.begin(), s.islands.end());
     s.islands.erase(std::unique(s.islands.begin(), s.islands.end()), s.islands.end());
     if (w_sum > 0.0 && v.norm() > 0.0) {
-      v.normalize();
-      s.ra_deg = std::atan2(v(1), v(0)) * kRadToDeg;
-      if (s.ra_deg < 0.0) s.ra_deg += 360.0;
-      if (s.ra_deg >= 360.0) s.ra_deg -= 360.0;
-      s.dec_deg = std::atan2(v(2), std::hypot(v(0), v(1))) * kRadToDeg;
+      radec_of_vector(v, s.ra_deg, s.dec_deg);
       s.ra_err_arcsec = std::sqrt(var_ra) / w_sum;
       s.dec_err_arcsec = std::sqrt(var_dec) / w_sum;
     } else {

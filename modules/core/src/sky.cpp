@@ -75,6 +75,13 @@ Eigen::Vector3d unit_vector(double ra_deg, double dec_deg) {
   return {std::cos(d) * std::cos(a), std::cos(d) * std::sin(a), std::sin(d)};
 }
 
+void radec_of_vector(const Eigen::Vector3d& v, double& ra_deg, double& dec_deg) {
+  ra_deg = std::atan2(v(1), v(0)) * kRadToDeg;
+  if (ra_deg < 0.0) ra_deg += 360.0;
+  if (ra_deg >= 360.0) ra_deg -= 360.0;
+  dec_deg = std::atan2(v(2), std::hypot(v(0), v(1))) * kRadToDeg;
+}
+
 double separation_deg(double ra1, double dec1, double ra2, double dec2) {
   const double d1 = dec1 * kDegToRad, d2 = dec2 * kDegToRad;
   const double da = (ra2 - ra1) * kDegToRad;

@@ -59,5 +59,7 @@ double separation_deg(double ra1_deg, double dec1_deg, double ra2_deg, double de
 double position_angle_deg(double ra1_deg, double dec1_deg, double ra2_deg, double dec2_deg);
 /// Unit vector of (ra, dec).
 Eigen::Vector3d unit_vector(double ra_deg, double dec_deg);
+/// (ra, dec) [deg] of a non-zero vector (need not be unit), ra in [0, 360).
+void radec_of_vector(const Eigen::Vector3d& v, double& ra_deg, double& dec_deg);
 
 }  // namespace skerry
