@@ -310,7 +310,10 @@ UnitReading read_unit(const std::string& bunit) {
   }
   int jy = 0, beam = 0, pixel = 0, kelvin = 0;
   double prefix = 1.0;
-  for (const auto& [name, e] : factors) {
+  for (const auto& factor : factors) {
+    // Plain names, not a structured binding: the lambda below captures them.
+    const std::string& name = factor.first;
+    const int e = factor.second;
     const std::string low = lower(name);
     auto take_prefix = [&](const std::string& base) {
       // "" / "m" / "u" / micro sign (UTF-8 C2 B5) before a base unit.
