@@ -32,6 +32,7 @@
 #include "app/errors.h"
 #include "io/atomic_file.h"
 #include "io/table_io.h"
+#include "io/wcs.h"
 #include "app/options.h"
 #include "app/run_record.h"
 #include "skerry/crossmatch.h"
@@ -648,6 +649,9 @@ int run_match(const std::vector<std::string>& args) {
       ("match.completeness", po::value<double>()->default_value(0.997), "sigma_scaled mode: completeness p; match when d < sqrt(-2 ln(1-p))")
       ("match.systematic_arcsec", po::value<double>()->default_value(0.0), "sigma_scaled and likelihood_ratio modes: systematic error per coordinate added to both catalogues' [arcsec]")
       ("match.exclusive", po::value<bool>()->default_value(false), "sigma_scaled mode: one-to-one; pairs taken globally by increasing normalised separation d, each row of A and of B used at most once")
+      ("match.exclusive_by", po::value<std::string>()->default_value("d"), "sigma_scaled exclusive: pair order; d = increasing normalised separation among d < k; reliability = decreasing match reliability R (likelihood ratio with Q0 and B's density measured from the catalogues) among R > match.exclusive_min_reliability")
+      ("match.exclusive_min_reliability", po::value<double>()->default_value(0.4), "sigma_scaled exclusive by reliability: lowest R accepted, 0 <= R < 1")
+      ("match.exclusive_q0", po::value<double>()->default_value(0.0), "sigma_scaled exclusive by reliability: fixed fraction of A with a partner in B, in (0, 1]; 0 = estimate it from the blanks")
       ("match.lr_mag_b", po::value<std::string>()->default_value(""), "likelihood_ratio: magnitude column of B; empty = match.lr_flux_b or a column named mag, magnitude, mag_auto, ...")
       ("match.lr_flux_b", po::value<std::string>()->default_value(""), "likelihood_ratio: flux column of B used instead of a magnitude (binned in -2.5 log10 of it)")
       ("match.lr_mag_bin", po::value<double>()->default_value(0.5), "likelihood_ratio: magnitude bin width of n(m) and q(m) [mag]")
@@ -705,6 +709,14 @@ int run_match(const std::vector<std::string>& args) {
   if (multi && files.size() < 2) throw UsageError("match.mode multi takes a master catalogue and at least one more");
   require(!vm["match.exclusive"].as<bool>() || (mode == MatchMode::ErrorAware && !lr), "match.exclusive", "true",
           "only with match.mode sigma_scaled; one_to_one is the exclusive mode by separation");
+  const std::string excl_by = S("match.exclusive_by");
+  require(excl_by == "d" || excl_by == "reliability", "match.exclusive_by", excl_by, "d or reliability");
+  require(excl_by == "d" || vm["match.exclusive"].as<bool>(), "match.exclusive_by", excl_by,
+          "only with match.exclusive true");
+  const double excl_min_r = D("match.exclusive_min_reliability");
+  require(excl_min_r >= 0 && excl_min_r < 1, "match.exclusive_min_reliability", fits_real(excl_min_r), "0 <= R < 1");
+  const double excl_q0 = D("match.exclusive_q0");
+  require(excl_q0 >= 0 && excl_q0 <= 1, "match.exclusive_q0", fits_real(excl_q0), "0 (estimate) or 0 < Q0 <= 1");
   if (!self && !multi && files.size() != 2) throw UsageError("match takes two catalogues A B (got " + std::to_string(files.size()) + ")");
   const double radius = D("match.radius_arcsec");
   require(radius > 0 && std::isfinite(radius), "match.radius_arcsec", std::to_string(radius), "> 0");
@@ -911,6 +923,12 @@ int run_match(const std::vector<std::string>& args) {
   mo.completeness = p;
   mo.systematic_arcsec = D("match.systematic_arcsec");
   mo.exclusive = vm["match.exclusive"].as<bool>();
+  const bool by_reliability = mo.exclusive && excl_by == "reliability";
+  if (by_reliability) {
+    mo.exclusive_order = ExclusiveOrder::Reliability;
+    mo.min_reliability = excl_min_r;
+    if (excl_q0 > 0) mo.prior_q0 = excl_q0;
+  }
   MatchResult r;
   {
     StageTimer st(rec, "match");
@@ -919,9 +937,10 @@ int run_match(const std::vector<std::string>& args) {
   Table t;
   t.name = "matches";
   std::vector<std::int64_t> ia, ib;
-  std::vector<double> sep, pa, dn;
+  std::vector<double> sep, pa, dn, rel;
   std::vector<std::int64_t> nc, rk;
   for (const auto& q : r.pairs) {
+    rel.push_back(q.reliability);
     ia.push_back(q.a);
     ib.push_back(q.b);
     sep.push_back(q.sep_arcsec);
@@ -935,14 +954,23 @@ int run_match(const std::vector<std::string>& args) {
   t.add_f64("sep_arcsec", "arcsec", "pos.angDistance", "Great-circle separation of B from A (Vincenty)", sep);
   t.add_f64("pa_deg", "deg", "pos.posAng", "Position angle of B seen from A, east of north, [0, 360)", pa);
   t.add_i64("n_candidates", "", "meta.number",
-            mode == MatchMode::ErrorAware ? "Rows of B within the radius with d < k" : "Rows of B within the radius of this row of A", nc);
-  t.add_i64("rank", "", "meta.number", "Rank of this B among the candidates (1 = closest)", rk);
+            by_reliability                ? "Rows of B within the radius"
+            : mode == MatchMode::ErrorAware ? "Rows of B within the radius with d < k"
+                                            : "Rows of B within the radius of this row of A",
+            nc);
+  t.add_i64("rank", "", "meta.number",
+            by_reliability ? "Rank of this B among the candidates (1 = largest likelihood ratio)"
+                           : "Rank of this B among the candidates (1 = closest)",
+            rk);
   if (mode == MatchMode::ErrorAware)
     t.add_f64("norm_sep", "", "stat.value", "Normalised separation d = sqrt(D^T S^-1 D)", dn);
+  if (by_reliability)
+    t.add_f64("reliability", "", "stat.probability", "Match reliability R = LR / (sum LR + 1 - Q0) over the candidates of this row of A", rel);
   for (const Column* c : carried(A.table, A.path, S("match.columns_a"))) append_column(t, *c, S("match.prefix_a"), ia);
   for (const Column* c : carried(B.table, B.path, S("match.columns_b"))) append_column(t, *c, S("match.prefix_b"), ib);
   set_provenance(t, mode_name(mode), radius, parsed);
-  if (mode == MatchMode::ErrorAware) t.set_meta("match_k", std::to_string(r.k_threshold));
+  if (mode == MatchMode::ErrorAware && !by_reliability) t.set_meta("match_k", std::to_string(r.k_threshold));
+  if (by_reliability) t.set_meta("match_q0", fits_real(r.q0));
   if (mo.exclusive) t.set_meta("match_exclusive", "true");
 
   std::vector<char> used_a(A.table.rows(), 0), used_b(B.table.rows(), 0);
@@ -984,12 +1012,24 @@ int run_match(const std::vector<std::string>& args) {
   if (mode == MatchMode::ErrorAware) {
     js["sigma_scaled_mode"] = {{"completeness", p}, {"k", r.k_threshold}, {"systematic_arcsec", mo.systematic_arcsec},
                                {"exclusive", mo.exclusive}};
+    if (by_reliability) {
+      // k plays no part: pairs are accepted by R.
+      js["sigma_scaled_mode"]["k"] = nullptr;
+      js["sigma_scaled_mode"]["exclusive_by"] = "reliability";
+      js["sigma_scaled_mode"]["min_reliability"] = mo.min_reliability;
+      js["sigma_scaled_mode"]["q0"] = num(r.q0);
+      js["sigma_scaled_mode"]["q0_estimated"] = r.q0_estimated;
+      js["sigma_scaled_mode"]["density_b_per_arcmin2"] = num(r.density_b_arcsec2 * 3600.0);
+      double expected_false = 0;  // sum of (1 - R) over the accepted pairs
+      for (const auto& q : r.pairs) expected_false += 1.0 - q.reliability;
+      js["sigma_scaled_mode"]["expected_false_pairs"] = num(expected_false);
+    }
   }
   {
     // Offsets from the best pair of each A row (rank 1).
     std::vector<MatchPair> best;
     for (const auto& q : r.pairs)
-      if (q.rank == 1 || mode == MatchMode::OneToOne) best.push_back(q);
+      if (q.rank == 1 || mode == MatchMode::OneToOne || mo.exclusive) best.push_back(q);
     OffsetSummary os = offset_summary(A.pos, B.pos, best);
     js["offset_b_minus_a"] = {{"n", os.n},
                               {"median_ra_cosdec_arcsec", num(os.median_east_arcsec)},

@@ -289,6 +289,65 @@ double rayleigh_threshold(double p) {
   return std::sqrt(-2.0 * std::log1p(-p));
 }
 
+namespace {
+
+/// ErrorAware exclusive assignment by match reliability (MatchOptions::
+/// exclusive_order == Reliability): the likelihood-ratio method with one
+/// magnitude bin (every B row the same "magnitude"), so q(m) / n(m) = Q0 / rho_B
+/// and LR = Q0 f(r) / rho_B, R = LR / (sum LR + 1 - Q0) (REF-LR-01; Q0 from the
+/// blanks, REF-LR-03), then a greedy one-to-one pass by decreasing R.
+void exclusive_by_reliability(const SkyPositions& a, const SkyPositions& b, const MatchOptions& opt, MatchResult& res) {
+  LikelihoodRatioOptions lo;
+  lo.radius_arcsec = opt.radius_arcsec;
+  lo.systematic_arcsec = opt.systematic_arcsec;
+  lo.mag_bin = 1.0;
+  lo.q0 = opt.prior_q0;
+  // One bin needs fewer background positions than a magnitude histogram: at
+  // least 10^6 of them (or 20 per A row for small catalogues), in 4 to 20 shifts.
+  const double want = std::ceil(1e6 / std::max<double>(1.0, static_cast<double>(a.size())));
+  lo.background_shifts = static_cast<int>(std::clamp(want, 4.0, 20.0));
+  const LikelihoodRatioResult lr = likelihood_ratio_match(a, b, std::vector<double>(b.size(), 0.0), lo);
+  res.a_invalid = lr.a_invalid;
+  res.b_invalid = lr.b_invalid;
+  res.q0 = lr.q0;
+  res.q0_estimated = lr.q0_estimated;
+  res.density_b_arcsec2 = lr.bins.empty() ? 0.0 : lr.bins[0].n_m;
+  res.k_threshold = std::numeric_limits<double>::quiet_NaN();
+  const auto& c = lr.candidates;  // sorted by (a, rank by LR)
+  std::vector<std::size_t> order;
+  for (std::size_t q = 0; q < c.size(); ++q)
+    if (c[q].reliability > opt.min_reliability) order.push_back(q);
+  tbb::parallel_sort(order.begin(), order.end(), [&](std::size_t x, std::size_t y) {
+    if (c[x].reliability != c[y].reliability) return c[x].reliability > c[y].reliability;
+    if (c[x].norm_sep != c[y].norm_sep) return c[x].norm_sep < c[y].norm_sep;
+    if (c[x].sep_arcsec != c[y].sep_arcsec) return c[x].sep_arcsec < c[y].sep_arcsec;
+    if (c[x].a != c[y].a) return c[x].a < c[y].a;
+    return c[x].b < c[y].b;
+  });
+  std::vector<char> used_a(a.size(), 0), used_b(b.size(), 0), keep(c.size(), 0);
+  for (std::size_t q : order) {
+    const auto ia = static_cast<std::size_t>(c[q].a), ib = static_cast<std::size_t>(c[q].b);
+    if (used_a[ia] || used_b[ib]) continue;
+    used_a[ia] = used_b[ib] = 1;
+    keep[q] = 1;
+  }
+  for (std::size_t q = 0; q < c.size(); ++q) {  // in (a, rank) order
+    if (!keep[q]) continue;
+    MatchPair p;
+    p.a = c[q].a;
+    p.b = c[q].b;
+    p.sep_arcsec = c[q].sep_arcsec;
+    p.pa_deg = c[q].pa_deg;
+    p.n_candidates = c[q].n_candidates;
+    p.rank = c[q].rank;
+    p.norm_sep = c[q].norm_sep;
+    p.reliability = c[q].reliability;
+    res.pairs.push_back(p);
+  }
+}
+
+}  // namespace
+
 MatchResult match_catalogues(const SkyPositions& a, const SkyPositions& b, const MatchOptions& opt) {
   if (!(opt.radius_arcsec > 0.0) || !std::isfinite(opt.radius_arcsec))
     throw std::invalid_argument("match radius must be a positive number of arcsec");
@@ -303,6 +362,12 @@ MatchResult match_catalogues(const SkyPositions& a, const SkyPositions& b, const
     if (!(opt.systematic_arcsec >= 0.0)) throw std::invalid_argument("systematic error must be >= 0");
     check_errors(a, "A");
     check_errors(b, "B");
+    if (opt.exclusive && opt.exclusive_order == ExclusiveOrder::Reliability) {
+      if (!(opt.min_reliability >= 0.0 && opt.min_reliability < 1.0))
+        throw std::invalid_argument("minimum reliability must lie in [0, 1)");
+      exclusive_by_reliability(a, b, opt, res);
+      return res;
+    }
   }
   const std::size_t na = a.size();
   for (std::size_t i = 0; i < na; ++i) res.a_invalid += valid_position(a.ra_deg[i], a.dec_deg[i]) ? 0 : 1;

@@ -391,6 +391,28 @@ TEST(MatchCli, LikelihoodRatioAndExclusiveModes) {
   std::set<std::int64_t> used;
   for (auto v : te.at("row_b").i64) EXPECT_TRUE(used.insert(v).second);
   EXPECT_GT(te.rows(), 300u);
+  // Exclusive by reliability: the reliability column, R above the threshold,
+  // still one-to-one; Q0 and B's density in the summary.
+  ASSERT_EQ(run(ex + " --match.exclusive true --match.exclusive_by reliability --match.name exr", &out), 0) << out;
+  Table tr = read_table((d / "o" / "exr.matches.csv").string());
+  ASSERT_TRUE(tr.find("reliability"));
+  std::set<std::int64_t> used_r;
+  for (std::size_t q = 0; q < tr.rows(); ++q) {
+    EXPECT_TRUE(used_r.insert(tr.at("row_b").i64[q]).second);
+    EXPECT_GT(tr.at("reliability").f64[q], 0.4);
+    EXPECT_LE(tr.at("reliability").f64[q], 1.0);
+  }
+  EXPECT_GT(tr.rows(), 300u);
+  const std::string sr = slurp(d / "o" / "exr.match_summary.json");
+  EXPECT_NE(sr.find("\"exclusive_by\": \"reliability\""), std::string::npos) << sr;
+  EXPECT_NE(sr.find("\"q0\""), std::string::npos) << sr;
+  EXPECT_NE(sr.find("expected_false_pairs"), std::string::npos) << sr;
+  EXPECT_EQ(run(ex + " --match.exclusive true --match.exclusive_by rank", &out), 2);
+  EXPECT_NE(out.find("match.exclusive_by"), std::string::npos) << out;
+  EXPECT_EQ(run(ex + " --match.exclusive_by reliability", &out), 2);
+  EXPECT_NE(out.find("only with match.exclusive true"), std::string::npos) << out;
+  EXPECT_EQ(run(ex + " --match.exclusive true --match.exclusive_by reliability --match.exclusive_min_reliability 1", &out), 2);
+  EXPECT_NE(out.find("match.exclusive_min_reliability"), std::string::npos) << out;
   EXPECT_EQ(run(kBin + " match " + (d / "radio.csv").string() + " " + (d / "optical.csv").string() + " --out " +
                     (d / "o").string() + " --match.exclusive true",
                 &out),
