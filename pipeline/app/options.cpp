@@ -4,6 +4,8 @@
 #include <oneapi/tbb/info.h>
 
 #include <cctype>
+#include <charconv>
+#include <cstdlib>
 #include <fstream>
 #include <iostream>
 #include <sstream>
@@ -14,14 +16,59 @@ namespace skerry {
 
 namespace {
 
+/// The shortest decimal that reads back as the same double (std::to_chars,
+/// C++17): 0.2, not 0.20000000000000001.
+std::string shortest(double v) {
+  char buf[64];
+  const auto r = std::to_chars(buf, buf + sizeof buf, v);
+  std::string s(buf, r.ptr);
+  // 5e-06 -> 5e-6: the exponent without leading zeros, as people write it.
+  const std::size_t e = s.find('e');
+  if (e != std::string::npos && e + 2 < s.size() && (s[e + 1] == '-' || s[e + 1] == '+')) {
+    std::size_t z = e + 2;
+    while (z + 1 < s.size() && s[z] == '0') ++z;
+    s.erase(e + 2, z - (e + 2));
+    if (s[e + 1] == '+') s.erase(e + 1, 1);
+  }
+  return s;
+}
+
+/// Boost prints a double default with 17 significant digits ("(=0.20000000000000001)").
+/// Rewrites each "(=NUMBER)" of a --help text in its shortest form and pads
+/// with spaces so that the description column stays where Boost put it.
+std::string defaults_as_written(const std::string& help) {
+  std::string out;
+  std::size_t i = 0;
+  while (true) {
+    const std::size_t a = help.find("(=", i);
+    if (a == std::string::npos) break;
+    const std::size_t b = help.find(')', a);
+    if (b == std::string::npos) break;
+    const std::string num = help.substr(a + 2, b - a - 2);
+    char* end = nullptr;
+    const double v = std::strtod(num.c_str(), &end);
+    out.append(help, i, a - i);
+    if (!num.empty() && end == num.c_str() + num.size() && num.find_first_of(".eE") != std::string::npos) {
+      const std::string s = shortest(v);
+      out += "(=" + s + ")";
+      if (b + 1 < help.size() && help[b + 1] == ' ' && s.size() < num.size()) out.append(num.size() - s.size(), ' ');
+    } else {
+      out.append(help, a, b + 1 - a);
+    }
+    i = b + 1;
+  }
+  out.append(help, i, std::string::npos);
+  return out;
+}
+
 std::string value_text(const po::variable_value& v) {
   const boost::any& a = v.value();
   if (a.empty()) return "";
   std::ostringstream os;
   os.precision(17);
   if (auto p = boost::any_cast<std::string>(&a)) return *p;
-  if (auto p = boost::any_cast<double>(&a)) { os << *p; return os.str(); }
-  if (auto p = boost::any_cast<float>(&a)) { os << *p; return os.str(); }
+  if (auto p = boost::any_cast<double>(&a)) return shortest(*p);
+  if (auto p = boost::any_cast<float>(&a)) return shortest(static_cast<double>(*p));
   if (auto p = boost::any_cast<int>(&a)) return std::to_string(*p);
   if (auto p = boost::any_cast<long>(&a)) return std::to_string(*p);
   if (auto p = boost::any_cast<long long>(&a)) return std::to_string(*p);
@@ -83,7 +130,9 @@ ParsedOptions parse_options(const std::string& command, const std::string& usage
                   .run(),
               out.vm);
     if (out.vm.count("help")) {
-      std::cout << "usage: skerry " << command << " " << usage_line << "\n\n" << all << "\n";
+      std::ostringstream help;
+      help << all;
+      std::cout << "usage: skerry " << command << " " << usage_line << "\n\n" << defaults_as_written(help.str()) << "\n";
       out.help = true;
       return out;
     }

@@ -10,6 +10,7 @@
 
 #include "skerry_test_support.h"
 #include "app/errors.h"
+#include "app/options.h"
 #include "app/run_record.h"
 
 namespace skerry::test {
@@ -74,6 +75,21 @@ TEST(RunRecord, JsonHoldsWhatWasSet) {
   EXPECT_EQ(j["threads"], 3);
   EXPECT_FALSE(j["git_revision"].get<std::string>().empty());
   EXPECT_THROW(rec.add_input("image", tmp / "missing"), InputError);
+}
+
+// The resolved values that run records store are the shortest decimals that
+// read back as the same double (0.2, not 0.20000000000000001; common practice).
+TEST(ResolvedOptions, NumbersAsWritten) {
+  po::options_description d("test");
+  d.add_options()("a.x", po::value<double>()->default_value(0.2), "x")("a.y", po::value<double>()->default_value(5e-6), "y")(
+      "a.z", po::value<double>()->default_value(1.0 / 3.0), "z")("a.n", po::value<int>()->default_value(7), "n");
+  const ParsedOptions p = parse_options("test", "", d, {}, {"--a.y", "-0.7"});
+  EXPECT_EQ(p.resolved.at("a.x"), "0.2");
+  EXPECT_EQ(p.resolved.at("a.y"), "-0.7");
+  EXPECT_EQ(p.resolved.at("a.n"), "7");
+  EXPECT_EQ(std::stod(p.resolved.at("a.z")), 1.0 / 3.0);  // round trip exact
+  const ParsedOptions q = parse_options("test", "", d, {}, {});
+  EXPECT_EQ(q.resolved.at("a.y"), "5e-6");
 }
 
 }  // namespace

@@ -273,6 +273,22 @@ TEST(CommandLine, HelpCommandAndShortVersion) {
   EXPECT_EQ(v, run_stdout("--version"));
 }
 
+// Defaults are shown as a person writes them (0.2, 5e-6), not as the 17
+// significant digits of the nearest double (0.20000000000000001).
+TEST(CommandLine, DefaultsPrintedAsWritten) {
+  for (const char* c : {"extract", "bands", "match", "survey", "report", "completeness", "simulate", "demo"}) {
+    const std::string h = run_stdout(std::string(c) + " --help");
+    for (std::size_t a = h.find("(="); a != std::string::npos; a = h.find("(=", a + 2)) {
+      const std::string d = h.substr(a, h.find(')', a) - a + 1);
+      EXPECT_FALSE(contains(d, "0000000") || contains(d, "9999999") || contains(d, "e-0")) << c << ": " << d;
+    }
+  }
+  const std::string e = run_stdout("extract --help");
+  EXPECT_TRUE(contains(e, "--image.pb_cut arg (=0.2)")) << e;
+  EXPECT_TRUE(contains(run_stdout("match --help"), "--match.spectral_index arg (=-0.7)"));
+  EXPECT_TRUE(contains(run_stdout("simulate --help"), "(=5e-6)"));
+}
+
 TEST(VocabularyRules, CatchTheOldSpellings) {
   EXPECT_EQ(singular_form("bands.freqs_mhz"), singular_form("bands.freq_mhz"));
   EXPECT_NE(singular_form("noise.second_pass"), singular_form("noise.second_pas"));
