@@ -214,7 +214,9 @@ std::string lr_summary_html(const nlohmann::json& js, const std::string& base) {
 
 ReportSection lr_section(const fs::path& dir, const std::string& base, const std::string& other,
                          const nlohmann::json& js, MatchSections& out) {
-  ReportSection s{"match-" + base, "Counterparts by likelihood ratio: " + other, ""};
+  // A stem that already says "counterparts" is not repeated in the title (and the navigation bar).
+  const bool says = other.find("counterpart") != std::string::npos;
+  ReportSection s{"match-" + base, says ? "Counterparts by likelihood ratio" : "Counterparts in " + other + " (likelihood ratio)", ""};
   const nlohmann::json lr = js.value("likelihood_ratio", nlohmann::json::object());
   for (const auto& w : lr.value("warnings", nlohmann::json::array()))
     if (w.is_string()) out.warnings.push_back("Counterparts " + base + ": " + w.get<std::string>() + ".");
