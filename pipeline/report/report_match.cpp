@@ -45,7 +45,12 @@ bool is_lr_match(const fs::path& dir, const std::string& base, const nlohmann::j
 }
 
 double num(const nlohmann::json& j, const char* key) {
-  return j.contains(key) && j[key].is_number() ? j[key].get<double>() : kNaN;
+  return j.is_object() && j.contains(key) && j[key].is_number() ? j[key].get<double>() : kNaN;
+}
+
+/// j[key] when it is an object, else an empty object (a hand-edited summary does not crash the page).
+nlohmann::json object_at(const nlohmann::json& j, const char* key) {
+  return j.is_object() && j.contains(key) && j[key].is_object() ? j[key] : nlohmann::json::object();
 }
 
 // ------------------------------------------------------------ ordinary match
@@ -136,7 +141,7 @@ std::string lr_q0_html(const std::string& path, const std::string& base, const n
   std::vector<double> ratio;
   for (std::size_t i = 0; i < t.rows(); ++i) ratio.push_back(bb[i] > 0 ? ba[i] / bb[i] : kNaN);
   const double q0 = num(lr, "q0"), rms = num(lr, "q0_fit_rms");
-  const bool estimated = lr.value("q0_estimated", true);
+  const bool estimated = !(lr.contains("q0_estimated") && lr["q0_estimated"].is_boolean()) || lr["q0_estimated"].get<bool>();
   Plot p;
   p.id = "plot-lr-q0-" + base;
   p.title = "Q0 from the blank fractions";
@@ -196,8 +201,7 @@ std::string lr_reliability_html(const std::string& path, const std::string& base
 
 /// The one-line summary from the match summary's counts and likelihood_ratio block.
 std::string lr_summary_html(const nlohmann::json& js, const std::string& base) {
-  const nlohmann::json counts = js.value("counts", nlohmann::json::object());
-  const nlohmann::json lr = js.value("likelihood_ratio", nlohmann::json::object());
+  const nlohmann::json counts = object_at(js, "counts"), lr = object_at(js, "likelihood_ratio");
   auto count = [&](const char* k) { return counts.contains(k) ? counts[k].dump() : std::string("–"); };
   auto span = [&](const std::string& id, const std::string& v) {
     return "<b id=\"lr-" + id + "-" + xml_escape(base) + "\">" + xml_escape(v) + "</b>";
@@ -217,9 +221,10 @@ ReportSection lr_section(const fs::path& dir, const std::string& base, const std
   // A stem that already says "counterparts" is not repeated in the title (and the navigation bar).
   const bool says = other.find("counterpart") != std::string::npos;
   ReportSection s{"match-" + base, says ? "Counterparts by likelihood ratio" : "Counterparts in " + other + " (likelihood ratio)", ""};
-  const nlohmann::json lr = js.value("likelihood_ratio", nlohmann::json::object());
-  for (const auto& w : lr.value("warnings", nlohmann::json::array()))
-    if (w.is_string()) out.warnings.push_back("Counterparts " + base + ": " + w.get<std::string>() + ".");
+  const nlohmann::json lr = object_at(js, "likelihood_ratio");
+  if (lr.contains("warnings") && lr["warnings"].is_array())
+    for (const auto& w : lr["warnings"])
+      if (w.is_string()) out.warnings.push_back("Counterparts " + base + ": " + w.get<std::string>() + ".");
   std::string html = "<p class=\"note\">Counterpart identification by likelihood ratio (REF-LR-01..03), from " +
                      xml_escape(base) + ".match_summary.json and its tables.</p>\n" + lr_summary_html(js, base);
   const std::string bins = table_path(dir, base, ".lr_magnitude_bins"), q0 = table_path(dir, base, ".lr_q0_fit"),
@@ -257,6 +262,7 @@ MatchSections match_sections(const std::string& dir_s, const std::string& N) {
     const std::string base = f.substr(0, f.size() - sfx.size());
     nlohmann::json js;
     try { std::ifstream in(path); js = nlohmann::json::parse(in); } catch (...) { out.missing.push_back(f + " is not valid JSON"); continue; }
+    if (!js.is_object()) { out.missing.push_back(f + " is not a JSON object: not shown"); continue; }
     // Title: the other catalogue's name (the stem is NAME.components_OTHER).
     std::string other = base;
     for (const std::string& pre : {N + ".components_", N + "_"})
