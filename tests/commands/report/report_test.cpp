@@ -258,6 +258,48 @@ TEST_F(ReportRun, LikelihoodRatioMatchSection) {
     fs::remove(rd / f);
 }
 
+// End to end: a simulated field with an optical-like counterpart catalogue, extract,
+// match by likelihood ratio, report. The page states the numbers the match wrote.
+TEST(ReportLikelihoodRatio, PageStatesTheMatchNumbers) {
+  const fs::path d = fresh_dir("lr");
+  simulate(d, "--sources.count 300 --sources.slope 2.5 --sources.s_min_jy 1e-4 --sources.s_max_jy 0.05"
+              " --counterparts.density_deg2 1e5");
+  const fs::path rd = d / "run";
+  Cmd c = run(skerry() + " extract " + (d / "field_1400MHz.fits").string() + " --out " + rd.string(), d);
+  ASSERT_EQ(c.code, 0) << c.err;
+  c = run(skerry() + " match " + (rd / "field_1400MHz.components.csv").string() + " " + (d / "field.counterparts.csv").string() +
+          " --out " + rd.string() + " --match.mode likelihood_ratio --match.radius_arcsec 5 --match.lr_mag_b mag"
+          " --match.name field_1400MHz_optical --match.chance_shifts 0", d);
+  ASSERT_EQ(c.code, 0) << c.err;
+  c = run(skerry() + " report " + rd.string(), d);
+  ASSERT_EQ(c.code, 0) << c.err;
+  const std::string html = slurp(rd / "field_1400MHz.report.html"), base = "field_1400MHz_optical";
+  const std::string js = slurp(rd / (base + ".match_summary.json"));
+  auto json_number = [&](const std::string& key) {
+    std::smatch m;
+    return std::regex_search(js, m, std::regex("\"" + key + "\": ([-0-9.eE+]+)")) ? std::stod(m[1]) : -1.0;
+  };
+  auto page_number = [&](const std::string& id) {
+    std::smatch m;
+    return std::regex_search(html, m, std::regex("id=\"lr-" + id + "-" + base + "\">([^<]*)<")) ? std::stod(m[1]) : -2.0;
+  };
+  for (const std::string id : {"plot-lr-nm-qm-", "plot-lr-q0-", "plot-lr-reliability-", "lr-summary-"})
+    EXPECT_NE(html.find("id=\"" + id + base + "\""), std::string::npos) << id;
+  EXPECT_NEAR(page_number("q0"), json_number("q0"), 5e-5);
+  // Identified rows and Sigma (1 - R) over them counted here from the candidates table.
+  const Table cand = read_table((rd / (base + ".lr_candidates.csv")).string());
+  double false_ids = 0;
+  int identified = 0;
+  for (std::size_t i = 0; i < cand.rows(); ++i)
+    if (cand.at("identified").i64[i]) { false_ids += 1 - cand.at("reliability").f64[i]; ++identified; }
+  EXPECT_GT(identified, 50);
+  EXPECT_EQ(page_number("identified"), identified);
+  EXPECT_EQ(page_number("candidates"), static_cast<double>(cand.rows()));
+  EXPECT_NEAR(page_number("false"), false_ids, 5e-3 + 1e-9 * false_ids);
+  EXPECT_EQ(html.find("flux-scale check is off"), std::string::npos);
+  fs::remove_all(d);
+}
+
 TEST(ReportBadInput, FolderWithoutRun) {
   const fs::path d = fresh_dir("empty");
   const Cmd c = run(skerry() + " report " + d.string(), d);
