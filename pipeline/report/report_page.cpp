@@ -27,7 +27,9 @@
 #include "skerry/sky.h"
 #include "app/progress.h"
 #include "app/version.h"
+#include "report/report_match.h"
 #include "report/report_names.h"
+#include "report/report_util.h"
 #include "report/report_viewer.h"
 
 namespace skerry {
@@ -41,61 +43,20 @@ using plot::xml_escape;
 namespace col = plot::colour;
 namespace rn = report_names;
 constexpr double kNaN = std::numeric_limits<double>::quiet_NaN();
+using report_util::fmt;
+using report_util::column;
+using report_util::median;
+using report_util::figure;
+void histogram(const std::vector<double>& v, int nb, std::vector<double>& edges, std::vector<double>& counts,
+               double lo = kNaN, double hi = kNaN) {
+  report_util::histogram(v, nb, edges, counts, lo, hi);
+}
 constexpr double kArcsec2PerSr = 4.25451702961522e10;  // (180/pi * 3600)^2, exact by definition of the units
-
-std::string fmt(const char* f, double v) {
-  char b[64];
-  std::snprintf(b, sizeof b, f, v);
-  return b;
-}
-
-std::vector<double> column(const Table& t, const std::string& name) {
-  const Column* c = t.find(name);
-  std::vector<double> v;
-  if (!c) return std::vector<double>(t.rows(), kNaN);
-  if (c->type == ColumnType::Float64) return c->f64;
-  if (c->type == ColumnType::Int64) for (auto x : c->i64) v.push_back(static_cast<double>(x));
-  else v.assign(t.rows(), kNaN);
-  return v;
-}
-
-double median(std::vector<double> v) {
-  v.erase(std::remove_if(v.begin(), v.end(), [](double x) { return !std::isfinite(x); }), v.end());
-  if (v.empty()) return kNaN;
-  std::sort(v.begin(), v.end());
-  const std::size_t n = v.size();
-  return n % 2 ? v[n / 2] : 0.5 * (v[n / 2 - 1] + v[n / 2]);
-}
 
 std::vector<double> scaled(const std::vector<double>& v, double f) {
   std::vector<double> o(v);
   for (double& x : o) x *= f;
   return o;
-}
-
-/// Histogram with `nb` equal bins over the finite values (edges, counts).
-void histogram(const std::vector<double>& v, int nb, std::vector<double>& edges, std::vector<double>& counts,
-               double lo = kNaN, double hi = kNaN) {
-  edges.clear();
-  counts.clear();
-  double a = std::numeric_limits<double>::infinity(), b = -a;
-  for (double x : v) if (std::isfinite(x)) { a = std::min(a, x); b = std::max(b, x); }
-  if (std::isfinite(lo)) a = lo;
-  if (std::isfinite(hi)) b = hi;
-  if (!(b >= a) || !std::isfinite(a)) return;
-  if (b == a) { a -= 0.5; b += 0.5; }
-  for (int i = 0; i <= nb; ++i) edges.push_back(a + (b - a) * i / nb);
-  counts.assign(static_cast<std::size_t>(nb), 0.0);
-  for (double x : v) {
-    if (!std::isfinite(x) || x < a || x > b) continue;
-    int k = static_cast<int>((x - a) / (b - a) * nb);
-    k = std::clamp(k, 0, nb - 1);
-    counts[static_cast<std::size_t>(k)] += 1;
-  }
-}
-
-std::string figure(const std::string& svg, const std::string& caption) {
-  return "<figure class=\"plotbox\">" + svg + "<figcaption>" + caption + "</figcaption></figure>\n";
 }
 
 struct Run {
@@ -818,51 +779,15 @@ ReportResult write_report(const ReportOptions& opt) {
   }
   body << "</section>\n";
 
-  // ---- cross-match
-  for (const auto& e : fs::directory_iterator(dir)) {
-    const std::string f = e.path().filename().string();
-    const std::string sfx = rn::kMatchSummary;
-    if (f.size() <= sfx.size() || f.compare(f.size() - sfx.size(), sfx.size(), sfx) != 0) continue;
-    const std::string base = f.substr(0, f.size() - sfx.size());
-    nlohmann::json js;
-    try { std::ifstream in(e.path()); js = nlohmann::json::parse(in); } catch (...) { res.missing.push_back(f + " is not valid JSON"); continue; }
-    if (!js.contains("flux_ratio_a_over_b"))
-      res.warnings.push_back("Cross-match " + base + ": the flux-scale check is off (no flux ratio in " + f + "), so a flux-scale error between the catalogues would go unnoticed.");
-    // Title: the other catalogue's name (the stem is NAME.components_OTHER).
-    std::string other = base;
-    for (const std::string& pre : {N + ".components_", N + "_"})
-      if (other.size() > pre.size() && other.compare(0, pre.size(), pre) == 0) { other = other.substr(pre.size()); break; }
-    section("match-" + base, "Cross-match with " + other);
-    if (fs::exists(dir / (base + rn::kMatches))) {
-      const Table m = read_table((dir / (base + rn::kMatches)).string());
-      const auto sep = column(m, "sep_arcsec"), pa = column(m, "pa_deg");
-      std::vector<double> de, dn, ed, c;
-      for (std::size_t i = 0; i < m.rows(); ++i) {
-        de.push_back(sep[i] * std::sin(pa[i] * M_PI / 180.0));  // east offset of B from A [arcsec]
-        dn.push_back(sep[i] * std::cos(pa[i] * M_PI / 180.0));  // north offset [arcsec]
-      }
-      histogram(sep, 30, ed, c, 0.0);
-      Plot h;
-      h.id = "plot-sep-" + base;
-      h.title = "Separations";
-      h.x_label = "separation [arcsec]";
-      h.y_label = "pairs per bin";
-      h.series.push_back({SeriesKind::Bars, ed, c, {}, {}, col::kSkyBlue, "", 2.5, 1.6, false});
-      const double me = median(de), mn = median(dn);
-      Plot s;
-      s.id = "plot-offsets-" + base;
-      s.title = "Position offsets (B − A)";
-      s.x_label = "ΔRA cos Dec [arcsec]";
-      s.y_label = "ΔDec [arcsec]";
-      s.series.push_back({SeriesKind::Points, de, dn, {}, {}, col::kBlue, "", 2.0, 1.6, false});
-      s.series.push_back({SeriesKind::Points, {me}, {mn}, {}, {}, col::kVermillion, "median", 5.0, 1.6, false});
-      s.v_lines = {0.0};
-      s.h_lines = {0.0};
-      s.note = "median " + fmt("%+.3f", me) + ", " + fmt("%+.3f", mn) + " arcsec";
-      body << "<div class=\"row\">" << figure(plot::render_svg(h), std::to_string(m.rows()) + " matched pairs.")
-           << figure(plot::render_svg(s), "Offsets on the sky (east, north) from sep and PA; large vermillion (orange-red) point: the median.") << "</div>\n";
+  // ---- cross-match (report_match.cpp)
+  {
+    MatchSections ms = match_sections(dir.string(), N);
+    for (const auto& s : ms.sections) {
+      section(s.id, s.title);
+      body << s.html << "</section>\n";
     }
-    body << "</section>\n";
+    res.warnings.insert(res.warnings.end(), ms.warnings.begin(), ms.warnings.end());
+    res.missing.insert(res.missing.end(), ms.missing.begin(), ms.missing.end());
   }
 
   // ---- spectra
@@ -997,6 +922,7 @@ ReportResult write_report(const ReportOptions& opt) {
        << ".gallery{display:grid;grid-template-columns:repeat(auto-fill,minmax(560px,1fr));gap:14px}\n"
        << ".cutout{border:1px solid #d4dbe2;border-radius:6px;padding:8px}.ctitle{font-weight:600;font-size:13px;margin-bottom:4px}\n"
        << ".cpanels{display:flex;gap:6px}.cpanel svg{display:block;border:1px solid #888}.clabel{font-size:11px;color:#555}\n"
+       << ".lrsum{font-size:14px;background:#eef5fa;border-radius:6px;padding:6px 12px}\n"
        << ".cscale{font-size:11px;color:#555;margin:3px 0}.cnum{font-size:11px}.goto{font-size:12px;margin-top:4px}\n"
        << "</style></head><body>\n";
   html << "<header><h1>" << xml_escape(N) << "</h1><p>Run report of the skerry pipeline · version " << SKERRY_VERSION;

@@ -195,6 +195,111 @@ TEST_F(ReportRun, RendersInHeadlessBrowser) {
   EXPECT_GT(var, 100.0) << "screenshot looks blank";
 }
 
+// A likelihood-ratio counterpart identification and an ordinary match beside the run,
+// written here with known values (the column names and JSON keys of skerry match).
+// The page must draw n(m) and q(m), the Q0 fit and the reliabilities, state the
+// numbers of the files, carry the summary's warnings, and keep the flux-scale
+// warning for the ordinary match only.
+TEST_F(ReportRun, LikelihoodRatioMatchSection) {
+  const fs::path rd = dir_ / "run";
+  const std::string lr = "field_1400MHz_optical", plain = "field_1400MHz_reference";
+  // Candidates: four radio sources, three identified at R > 0.8.
+  { std::ofstream(rd / (lr + ".lr_candidates.csv"))
+        << "row_a,row_b,sep_arcsec,reliability,best,identified\n0,10,0.4,0.95,1,1\n1,11,0.7,0.90,1,1\n"
+           "2,12,1.1,0.85,1,1\n3,13,2.5,0.30,1,0\n3,14,3.0,0.02,0,0\n"; }
+  { std::ofstream(rd / (lr + ".lr_magnitude_bins.csv"))
+        << "mag_lo,mag_hi,total,background,n_m_per_deg2_per_mag,real,q_m_per_mag\n"
+           "18,19,2,10,1200,1.5,0.2\n19,20,2,40,4800,1.2,0.3\n20,21,1,90,10800,0.1,0.1\n"; }
+  { std::ofstream(rd / (lr + ".lr_q0_fit.csv"))
+        << "radius_arcsec,blank_a,blank_background,f_r_mean,model_ratio\n"
+           "1,0.62,0.98,0.5,0.68825\n2,0.40,0.95,0.9,0.43894\n4,0.33,0.90,1.0,0.3766\n"; }
+  // Sigma (1 - R) over the identified rows of the candidates above (REF-LR-01: the
+  // expected number of false identifications among them).
+  const Table cand = read_table((rd / (lr + ".lr_candidates.csv")).string());
+  double false_ids = 0;
+  int identified = 0;
+  for (std::size_t i = 0; i < cand.rows(); ++i)
+    if (cand.at("identified").i64[i]) { false_ids += 1 - cand.at("reliability").f64[i]; ++identified; }
+  const double q0 = 0.6234;
+  { std::ofstream(rd / (lr + ".match_summary.json"))
+        << "{\"mode\":\"likelihood_ratio\",\"radius_arcsec\":4.0,\"counts\":{\"rows_a\":5,\"rows_a_used\":4,"
+           "\"candidates\":" << cand.rows() << ",\"identified\":" << identified << "},\"likelihood_ratio\":{\"q0\":" << q0
+        << ",\"q0_estimated\":true,\"q0_fit_rms\":0.012,\"reliability_threshold\":0.8,\"identified_expected_false\":"
+        << false_ids << ",\"warnings\":[\"a warning of the likelihood-ratio run\"]}}\n"; }
+  { std::ofstream(rd / (plain + ".match_summary.json")) << "{\"mode\":\"nearest\",\"radius_arcsec\":5.0}\n"; }
+  const fs::path page = dir_ / "lr_page.html";
+  const Cmd r = run(skerry() + " report " + rd.string() + " --report.output " + page.string(), dir_);
+  ASSERT_EQ(r.code, 0) << r.err;
+  const std::string html = slurp(page);
+  for (const std::string id : {"plot-lr-nm-qm-", "plot-lr-q0-", "plot-lr-reliability-", "lr-summary-", "lr-bins-"})
+    EXPECT_NE(html.find("id=\"" + id + lr + "\""), std::string::npos) << id;
+  auto value = [&](const std::string& id) {
+    std::smatch m;
+    const std::regex re("id=\"lr-" + id + "-" + lr + "\">([^<]*)<");
+    return std::regex_search(html, m, re) ? std::stod(m[1]) : -1.0;
+  };
+  EXPECT_NEAR(value("q0"), q0, 5e-5);                // printed to 4 decimals
+  EXPECT_NEAR(value("false"), false_ids, 5e-3);      // printed to 2 decimals
+  EXPECT_EQ(value("identified"), identified);
+  EXPECT_EQ(value("candidates"), static_cast<double>(cand.rows()));
+  EXPECT_EQ(value("searched"), 4.0);
+  // The bins table repeats n(m) and q(m) of the file.
+  const auto rows = html_table(html, "lr-bins-" + lr);
+  ASSERT_EQ(rows.size(), 3u);
+  EXPECT_NEAR(rows[1][2], 4800, 1e-9);
+  EXPECT_NEAR(rows[1][3], 0.3, 1e-12);
+  // Warnings: the summary's own, the flux-scale one only for the ordinary match.
+  const std::string warn = html.substr(html.find("id=\"warnings\""), html.find("</div>", html.find("id=\"warnings\"")) - html.find("id=\"warnings\""));
+  EXPECT_NE(warn.find("a warning of the likelihood-ratio run"), std::string::npos) << warn;
+  EXPECT_NE(warn.find("Cross-match " + plain + ": the flux-scale check is off"), std::string::npos) << warn;
+  EXPECT_EQ(warn.find(lr + ": the flux-scale check"), std::string::npos) << warn;
+  for (const auto& f : {lr + ".lr_candidates.csv", lr + ".lr_magnitude_bins.csv", lr + ".lr_q0_fit.csv",
+                        lr + ".match_summary.json", plain + ".match_summary.json"})
+    fs::remove(rd / f);
+}
+
+// End to end: a simulated field with an optical-like counterpart catalogue, extract,
+// match by likelihood ratio, report. The page states the numbers the match wrote.
+TEST(ReportLikelihoodRatio, PageStatesTheMatchNumbers) {
+  const fs::path d = fresh_dir("lr");
+  simulate(d, "--sources.count 300 --sources.slope 2.5 --sources.s_min_jy 1e-4 --sources.s_max_jy 0.05"
+              " --counterparts.density_deg2 1e5");
+  const fs::path rd = d / "run";
+  Cmd c = run(skerry() + " extract " + (d / "field_1400MHz.fits").string() + " --out " + rd.string(), d);
+  ASSERT_EQ(c.code, 0) << c.err;
+  c = run(skerry() + " match " + (rd / "field_1400MHz.components.csv").string() + " " + (d / "field.counterparts.csv").string() +
+          " --out " + rd.string() + " --match.mode likelihood_ratio --match.radius_arcsec 5 --match.lr_mag_b mag"
+          " --match.name field_1400MHz_optical --match.chance_shifts 0", d);
+  ASSERT_EQ(c.code, 0) << c.err;
+  c = run(skerry() + " report " + rd.string(), d);
+  ASSERT_EQ(c.code, 0) << c.err;
+  const std::string html = slurp(rd / "field_1400MHz.report.html"), base = "field_1400MHz_optical";
+  const std::string js = slurp(rd / (base + ".match_summary.json"));
+  auto json_number = [&](const std::string& key) {
+    std::smatch m;
+    return std::regex_search(js, m, std::regex("\"" + key + "\": ([-0-9.eE+]+)")) ? std::stod(m[1]) : -1.0;
+  };
+  auto page_number = [&](const std::string& id) {
+    std::smatch m;
+    return std::regex_search(html, m, std::regex("id=\"lr-" + id + "-" + base + "\">([^<]*)<")) ? std::stod(m[1]) : -2.0;
+  };
+  for (const std::string id : {"plot-lr-nm-qm-", "plot-lr-q0-", "plot-lr-reliability-", "lr-summary-"})
+    EXPECT_NE(html.find("id=\"" + id + base + "\""), std::string::npos) << id;
+  EXPECT_NEAR(page_number("q0"), json_number("q0"), 5e-5);
+  // Identified rows and Sigma (1 - R) over them counted here from the candidates table.
+  const Table cand = read_table((rd / (base + ".lr_candidates.csv")).string());
+  double false_ids = 0;
+  int identified = 0;
+  for (std::size_t i = 0; i < cand.rows(); ++i)
+    if (cand.at("identified").i64[i]) { false_ids += 1 - cand.at("reliability").f64[i]; ++identified; }
+  EXPECT_GT(identified, 50);
+  EXPECT_EQ(page_number("identified"), identified);
+  EXPECT_EQ(page_number("candidates"), static_cast<double>(cand.rows()));
+  EXPECT_NEAR(page_number("false"), false_ids, 5e-3 + 1e-9 * false_ids);
+  EXPECT_EQ(html.find("flux-scale check is off"), std::string::npos);
+  fs::remove_all(d);
+}
+
 TEST(ReportBadInput, FolderWithoutRun) {
   const fs::path d = fresh_dir("empty");
   const Cmd c = run(skerry() + " report " + d.string(), d);
