@@ -626,7 +626,8 @@ int run_likelihood_ratio(const Catalogue& A, const Catalogue& B, const ParsedOpt
     }
   }
   if (r.a_no_error)
-    warn.push_back(std::to_string(r.a_no_error) + " rows of A without a usable position error were not searched");
+    warn.push_back(std::to_string(r.a_no_error) + (r.a_no_error == 1 ? " row" : " rows") +
+                   " of A without a usable position error " + (r.a_no_error == 1 ? "was" : "were") + " not searched");
   l["warnings"] = warn;
   js["likelihood_ratio"] = l;
   if (!B.pos.err_east_arcsec.empty()) js["b_position_errors"] = "used";
