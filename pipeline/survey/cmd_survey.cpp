@@ -257,6 +257,7 @@ int run_survey(const std::vector<std::string>& args) {
   d.add_options()
     ("survey_file", po::value<std::string>(), "CONFIG: the survey file (INI: [survey], [catalogue], extract's and bands' stage sections, [slurm]); also given as the first argument")
     ("force", po::bool_switch(), "reprocess every tile (with --only: those tiles)")
+    ("up_to_date_exit", po::value<int>()->default_value(5), "exit code when every tile is up to date and nothing runs: 5 (default, tells a no-op apart) or 0 (for schedulers that read any non-zero code as failure)")
     ("only", po::value<std::vector<std::string>>()->composing(), "process only this tile (by name; repeatable); it is reprocessed even when current")
     ("engine", po::value<std::string>(), "local or slurm (overrides survey.engine)")
     ("worker_task", po::value<int>(), "internal: run task N of a Slurm run (--run_dir)")
@@ -271,7 +272,7 @@ int run_survey(const std::vector<std::string>& args) {
   ParsedOptions opts = parse_options(
       "survey", "CONFIG [--force] [--only TILE]... [--engine local|slurm] [--threads N]\n\n"
                 "Processes new or changed tiles of a survey and merges all tiles into one catalogue.\n"
-                "Exit codes: 0 done, 5 nothing to do, 6 some tiles failed, 7 busy (another run holds\n"
+                "Exit codes: 0 done, 5 nothing to do (0 with --up_to_date_exit 0), 6 some tiles failed, 7 busy (another run holds\n"
                 "the lock), 2 bad configuration.",
       d, {{"survey_file", 1}}, args, common);
   if (opts.help) {
@@ -279,6 +280,9 @@ int run_survey(const std::vector<std::string>& args) {
     print_survey_file_keys(std::cout);
     return kExitOk;
   }
+  const int up_to_date_exit = opts.vm["up_to_date_exit"].as<int>();
+  require(up_to_date_exit == 0 || up_to_date_exit == kExitNothingToDo, "up_to_date_exit", std::to_string(up_to_date_exit),
+          "0 or 5");
   if (!opts.vm.count("survey_file")) throw UsageError("survey: the survey file CONFIG is missing");
   SurveyConfig cfg = load_survey_config(opts.vm["survey_file"].as<std::string>());
   if (opts.vm.count("engine")) {
@@ -479,7 +483,7 @@ int run_survey(const std::vector<std::string>& args) {
                 "\"event\":\"run\",\"run\":" + json_str(run_id) + ",\"outcome\":\"nothing_to_do\",\"tiles\":" +
                     std::to_string(tiles.size()));
       if (tty) std::cerr << "skerry survey: nothing to do (" << tiles.size() << " tiles up to date)\n";
-      return kExitNothingToDo;
+      return up_to_date_exit;
     }
   }
 

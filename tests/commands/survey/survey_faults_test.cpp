@@ -75,6 +75,11 @@ TEST(SurveyFaults, DeletedTileKeepsItsRowsUntilRetired) {
   EXPECT_EQ(rows_of(retired, "tile_10"), 0u);
   EXPECT_EQ(json::parse(read_file(d + kSummary)).at("stale_rows").get<std::size_t>(), 0u);
   EXPECT_EQ(run_skerry({"survey", cfg}).code, 5);
+  // A scheduler that wants 0 for a routine no-op asks for it; other codes are refused.
+  EXPECT_EQ(run_skerry({"survey", cfg, "--up_to_date_exit", "0"}).code, 0);
+  const auto bad = run_skerry({"survey", cfg, "--up_to_date_exit", "3"});
+  EXPECT_EQ(bad.code, 2);
+  EXPECT_NE(bad.err.find("up_to_date_exit"), std::string::npos) << bad.err;
 }
 
 // A renamed tile: the new name is processed, the old one is stale; no source is
