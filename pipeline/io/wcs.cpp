@@ -375,6 +375,24 @@ bool is_finite_fits_number(std::string v) {
   return end == v.c_str() + v.size() && std::isfinite(x);
 }
 
+/// Keywords of the optical-plate distortions that WCSLIB translates on its own
+/// (wcspih, WCSLIB 7.12): SIP polynomials (A_p_q, B_p_q, AP_p_q, BP_p_q), the DSS
+/// plate solution (CNPIXn, PPO3/6, X/YPIXELSZ, PLTRA*, PLTDEC*, AMDXn, AMDYn) and
+/// IRAF's WATi_nnn. Radio images carry none. A DSS card replaces the header's own
+/// CRVAL/CTYPE with the plate solution, silently; and a SIP or DSS card whose value
+/// does not parse makes wcspih write through a null pointer (found by
+/// fuzz_fits_image). Such a header is therefore refused before it reaches WCSLIB.
+/// Returns what the keyword is, or nullptr.
+const char* translated_distortion(const std::string& key) {
+  static const std::regex sip("(A|B|AP|BP)_[0-9]+_[0-9]+");
+  static const std::regex dss("CNPIX[12]|PPO[36]|[XY]PIXELSZ|PLTRA[HMS]|PLTDEC(SN|[DMS])|AMD[XY][0-9]+");
+  static const std::regex wat("WAT[12]_[0-9]+");
+  if (std::regex_match(key, sip)) return "a SIP distortion";
+  if (std::regex_match(key, dss)) return "a DSS plate-solution";
+  if (std::regex_match(key, wat)) return "an IRAF WAT distortion";
+  return nullptr;
+}
+
 }  // namespace
 
 std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
@@ -408,6 +426,11 @@ std::shared_ptr<const PixelSky> wcs_from_header(const std::string& header_cards,
     }
     const std::string_view key = card.substr(0, 8);
     const bool commentary = key == "COMMENT " || key == "HISTORY " || key == "        ";
+    if (const char* kind = translated_distortion(upper(trim(std::string(key)))))
+      throw std::invalid_argument(
+          "header card " + std::to_string(n) + " (" + trim(std::string(key)) + ") is " + kind +
+          " keyword: skerry reads the linear celestial WCS of the FITS WCS papers (Greisen & Calabretta 2002) and does not "
+          "apply optical-plate distortions; remove the plate-solution cards or reproject the image");
     for (std::size_t i = 8; i < 80; ++i) {
       const auto ch = static_cast<unsigned char>(card[i]);
       if (ch >= 0x20 && ch <= 0x7E) continue;

@@ -327,6 +327,19 @@ TEST(BadInputTable, HeaderKeywordRepeatedWithAnotherValue) {
                  d / "out");
 }
 
+// Optical-plate distortion cards (here the DSS plate's corner pixel, with a value
+// that does not parse): WCSLIB 7.12 would replace the image's WCS by a plate
+// solution or, as here, write through a null pointer; refused, naming the card.
+TEST(BadInputTable, HeaderWithPlateDistortionCard) {
+  TempDir d;
+  ImageSpec s;
+  write_image(d / "plate.fits", s);
+  patch_card(d / "plate.fits", "FREQ", "'abc'", "CNPIX1");
+  const Outcome r = extract(d / "plate.fits", d / "out");
+  expect_refused(r, skerry::kExitBadInput, arg(d / "plate.fits"), "(CNPIX1) is a DSS plate-solution keyword",
+                 d / "out");
+}
+
 // Resources: a header whose plane needs more than the machine's physical memory
 // is refused before anything is allocated. The file really is that large (a
 // sparse file: the size passes the truncation check), so the memory guard is

@@ -866,5 +866,47 @@ TEST(WcsHeaderCards, InvalidCardsRefusedCommentaryTolerated) {
   }
 }
 
+// Optical-plate distortion keywords that WCSLIB 7.12 translates on its own are
+// refused before wcspih sees them: a DSS card replaces the header's own WCS by
+// a plate solution, and a SIP or DSS card whose value does not parse made
+// wcspih write through a null pointer (found by fuzz_fits_image; the inputs are
+// in tests/fuzz/corpus/fits_image/). Keywords that only look alike pass: the
+// SIP order keyword, PLATEID (which WCSLIB ignores alone) and a WAT-like name
+// without the axis digit.
+TEST(WcsHeaderCards, PlateDistortionKeywordsRefused) {
+  GridSpec g;
+  g.nx = g.ny = 64;
+  g.projection = "SIN";
+  g.crval1_deg = 201.25;
+  g.crval2_deg = -38.6;
+  g.crpix1 = g.crpix2 = 32.5;
+  g.cdelt1_deg = -1.0 / 3600;
+  g.cdelt2_deg = 1.0 / 3600;
+  const std::string h = header_for_grid(g);
+  auto card = [](std::string c) {
+    c.resize(80, ' ');
+    return c;
+  };
+  const std::vector<std::pair<std::string, std::string>> refused{
+      {"CNPIX1  = 'abc'", "a DSS plate-solution keyword"},
+      {"CNPIX1  =                  100", "a DSS plate-solution keyword"},
+      {"PLTRAH  =                   13", "a DSS plate-solution keyword"},
+      {"AMDX12  =                  0.1", "a DSS plate-solution keyword"},
+      {"A_1_1   = 'abc'", "a SIP distortion keyword"},
+      {"BP_0_2  =               1.0E-6", "a SIP distortion keyword"},
+      {"WAT1_001= 'wtype=tnx'", "an IRAF WAT distortion keyword"}};
+  for (const auto& [c, what] : refused) {
+    try {
+      wcs_from_header(h + card(c));
+      ADD_FAILURE() << c << ": accepted";
+    } catch (const std::invalid_argument& e) {
+      EXPECT_NE(std::string(e.what()).find(what), std::string::npos) << e.what();
+      EXPECT_NE(std::string(e.what()).find("header card "), std::string::npos) << e.what();
+    }
+  }
+  for (const std::string c : {"A_ORDER =                    3", "PLATEID = 'XJ123'", "WATCH   = 'on'"})
+    EXPECT_NO_THROW(wcs_from_header(h + card(c))) << c;
+}
+
 }  // namespace
 }  // namespace skerry
