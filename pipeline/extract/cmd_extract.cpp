@@ -21,6 +21,7 @@
 // previous outputs (if any) untouched and no partial file behind. Every check of
 // the inputs and options happens before the first output is written.
 #include <algorithm>
+#include <cctype>
 #include <charconv>
 #include <chrono>
 #include <cmath>
@@ -73,7 +74,7 @@ po::options_description extract_options() {
       ("image", po::value<std::string>(), "input FITS image (Jy/beam)")
       ("out", po::value<std::string>()->default_value(""), "output folder (default: outputs/NAME)")
       // [image]
-      ("image.hdu", po::value<std::string>()->default_value(""), "HDU: number (1 = primary) or EXTNAME; empty = first image HDU")
+      ("image.hdu", po::value<std::string>()->default_value(""), "HDU: number (1 = primary) or EXTNAME; empty = first image HDU. IMAGE[N] (0 = primary, as CFITSIO and astropy count) or IMAGE[EXTNAME] does the same")
       ("image.plane", po::value<std::string>()->default_value(""), "0-based plane per non-degenerate extra axis, comma-separated (e.g. 2,0)")
       ("image.beam_arcsec", po::value<std::string>()->default_value(""), "restoring beam 'maj,min,pa' [arcsec, arcsec, deg east of north]; replaces BMAJ/BMIN/BPA and CLEAN HISTORY cards")
       ("image.freq_mhz", po::value<double>()->default_value(0.0), "observing frequency [MHz]; 0 = from the header")
@@ -427,12 +428,38 @@ void read_settings(const OptionReader& o, ExtractSettings& s) {
   read_catalogue_config(o, s);
 }
 
+/// IMAGE[HDU], the extended file name of the FITS world (CFITSIO's syntax, as
+/// astropy counts): `f.fits[0]` is the primary HDU, `f.fits[1]` the first
+/// extension, `f.fits[SKY]` the extension named SKY. Taken only when no file
+/// has the literal name; `image.hdu` counts from 1 = primary, so [N] becomes
+/// image.hdu N + 1. Giving both is refused.
+void split_hdu_suffix(std::string& image, std::string& hdu) {
+  if (image.size() < 4 || image.back() != ']') return;
+  std::error_code ec;
+  if (fs::exists(image, ec)) return;
+  const std::size_t open = image.rfind('[');
+  if (open == std::string::npos || open == 0 || open + 2 > image.size() - 1) return;
+  const std::string base = image.substr(0, open), spec = image.substr(open + 1, image.size() - open - 2);
+  if (!fs::exists(base, ec)) return;  // the reader names the missing file
+  if (!hdu.empty())
+    throw UsageError("image " + image + ": the HDU is given twice (in brackets and as --image.hdu " + hdu +
+                     "); give one");
+  if (std::all_of(spec.begin(), spec.end(), [](char ch) { return std::isdigit(static_cast<unsigned char>(ch)); })) {
+    if (spec.size() > 6) throw UsageError("image " + image + ": HDU number [" + spec + "] is too large");
+    hdu = std::to_string(std::stol(spec) + 1);  // [0] = primary = image.hdu 1
+  } else {
+    hdu = spec;  // EXTNAME
+  }
+  image = base;
+}
+
 Config read_config(const ParsedOptions& p) {
   const OptionReader o{p.vm};
   Config c;
   if (!p.vm.count("image")) throw UsageError("no input image given (usage: skerry extract IMAGE --out DIR)");
   c.image = o.S("image");
   read_settings(o, c);
+  split_hdu_suffix(c.image, c.read.hdu);  // before the output names, which follow the file's stem
   read_output_config(o, c);
   return c;
 }

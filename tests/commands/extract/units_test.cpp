@@ -73,5 +73,45 @@ TEST(ExtractUnits, KelvinAndJyPerPixelImagesGiveTheJyPerBeamCatalogue) {
   EXPECT_NE(rj.find("\"image_bunit_conversion\": \"Jy/beam: as stored\""), std::string::npos);
 }
 
+// IMAGE[HDU], the extended file name of the FITS world (CFITSIO's syntax; [0]
+// is the primary HDU, as astropy counts): the image in an extension named SKY
+// behind an empty primary HDU (written by astropy) gives the catalogue of the
+// plain file whether it is named by number, by EXTNAME or with --image.hdu.
+TEST(ExtractFiles, HduInBracketsAsTheFitsWorldWritesIt) {
+  TempDir tmp("hdu");
+  const Beam beam{6.0, 5.0, 20.0};
+  const std::string plain = tmp / "plain.fits", ext = tmp / "ext.fits";
+  write_point_field(plain, 120, 2.0, beam, 1e-4, 30, 5.0, 8, 12, [](std::size_t i, auto&) { return 20.0 + 5.0 * static_cast<double>(i); });
+  const RunResult py = run_args({python3(), "-c",
+                            "import sys\nfrom astropy.io import fits\n"
+                            "h = fits.open(sys.argv[1])[0]\n"
+                            "fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(h.data, h.header, name='SKY')]).writeto(sys.argv[2])\n",
+                            plain, ext},
+                           tmp.path());
+  ASSERT_EQ(py.code, 0) << py.err;
+  auto rows = [&](const std::vector<std::string>& image_args, const std::string& out) {
+    std::vector<std::string> a{"extract"};
+    a.insert(a.end(), image_args.begin(), image_args.end());
+    for (const std::string& x : std::vector<std::string>{"--out", tmp / out, "--threads", "1", "--output.formats", "csv"}) a.push_back(x);
+    const RunResult r = run_skerry(a, tmp.path());
+    EXPECT_EQ(r.code, 0) << r.err;
+    return slurp(fs::path(tmp / out) / (fs::path(image_args[0].substr(0, image_args[0].find('['))).stem().string() + ".components.csv"));
+  };
+  const std::string ref = rows({plain}, "p");
+  ASSERT_GT(ref.size(), 200u);
+  EXPECT_EQ(rows({ext + "[1]"}, "n"), ref);
+  EXPECT_EQ(rows({ext + "[SKY]"}, "s"), ref);
+  EXPECT_EQ(rows({ext, "--image.hdu", "2"}, "h"), ref);
+  // [0] is the empty primary HDU; both forms at once are refused; a missing file is named.
+  RunResult r = run_skerry({"extract", ext + "[0]", "--out", tmp / "z"}, tmp.path());
+  EXPECT_EQ(r.code, 3) << r.err;
+  r = run_skerry({"extract", ext + "[1]", "--image.hdu", "2", "--out", tmp / "z"}, tmp.path());
+  EXPECT_EQ(r.code, 2) << r.err;
+  EXPECT_NE(r.err.find("given twice"), std::string::npos) << r.err;
+  r = run_skerry({"extract", tmp / "nothere.fits" + "[1]", "--out", tmp / "z"}, tmp.path());
+  EXPECT_EQ(r.code, 3) << r.err;
+  EXPECT_NE(r.err.find("nothere.fits"), std::string::npos) << r.err;
+}
+
 }  // namespace
 }  // namespace skerry::test
