@@ -9,6 +9,7 @@
 #include <vector>
 
 #include "app/command.h"
+#include "app/console.h"
 #include "app/errors.h"
 #include "io/fits_image.h"
 #include "app/version.h"
@@ -25,6 +26,8 @@ void usage(std::ostream& os) {
     os << "  " << c.name << std::string(c.name.size() < 14 ? 14 - c.name.size() : 1, ' ') << c.summary
        << "\n";
   }
+  os << "\nbefore or after the sub-command: -q, --quiet (errors and warnings only) or -v, --verbose\n"
+        "(a line per stage with its wall time, progress also into logs)\n";
   os << "\nexit codes: 0 ok, 1 internal error, 2 bad usage or configuration, 3 bad input file,\n"
         "            4 output not written, 5 nothing to do, 6 some tiles failed, 7 busy,\n"
         "            8 input holds no usable data\n";
@@ -38,6 +41,19 @@ int main(int argc, char** argv) {
   // naming the file. Inherited by the child processes of `skerry survey`.
   std::signal(SIGXFSZ, SIG_IGN);
   std::vector<std::string> args(argv + 1, argv + argc);
+  // Verbosity given before the sub-command (skerry -q extract ...); after it,
+  // each sub-command takes the same options (app/options.cpp).
+  bool quiet = false, verbose = false;
+  while (!args.empty() && (args[0] == "-q" || args[0] == "--quiet" || args[0] == "-v" || args[0] == "--verbose")) {
+    (args[0] == "-q" || args[0] == "--quiet" ? quiet : verbose) = true;
+    args.erase(args.begin());
+  }
+  if (quiet && verbose) {
+    std::cerr << "skerry: error: --quiet and --verbose: give one of them\n";
+    return skerry::kExitUsage;
+  }
+  if (quiet) skerry::set_verbosity(skerry::Verbosity::Quiet);
+  if (verbose) skerry::set_verbosity(skerry::Verbosity::Verbose);
   // `skerry help CMD` is `skerry CMD --help`.
   if (args.size() == 2 && args[0] == "help") args = {args[1], "--help"};
   if (args.empty() || args[0] == "--help" || args[0] == "-h" || args[0] == "help") {
@@ -56,8 +72,14 @@ int main(int argc, char** argv) {
   }
   std::vector<std::string> rest(args.begin() + 1, args.end());
   skerry::initialise_cfitsio();  // before any thread exists (see io/fits_image.h)
+  skerry::set_console_command(it->name);
   try {
-    return it->run(rest);
+    try {
+      return it->run(rest);
+    } catch (...) {
+      skerry::end_stage_line();  // the error starts a line of its own
+      throw;
+    }
   } catch (const skerry::UsageError& e) {
     std::cerr << "skerry " << it->name << ": error: " << e.what() << "\n";
     return skerry::kExitUsage;

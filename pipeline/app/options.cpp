@@ -1,5 +1,7 @@
 #include "app/options.h"
 
+#include "app/console.h"
+
 #include <oneapi/tbb/global_control.h>
 #include <oneapi/tbb/info.h>
 
@@ -101,6 +103,8 @@ ParsedOptions parse_options(const std::string& command, const std::string& usage
                        common_options.threads_help.empty()
                            ? "worker threads (0 = all cores); results do not depend on it"
                            : common_options.threads_help.c_str());
+  common.add_options()("quiet,q", po::bool_switch(), "errors and warnings only (no summary, notes or progress)")(
+      "verbose,v", po::bool_switch(), "a line per stage with its wall time, and progress also into logs (stderr)");
   po::options_description all;
   all.add(desc).add(common);
 
@@ -161,9 +165,17 @@ ParsedOptions parse_options(const std::string& command, const std::string& usage
   } catch (const po::error& e) {
     throw UsageError(e.what());
   }
+  // --quiet / --verbose set the console's verbosity (app/console.h); not given,
+  // the verbosity stays as it is (main() may have set it from options before the
+  // sub-command). They change what is printed, not what is computed, so they are
+  // not part of the resolved configuration.
+  const bool quiet = out.vm["quiet"].as<bool>(), verbose = out.vm["verbose"].as<bool>();
+  if (quiet && verbose) throw UsageError("--quiet and --verbose: give one of them");
+  if (quiet) set_verbosity(Verbosity::Quiet);
+  if (verbose) set_verbosity(Verbosity::Verbose);
   for (const auto& opt : all.options()) {
     const std::string& n = opt->long_name();
-    if (n == "help" || n == "config") continue;
+    if (n == "help" || n == "config" || n == "quiet" || n == "verbose") continue;
     auto it = out.vm.find(n);
     if (it != out.vm.end()) out.resolved[n] = value_text(it->second);
   }

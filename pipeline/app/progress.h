@@ -1,6 +1,7 @@
 #pragma once
-/// Progress on a terminal only: a single rewritten line on stderr when stderr is a
-/// TTY; nothing at all otherwise (cron, pipes, CI). Thread-safe `advance()`.
+/// Progress of a long stage on stderr (app/console.h): on a terminal a single
+/// rewritten line; with --verbose and stderr a file or pipe, a line at every
+/// further 10 %; otherwise (cron, pipes, CI, --quiet) nothing. Thread-safe `advance()`.
 #include <atomic>
 #include <chrono>
 #include <mutex>
@@ -23,6 +24,8 @@ class Progress {
   std::size_t total_;
   std::atomic<std::size_t> done_{0};
   bool enabled_;
+  bool log_lines_;            ///< verbose, not a terminal: a line per 10 %
+  std::size_t logged_tenths_ = 0;
   bool finished_ = false;
   std::mutex mu_;
   std::chrono::steady_clock::time_point last_;

@@ -8,10 +8,12 @@
 #include <cstdio>
 #include <cstring>
 #include <ctime>
+#include <exception>
 #include <filesystem>
 #include <fstream>
 #include <nlohmann/json.hpp>
 
+#include "app/console.h"
 #include "app/errors.h"
 #include "io/atomic_file.h"
 #include "app/version.h"
@@ -263,15 +265,27 @@ std::string RunRecord::to_json() const {
 void RunRecord::write(const std::string& path) const { write_text_atomic(path, to_json()); }
 
 StageTimer::StageTimer(RunRecord& record, std::string name)
-    : record_(record), name_(std::move(name)), t0_(std::chrono::steady_clock::now()) {}
+    : record_(record), name_(std::move(name)), t0_(std::chrono::steady_clock::now()) {
+  stage_started(name_);
+}
 
 StageTimer::~StageTimer() {
-  if (!stopped_) stop();
+  if (stopped_) return;
+  if (std::uncaught_exceptions() > 0) {
+    // The stage failed: recorded, but not announced as done.
+    record_.add_stage(name_, std::chrono::duration<double>(std::chrono::steady_clock::now() - t0_).count());
+    stopped_ = true;
+    return;
+  }
+  stop();
 }
 
 double StageTimer::stop() {
   const double s = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0_).count();
-  if (!stopped_) record_.add_stage(name_, s);
+  if (!stopped_) {
+    record_.add_stage(name_, s);
+    stage_ended(name_, s);
+  }
   stopped_ = true;
   return s;
 }

@@ -59,7 +59,8 @@ class RunRecord {
 /// error: it only decides what an earlier run may have left behind).
 std::vector<std::string> outputs_listed_in(const std::string& run_record_path);
 
-/// Measures one stage: adds it to the record when stop() is called or on destruction.
+/// Measures one stage: adds it to the record when stop() is called or on
+/// destruction, and shows it on the console while it runs (app/console.h).
 class StageTimer {
  public:
   StageTimer(RunRecord& record, std::string name);

@@ -69,6 +69,7 @@
 #include <vector>
 
 #include "app/command.h"
+#include "app/console.h"
 #include "app/errors.h"
 #include "extract/catalogue_tables.h"
 #include "extract/extract_job.h"
@@ -254,7 +255,11 @@ std::vector<ForcedSource> detect_components(const std::string& det_image, const 
   check_extract_image(sky, ec);
   t_read.stop();
   ExtractHooks hooks;
-  hooks.stage = [&rec](const std::string& stage, double seconds) { rec.add_stage(stage, seconds); };
+  hooks.stage = [&rec](const std::string& stage, double seconds) {
+    rec.add_stage(stage, seconds);
+    stage_ended("detection " + stage, seconds);
+  };
+  hooks.stage_started = [](const std::string& stage) { stage_started("detection " + stage); };
   const ExtractResult r = run_extract_job(sky, ExtractInputs{}, ec, hooks);
   StageTimer t_write(rec, "write");
   const std::string sha = rec.add_input("image", det_image);
@@ -826,7 +831,7 @@ int run_bands(const std::vector<std::string>& args) {
   char line[512];
   std::snprintf(line, sizeof line, "bands %s: %zu bands, %zu components, %lld spectra fitted, %ld map pixels -> %s\n",
                 name.c_str(), nb, n, static_cast<long long>(n_fitted), map_pixels, out_dir.c_str());
-  std::cout << line << std::flush;
+  say(line);
   return kExitOk;
 }
 

@@ -35,6 +35,7 @@
 #include <sstream>
 
 #include "app/command.h"
+#include "app/console.h"
 #include "app/errors.h"
 #include "app/options.h"
 #include "app/progress.h"
@@ -611,7 +612,11 @@ int run_extract(const std::vector<std::string>& args) {
   std::future<void> map_writes, label_writes;
   std::optional<Progress> progress;
   ExtractHooks hooks;
-  hooks.stage = [&](const std::string& name, double s) { record.add_stage(name, s); };
+  hooks.stage = [&](const std::string& name, double s) {
+    record.add_stage(name, s);
+    stage_ended(name, s);
+  };
+  hooks.stage_started = [](const std::string& name) { stage_started(name); };
   // The quantisation step's reference (smallest rms) is taken from the rms map once
   // it is final; read by write_results after map_writes is joined.
   double rms_min = 0.0;
@@ -682,7 +687,7 @@ int run_extract(const std::vector<std::string>& args) {
   std::snprintf(line, sizeof line, "extract %s: %zu islands, %zu components, %zu sources in %.2f s -> %s\n",
                 N.c_str(), result.islands.size(), result.components.size(), result.sources.size(), secs,
                 cfg.out_dir.c_str());
-  std::cout << line << std::flush;
+  say(line);
   if (cfg.report) {
     // The same page `skerry report DIR --report.name NAME` writes.
     for (const auto& c : command_registry())

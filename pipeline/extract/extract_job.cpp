@@ -24,11 +24,14 @@
 namespace skerry {
 namespace {
 
-/// Wall time of one stage, reported through ExtractHooks::stage by stop().
+/// Wall time of one stage: its start reported through ExtractHooks::stage_started,
+/// its end and wall time through ExtractHooks::stage by stop().
 class Stage {
  public:
   Stage(const ExtractHooks& hooks, std::string name)
-      : hooks_(hooks), name_(std::move(name)), t0_(std::chrono::steady_clock::now()) {}
+      : hooks_(hooks), name_(std::move(name)), t0_(std::chrono::steady_clock::now()) {
+    if (hooks_.stage_started) hooks_.stage_started(name_);
+  }
   void stop() {
     const double s = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0_).count();
     if (hooks_.stage) hooks_.stage(name_, s);

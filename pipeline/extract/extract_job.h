@@ -70,6 +70,8 @@ struct ExtractInputs {
 struct ExtractHooks {
   /// A stage ended after `seconds` of wall time (in stage order).
   std::function<void(const std::string& stage, double seconds)> stage;
+  /// A stage starts (in stage order); e.g. show it while it runs.
+  std::function<void(const std::string& stage)> stage_started;
   /// The noise maps and the island labels are final (called once, before the
   /// fit): e.g. start writing them. The pointers keep the data alive.
   std::function<void(const NoiseMaps& maps, std::shared_ptr<const LabelsI32> labels)> maps_final;

@@ -28,6 +28,7 @@
 #include <string>
 #include <vector>
 
+#include "app/console.h"
 #include "app/command.h"
 #include "app/errors.h"
 #include "io/atomic_file.h"
@@ -634,9 +635,11 @@ int run_likelihood_ratio(const Catalogue& A, const Catalogue& B, const ParsedOpt
   else js["b_position_errors"] = "none found: taken as 0 (only A's errors and the systematic term enter f(r))";
   js["outputs"] = outputs;
   write_text_atomic(base + ".match_summary.json", js.dump(2) + "\n");
-  std::cout << "skerry match: " << A.table.rows() << " x " << B.table.rows() << " rows, " << r.candidates.size()
-            << " candidates (likelihood_ratio, " << radius << " arcsec), Q0 = " << r.q0 << ", " << identified
-            << " identified at R > " << r_min << " -> " << base << ".lr_candidates." << formats[0] << "\n";
+  std::ostringstream line;
+  line << "skerry match: " << A.table.rows() << " x " << B.table.rows() << " rows, " << r.candidates.size()
+       << " candidates (likelihood_ratio, " << radius << " arcsec), Q0 = " << r.q0 << ", " << identified
+       << " identified at R > " << r_min << " -> " << base << ".lr_candidates." << formats[0];
+  say(line.str());
   return kExitOk;
 }
 
@@ -779,8 +782,7 @@ int run_match(const std::vector<std::string>& args) {
       if (c.freq_hz > 0) ij["freq_mhz"] = c.freq_hz / 1e6;
       inputs.push_back(ij);
       if (c.no_position)
-        std::cerr << "skerry match: note: " << files[i] << ": " << c.no_position
-                  << " rows without a position are never matched\n";
+        note(files[i] + ": " + std::to_string(c.no_position) + " rows without a position are never matched");
     }
   }
   js["inputs"] = inputs;
@@ -844,8 +846,10 @@ int run_match(const std::vector<std::string>& args) {
                     {"groups_with_several_rows", ngroups}, {"rows_in_such_groups", in_groups}};
     js["outputs"] = outputs;
     write_text_atomic(base + ".match_summary.json", js.dump(2) + "\n");
-    std::cout << "skerry match: " << c.table.rows() << " rows, " << r.pairs.size() << " pairs within " << radius
-              << " arcsec, " << ngroups << " groups of duplicates -> " << base << ".groups." << formats[0] << "\n";
+    std::ostringstream line;
+    line << "skerry match: " << c.table.rows() << " rows, " << r.pairs.size() << " pairs within " << radius
+         << " arcsec, " << ngroups << " groups of duplicates -> " << base << ".groups." << formats[0];
+    say(line.str());
     return kExitOk;
   }
 
@@ -908,8 +912,8 @@ int run_match(const std::vector<std::string>& args) {
     js["counts"] = {{"master_rows", m.table.rows()}, {"catalogues", others.size()}, {"rows_by_n_catalogues", hist}};
     js["outputs"] = outputs;
     write_text_atomic(base + ".match_summary.json", js.dump(2) + "\n");
-    std::cout << "skerry match: " << m.table.rows() << " master rows matched to " << others.size()
-              << " catalogues -> " << base << ".multi." << formats[0] << "\n";
+    say("skerry match: " + std::to_string(m.table.rows()) + " master rows matched to " + std::to_string(others.size()) +
+        " catalogues -> " + base + ".multi." + formats[0]);
     return kExitOk;
   }
 
@@ -1065,9 +1069,10 @@ int run_match(const std::vector<std::string>& args) {
   }
   js["outputs"] = outputs;
   write_text_atomic(base + ".match_summary.json", js.dump(2) + "\n");
-  std::cout << "skerry match: " << A.table.rows() << " x " << B.table.rows() << " rows, " << r.pairs.size()
-            << " pairs (" << mode_name(mode) << ", " << radius << " arcsec) -> " << base << ".matches."
-            << formats[0] << "\n";
+  std::ostringstream line;
+  line << "skerry match: " << A.table.rows() << " x " << B.table.rows() << " rows, " << r.pairs.size() << " pairs ("
+       << mode_name(mode) << ", " << radius << " arcsec) -> " << base << ".matches." << formats[0];
+  say(line.str());
   return kExitOk;
 }
 

@@ -2,6 +2,7 @@
 // from the negated image (report_injection.h). Exit codes: errors.h.
 #include <iostream>
 
+#include "app/console.h"
 #include "app/command.h"
 #include "app/errors.h"
 #include "app/options.h"
@@ -51,8 +52,8 @@ int run_completeness(const std::vector<std::string>& args) {
   require(o.match_beams > 0 && o.avoid_beams >= 0, "completeness.match_beams", std::to_string(o.match_beams), "value > 0");
   ThreadLimit threads(p.vm["threads"].as<int>());
   const InjectionResult r = run_injection(o);
-  std::cout << "completeness: " << r.recovered << " of " << r.injected << " injected point sources recovered; outputs in "
-            << o.out_dir << "\n";
+  say("completeness: " + std::to_string(r.recovered) + " of " + std::to_string(r.injected) +
+      " injected point sources recovered; outputs in " + o.out_dir);
   return kExitOk;
 }
 

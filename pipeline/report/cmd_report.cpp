@@ -5,6 +5,7 @@
 // 2 bad options; 4 the page could not be written.
 #include <iostream>
 
+#include "app/console.h"
 #include "app/command.h"
 #include "app/errors.h"
 #include "app/options.h"
@@ -38,7 +39,7 @@ int run_report(const std::vector<std::string>& args) {
   require(o.count_bins_per_decade >= 1 && o.count_bins_per_decade <= 50, "report.count_bins_per_decade",
           std::to_string(o.count_bins_per_decade), "1 <= value <= 50");
   const ReportResult r = write_report(o);
-  std::cout << "report " << r.name << " -> " << r.path << "\n";
+  say("report " + r.name + " -> " + r.path);
   if (!r.catalogue_found) {
     std::cerr << "skerry: error: " << o.run_dir << ": no component catalogue (" << r.name
               << ".components.csv); the page " << r.path << " says what is missing\n";

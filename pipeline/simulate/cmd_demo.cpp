@@ -22,6 +22,7 @@
 #include <string>
 #include <vector>
 
+#include "app/console.h"
 #include "app/command.h"
 #include "app/errors.h"
 #include "io/table_io.h"
@@ -34,6 +35,12 @@ namespace {
 
 namespace fs = std::filesystem;
 
+/// The demo's narration: stdout, nothing with --quiet.
+std::ostream& narration() {
+  static std::ostream none(nullptr);
+  return verbosity() == Verbosity::Quiet ? none : std::cout;
+}
+
 const CommandInfo* find_command(const std::string& name) {
   for (const auto& c : command_registry())
     if (c.name == name) return &c;
@@ -43,9 +50,9 @@ const CommandInfo* find_command(const std::string& name) {
 int run_step(const std::string& name, const std::vector<std::string>& args) {
   const CommandInfo* c = find_command(name);
   if (!c) throw std::logic_error("demo: sub-command '" + name + "' is not built in");
-  std::cout << "\n$ skerry " << name;
-  for (const auto& a : args) std::cout << " " << a;
-  std::cout << "\n" << std::flush;
+  narration() << "\n$ skerry " << name;
+  for (const auto& a : args) narration() << " " << a;
+  narration() << "\n" << std::flush;
   const int rc = c->run(args);
   if (rc != kExitOk) throw ExitError(rc, "demo: step 'skerry " + name + "' exited with code " + std::to_string(rc));
   return rc;
@@ -140,7 +147,7 @@ int run_demo(const std::vector<std::string>& args) {
   const fs::path images = fs::path(out) / "images", run = fs::path(out) / "run";
   const auto t0 = std::chrono::steady_clock::now();
 
-  std::cout << "skerry demo: the Lanternfish Field of the Skerrywind Deep Continuum Survey "
+  narration() << "skerry demo: the Lanternfish Field of the Skerrywind Deep Continuum Survey "
                "(invented; simulated data)\n";
   run_step("simulate", {"--out", images.string(), "--seed", seed, "--threads", threads,
                         "--field.size_pix", std::to_string(p.vm["demo.size_pix"].as<long>()),
@@ -148,7 +155,7 @@ int run_demo(const std::vector<std::string>& args) {
                         "--counterparts.density_deg2", "1e5"});
 
   const fs::path ref_path = images / "lanternfish_reference.csv";
-  std::cout << "\n(demo) writing an invented reference catalogue of the field: " << ref_path.string() << "\n";
+  narration() << "\n(demo) writing an invented reference catalogue of the field: " << ref_path.string() << "\n";
   write_table(reference_catalogue(read_table((images / "lanternfish.truth.csv").string()),
                                   static_cast<std::uint64_t>(p.vm["seed"].as<long long>()) + 1),
               ref_path.string());
@@ -176,13 +183,13 @@ int run_demo(const std::vector<std::string>& args) {
   if (find_command("report")) run_step("report", {run.string(), "--report.name", "lanternfish_1400MHz"});
 
   const double secs = std::chrono::duration<double>(std::chrono::steady_clock::now() - t0).count();
-  std::cout << "\nskerry demo: done in " << std::round(secs * 10) / 10 << " s.\n"
+  narration() << "\nskerry demo: done in " << std::round(secs * 10) / 10 << " s.\n"
             << "  images and truth:  " << images.string() << "/\n"
             << "  catalogue, maps:   " << run.string() << "/lanternfish_1400MHz.*\n"
             << "  spectra:           " << run.string() << "/lanternfish.spectra.csv\n";
   for (const auto& e : fs::directory_iterator(run))
     if (e.path().extension() == ".html")
-      std::cout << "  report page:       " << e.path().string() << "  (open it in a browser)\n";
+      narration() << "  report page:       " << e.path().string() << "  (open it in a browser)\n";
   return kExitOk;
 }
 

@@ -20,6 +20,7 @@
 #include <string>
 #include <vector>
 
+#include "app/console.h"
 #include "app/command.h"
 #include "app/errors.h"
 #include "io/fits_image.h"
@@ -392,11 +393,11 @@ int run_simulate(const std::vector<std::string>& args) {
     if (k != "threads" && k != "out") st.set_meta("option." + k, v);
   write_table(st, dir + name + ".truth." + truth_ext);
 
-  std::cout << "simulate: " << model.sources.size() << " sources, " << nb << " band"
-            << (nb == 1 ? "" : "s") << " (" << total_pixels / 1000000.0 << " Mpixel) written to "
-            << out;
-  if (n_counterpart_rows) std::cout << " (and " << n_counterpart_rows << " counterpart-catalogue rows)";
-  std::cout << "\n";
+  std::ostringstream line;
+  line << "simulate: " << model.sources.size() << " sources, " << nb << " band" << (nb == 1 ? "" : "s") << " ("
+       << total_pixels / 1000000.0 << " Mpixel) written to " << out;
+  if (n_counterpart_rows) line << " (and " << n_counterpart_rows << " counterpart-catalogue rows)";
+  say(line.str());
   return kExitOk;
 }
 

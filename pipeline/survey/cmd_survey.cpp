@@ -22,6 +22,7 @@
 #include <sstream>
 #include <thread>
 
+#include "app/console.h"
 #include "app/command.h"
 #include "app/errors.h"
 #include "io/atomic_file.h"
@@ -307,7 +308,9 @@ int run_survey(const std::vector<std::string>& args) {
   }
 
   const auto t_start = std::chrono::steady_clock::now();
-  const bool tty = stderr_is_terminal();
+  // The run's summary line: on a terminal (not with --quiet), or with --verbose;
+  // warnings and failures are printed at every verbosity (cron mails them).
+  const bool tty = (stderr_is_terminal() && verbosity() != Verbosity::Quiet) || verbosity() == Verbosity::Verbose;
   // Configuration checked before any work (nothing is written when it fails):
   // the tile patterns, then the stage settings as the stage commands read them.
   const std::vector<TileInput> tiles = discover_tiles(cfg);
