@@ -515,7 +515,7 @@ void write_results(const Config& cfg, const SkyImage& sky, const ExtractResult& 
     const std::string model_path = stage.path(N + ".model_map.fits");
     const MapStorage how = with_step(cfg.maps.model, cfg.maps.step_fraction, rms_min);
     model_write = std::async(std::launch::async, [&model, &sky, &cards, model_path, how] {
-      write_fits_image(model_path, model, sky, "JY/BEAM", cards, how);
+      write_fits_image(model_path, model, sky, "Jy/beam", cards, how);
     });
   }
   if (cfg.write_residual) {
@@ -523,7 +523,7 @@ void write_results(const Config& cfg, const SkyImage& sky, const ExtractResult& 
     const MapStorage how = with_step(cfg.maps.residual, cfg.maps.step_fraction, rms_min);
     residual_write = std::async(std::launch::async, [&model, &sky, &cards, residual_path, how] {
       const ImageF residual = sky.pixels - model;  // residual = image - model (background kept)
-      write_fits_image(residual_path, residual, sky, "JY/BEAM", cards, how);
+      write_fits_image(residual_path, residual, sky, "Jy/beam", cards, how);
     });
   }
   const double freq = sky.freq_hz;
@@ -636,9 +636,9 @@ int run_extract(const std::vector<std::string>& args) {
         // background image is made (each is as large as the input image).
         const ImageF rms = maps.rms_image();
         rms_min = smallest_rms(rms);
-        write_fits_image(rms_path, rms, sky, "JY/BEAM", cards, with_step(cfg.maps.rms, cfg.maps.step_fraction, rms_min));
+        write_fits_image(rms_path, rms, sky, "Jy/beam", cards, with_step(cfg.maps.rms, cfg.maps.step_fraction, rms_min));
       }
-      write_fits_image(bg_path, maps.background_image(), sky, "JY/BEAM", cards,
+      write_fits_image(bg_path, maps.background_image(), sky, "Jy/beam", cards,
                        with_step(cfg.maps.background, cfg.maps.step_fraction, rms_min));
     });
     label_writes = std::async(std::launch::async, [labels, &sky, &cards, &cfg, labels_path]() mutable {

@@ -945,7 +945,7 @@ SkyImage make_sky_image(const GridSpec& grid, ImageF pixels, const std::string& 
   im.pixels = std::move(pixels);
   im.beam = grid.beam;
   if (grid.freq_hz > 0.0) im.freq_hz = grid.freq_hz;
-  im.bunit = "JY/BEAM";
+  im.bunit = "Jy/beam";
   im.object = object;
   return im;
 }

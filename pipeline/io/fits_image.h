@@ -133,10 +133,10 @@ struct MapStorage {
 /// structural ones (SIMPLE, BITPIX, NAXIS*, EXTEND, BSCALE, BZERO, BLANK, BUNIT);
 /// an extra card replaces a card of the same key. No date or host cards (outputs
 /// are byte-identical for identical inputs).
-/// Throws OutputError. `bunit` e.g. "JY/BEAM"; extra cards are (KEY, value) where
+/// Throws OutputError. `bunit` e.g. "Jy/beam" (the FITS Standard 4.0 sec. 4.3 spelling, which astropy parses); extra cards are (KEY, value) where
 /// value is already FITS-formatted (e.g. "'text'" or "1.5").
 void write_fits_image(const std::string& path, const ImageF& pixels, const SkyImage& like,
-                      const std::string& bunit = "JY/BEAM",
+                      const std::string& bunit = "Jy/beam",
                       const std::vector<std::pair<std::string, std::string>>& extra_cards = {},
                       const MapStorage& storage = {});
 void write_fits_labels(const std::string& path, const LabelsI32& labels, const SkyImage& like,
