@@ -58,13 +58,6 @@ void note(const std::string& line) {
   std::fflush(stderr);
 }
 
-void warn(const std::string& line) {
-  std::lock_guard lock(g_mu);
-  clear_stage_line_locked();
-  std::fprintf(stderr, "%swarning: %s\n", prefix().c_str(), line.c_str());
-  std::fflush(stderr);
-}
-
 void stage_started(const std::string& stage) {
   const Verbosity v = verbosity();
   if (v == Verbosity::Quiet) return;

@@ -25,8 +25,6 @@ Verbosity verbosity();
 void say(const std::string& line);
 /// A note on stderr ("skerry CMD: note: ..."), unless quiet.
 void note(const std::string& line);
-/// A warning on stderr, at every verbosity.
-void warn(const std::string& line);
 
 /// A stage of a command starts / ended after `seconds`: a line each when
 /// verbose; on a terminal at normal verbosity the stage's name stands on a

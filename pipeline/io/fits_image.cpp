@@ -103,6 +103,18 @@ void check_fits_header_text(const std::string& path) {
         for (char ch : card)
           if (static_cast<unsigned char>(ch) < 0x20 || static_cast<unsigned char>(ch) > 0x7E)
             throw InputError(path, where() + " holds a byte that is not printable ASCII (FITS Standard 4.0 sec. 4.1.2.1)");
+        // A keyword is A-Z, 0-9, '-' and '_', left-justified and padded with
+        // blanks (sec. 4.1.2.1; lower case tolerated, as some writers produce it).
+        // CFITSIO 4.2 overflows a buffer on a table keyword holding '=' (found
+        // by fuzz_fits_table), so such a card is refused before CFITSIO opens
+        // the file.
+        for (std::size_t i = 0, blank = 0; i < 8; ++i) {
+          const char ch = key[i];
+          const bool ok = std::isalnum(static_cast<unsigned char>(ch)) || ch == '-' || ch == '_';
+          if (ch == ' ') blank = 1;
+          else if (!ok || blank)
+            throw InputError(path, where() + " has an invalid keyword (FITS Standard 4.0 sec. 4.1.2.1)");
+        }
         if (card.substr(8, 2) == "= ") {
           std::size_t i = 10;
           while (i < 80 && card[i] == ' ') ++i;

@@ -833,11 +833,9 @@ TEST(WcsCards2d, CubeCelestialPartRoundTrips) {
   }
 }
 
-// FITS Standard 4.0 sec. 4.1.1 and 4.1.2.1: header cards are printable ASCII and
-// keywords are A-Z, 0-9, '-', '_'. A card breaking this once made WCSLIB's header
-// parser overflow a heap block (found by fuzzing); such headers are refused with a
-// one-line reason, while stray bytes in commentary cards (no WCS there) are tolerated.
-TEST(WcsHeaderCards, InvalidCardsRefusedCommentaryTolerated) {
+/// The header of a 64 x 64 SIN grid at (201.25, -38.6) deg, 1" pixels, for the
+/// header-card tests below.
+std::string small_sin_header() {
   GridSpec g;
   g.nx = g.ny = 64;
   g.projection = "SIN";
@@ -846,11 +844,21 @@ TEST(WcsHeaderCards, InvalidCardsRefusedCommentaryTolerated) {
   g.crpix1 = g.crpix2 = 32.5;
   g.cdelt1_deg = -1.0 / 3600;
   g.cdelt2_deg = 1.0 / 3600;
-  const std::string h = header_for_grid(g);
-  auto card = [](std::string c) {
-    c.resize(80, ' ');
-    return c;
-  };
+  return header_for_grid(g);
+}
+
+/// One 80-character header card from its text.
+std::string card(std::string c) {
+  c.resize(80, ' ');
+  return c;
+}
+
+// FITS Standard 4.0 sec. 4.1.1 and 4.1.2.1: header cards are printable ASCII and
+// keywords are A-Z, 0-9, '-', '_'. A card breaking this once made WCSLIB's header
+// parser overflow a heap block (found by fuzzing); such headers are refused with a
+// one-line reason, while stray bytes in commentary cards (no WCS there) are tolerated.
+TEST(WcsHeaderCards, InvalidCardsRefusedCommentaryTolerated) {
+  const std::string h = small_sin_header();
   EXPECT_NO_THROW(wcs_from_header(h + card("HISTORY made at the caf\xc3\xa9")));
   try {
     wcs_from_header(h + card("CTYP\xe9" "2  = 'DEC--SIN'"));
@@ -874,19 +882,7 @@ TEST(WcsHeaderCards, InvalidCardsRefusedCommentaryTolerated) {
 // SIP order keyword, PLATEID (which WCSLIB ignores alone) and a WAT-like name
 // without the axis digit.
 TEST(WcsHeaderCards, PlateDistortionKeywordsRefused) {
-  GridSpec g;
-  g.nx = g.ny = 64;
-  g.projection = "SIN";
-  g.crval1_deg = 201.25;
-  g.crval2_deg = -38.6;
-  g.crpix1 = g.crpix2 = 32.5;
-  g.cdelt1_deg = -1.0 / 3600;
-  g.cdelt2_deg = 1.0 / 3600;
-  const std::string h = header_for_grid(g);
-  auto card = [](std::string c) {
-    c.resize(80, ' ');
-    return c;
-  };
+  const std::string h = small_sin_header();
   const std::vector<std::pair<std::string, std::string>> refused{
       {"CNPIX1  = 'abc'", "a DSS plate-solution keyword"},
       {"CNPIX1  =                  100", "a DSS plate-solution keyword"},
