@@ -21,6 +21,7 @@
 #include <gtest/gtest.h>
 
 #include <cmath>
+#include <iostream>
 #include <random>
 #include <sstream>
 #include <string>
@@ -85,12 +86,26 @@ Table positions_table(const std::vector<double>& ra, const std::vector<double>& 
   return t;
 }
 
+/// Removes the shared field's folder after the last test of the program.
+class FieldCleanup : public ::testing::Environment {
+ public:
+  static std::string& dir() {
+    static std::string d;
+    return d;
+  }
+  void TearDown() override {
+    if (!dir().empty()) fs::remove_all(dir());
+  }
+};
+const auto* const kCleanup = ::testing::AddGlobalTestEnvironment(new FieldCleanup);
+
 const Field& field() {
   static Field* f = [] {
     auto* F = new Field;
     F->dir = (fs::temp_directory_path() / ("skerry_stack_test_" + std::to_string(::getpid()))).string();
     fs::remove_all(F->dir);
     fs::create_directories(F->dir);
+    FieldCleanup::dir() = F->dir;
     // Image A: 700 x 700 pixels of 1.5", beam 6" (4 pixels); image B: 480 x 480
     // of 2", beam 9", smaller on the sky so that some positions fall outside it.
     const GridSpec ga = grid(700, 1.5, 6.0, 1.4e9), gb = grid(480, 2.0, 9.0, 0.9e9);
@@ -183,6 +198,9 @@ TEST(StackCommand, InjectedFluxDensityRecoveredWithinItsError) {
     // beam-correlated noise, forced.h / REF-CONDON-02) x rms / sqrt(N), within 30 %
     // (the annulus holds a few tens of independent beams).
     const double expected_err = std::sqrt(M_PI / 2.0) * std::sqrt(4.0 / 3.0) * rms[k] / std::sqrt(n);
+    std::cout << "image " << k + 1 << ": n " << n << ", S " << s << " Jy, S0 " << s0[k] << " Jy, err " << e
+              << " Jy, expected err " << expected_err << " Jy, stack rms " << cell(t, "rms_stack_jy_per_beam", k)
+              << " Jy/beam\n";
     EXPECT_NEAR(e / expected_err, 1.0, 0.3) << "err " << e << " expected " << expected_err;
     const double expected_rms = std::sqrt(M_PI / 2.0) * rms[k] / std::sqrt(n);
     EXPECT_NEAR(cell(t, "rms_stack_jy_per_beam", k) / expected_rms, 1.0, 0.3);
@@ -246,6 +264,7 @@ TEST(StackCommand, EmptyPositionsGiveZero) {
   EXPECT_EQ(cell(t, "n_stacked", 0), kN);
   const double s = cell(t, "s_stack_jy", 0), e = cell(t, "s_stack_err_jy", 0);
   EXPECT_LT(std::abs(s), 3.0 * e) << "S = " << s << " +- " << e;
+  std::cout << "empty positions: S " << s << " +- " << e << " Jy\n";
   EXPECT_GT(e, 0.0);
 }
 
