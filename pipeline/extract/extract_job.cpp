@@ -509,6 +509,21 @@ void check_extract_image(const SkyImage& sky, const ExtractConfig& cfg) {
   checked_centre(sky, centre_beam(sky, make_sky_beam(sky, cfg)));
 }
 
+NoiseStageResult run_noise_stage(const SkyImage& sky, const ExtractInputs& in, const ExtractConfig& cfg,
+                                 const ExtractHooks& hooks) {
+  check_beam(sky);
+  const SkyBeam sky_beam = make_sky_beam(sky, cfg);
+  ExtractResult out;
+  out.beam = centre_beam(sky, sky_beam);
+  const BeamGeometry centre = checked_centre(sky, out.beam);
+  noise_and_islands(sky, in, cfg, centre, hooks, out);
+  NoiseStageResult r;
+  r.beam = out.beam;
+  r.maps = std::move(out.maps);
+  r.noise_passes = out.noise_passes;
+  return r;
+}
+
 ExtractResult run_extract_job(const SkyImage& sky, const ExtractInputs& in, const ExtractConfig& cfg,
                               const ExtractHooks& hooks) {
   check_beam(sky);

@@ -104,6 +104,20 @@ Provenance extract_provenance(const std::string& tool, const SkyImage& sky, cons
 /// naming sky.path. Callers that read more inputs run it before reading them.
 void check_extract_image(const SkyImage& sky, const ExtractConfig& cfg);
 
+/// The job's noise stage alone: the background and rms maps exactly as
+/// run_extract_job makes them (one or two passes, the second with the first
+/// pass's islands grown by mask_margin_beams masked; user or fixed maps as
+/// given), for commands that measure at given positions (`skerry stack`).
+/// Stages noise_pass1, islands_pass1, noise_pass2, islands are reported through
+/// hooks.stage. Same errors as run_extract_job.
+struct NoiseStageResult {
+  Beam beam;         ///< the restoring beam at the image centre, PA east of ICRS north
+  NoiseMaps maps;    ///< background and rms [Jy/beam]
+  int noise_passes = 0;
+};
+NoiseStageResult run_noise_stage(const SkyImage& sky, const ExtractInputs& inputs, const ExtractConfig& cfg,
+                                 const ExtractHooks& hooks = {});
+
 /// Runs the job. Throws InputError / NoDataError (naming sky.path) for an image
 /// the job cannot measure, UsageError for module options out of range.
 /// Results do not depend on the thread count.

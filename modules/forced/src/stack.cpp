@@ -61,8 +61,10 @@ StackResult forced_at_positions(const ImageF& image, const ImageF& rms, double r
   const auto gc = local_geometry(wcs, 0.5 * (nx - 1), 0.5 * (ny - 1));
   if (!gc) throw std::invalid_argument("stacking: no sky position at the image centre");
   const double pix_arcsec = std::sqrt(gc->pixel_area_arcsec2);
+  // 3 FWHMs rounded up; the 1e-6 keeps a whole number of pixels whole when the
+  // pixel size from the WCS differs from the header's in the last digits.
   const long H = opt.half_size_pix > 0 ? opt.half_size_pix
-                                       : static_cast<long>(std::ceil(3.0 * beam.maj_arcsec / pix_arcsec));
+                                       : static_cast<long>(std::ceil(3.0 * beam.maj_arcsec / pix_arcsec - 1e-6));
   const long W = 2 * H + 1;
   std::vector<long> use;
   for (std::size_t i = 0; i < pts.size(); ++i) {
